@@ -1,0 +1,123 @@
+"""Positions as pytrees: validation, ravelling and parameter names.
+
+fisherwalk does its linear algebra on one flat vector (ravelled with
+``jax.flatten_util.ravel_pytree``, whose order is the order of
+``jax.tree_util.tree_flatten``: dict keys sorted, arrays row-major) and hands
+results back in the user's structure.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from jax.flatten_util import ravel_pytree
+
+from .errors import InputError, explain
+
+
+class Flat(NamedTuple):
+    """A position ravelled to one vector."""
+
+    vector: jax.Array  # (d,) float
+    unravel: Callable[[jax.Array], Any]  # (d,) -> the user's pytree
+    names: tuple[str, ...]  # d parameter names, e.g. "beta[3]", "sigma"
+
+
+def _path_name(path) -> str:
+    parts = []
+    for entry in path:
+        if isinstance(entry, jax.tree_util.DictKey):
+            parts.append(str(entry.key))
+        elif isinstance(entry, jax.tree_util.GetAttrKey):
+            parts.append(str(entry.name))
+        elif isinstance(entry, jax.tree_util.SequenceKey):
+            parts.append(f"[{entry.idx}]")
+        else:  # pragma: no cover - other key types
+            parts.append(str(entry))
+    name = ""
+    for part in parts:
+        if part.startswith("["):
+            name += part
+        else:
+            name += ("." if name else "") + part
+    return name or "x"
+
+
+def parameter_names(position: Any) -> tuple[str, ...]:
+    """One name per scalar parameter, in ravelled order.
+
+    A dict ``{"beta": (3,), "sigma": ()}`` gives ``beta[0]``, ``beta[1]``,
+    ``beta[2]``, ``sigma``; a matrix leaf ``W`` of shape (2, 2) gives ``W[0,0]`` ...
+    ``W[1,1]``; a bare vector gives ``x[0]``, ``x[1]``, ...
+    """
+    leaves, _ = jax.tree_util.tree_flatten_with_path(position)
+    names: list[str] = []
+    for path, leaf in leaves:
+        base = _path_name(path)
+        shape = np.shape(leaf)
+        if shape == ():
+            names.append(base)
+            continue
+        for index in np.ndindex(*shape):
+            names.append(f"{base}[{','.join(str(i) for i in index)}]")
+    return tuple(names)
+
+
+def flatten_position(position: Any, *, where: str = "position") -> Flat:
+    """Validate a position and ravel it.
+
+    Raises
+    ------
+    InputError
+        If the position is empty, has a leaf that is not a floating-point array,
+        or holds a non-finite value.
+    """
+    leaves, _ = jax.tree_util.tree_flatten_with_path(position)
+    if not leaves:
+        raise InputError(
+            explain(
+                "The position has no array in it.",
+                where,
+                "pass a floating-point array, or a dict/tuple of them, with one entry "
+                "per parameter.",
+            )
+        )
+    for path, leaf in leaves:
+        name = _path_name(path)
+        try:
+            dtype = jnp.asarray(leaf).dtype
+        except TypeError as err:
+            raise InputError(
+                explain(
+                    f"Leaf '{name}' of the position is a {type(leaf).__name__}, "
+                    "not an array.",
+                    where,
+                    "make every leaf a floating-point array, e.g. jnp.asarray(value, float).",
+                )
+            ) from err
+        if not jnp.issubdtype(dtype, jnp.floating):
+            raise InputError(
+                explain(
+                    f"Leaf '{name}' of the position has dtype {dtype}; fisherwalk "
+                    "samples continuous parameters only.",
+                    where,
+                    f"convert it with jnp.asarray(..., dtype=float); a discrete "
+                    "parameter must be marginalised out of the log density.",
+                )
+            )
+    vector, unravel = ravel_pytree(position)
+    names = parameter_names(position)
+    bad = ~np.isfinite(np.asarray(vector))
+    if bad.any():
+        which = ", ".join(n for n, b in zip(names, bad) if b)
+        raise InputError(
+            explain(
+                f"The position holds non-finite values at {which}.",
+                where,
+                "start from finite values inside the support of the posterior.",
+            )
+        )
+    return Flat(vector, unravel, names)
