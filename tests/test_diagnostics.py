@@ -263,7 +263,12 @@ def test_khat_rejects_bad_weights():
         dg.pareto_khat(np.array([0.0] * 50 + [np.nan]))
     # fewer than 5 tail weights to fit (S <= 20, or ties): inf, as arviz.psislw does
     assert dg.pareto_khat(np.random.default_rng(0).normal(size=20)) == np.inf
-    assert dg.pareto_khat(np.zeros(100)) == np.inf
+    # all weights equal: the proposal is the target (an exactly Gaussian posterior against
+    # its Laplace approximation): -inf, the best possible value, never a false alarm.
+    # (arviz returns inf here; fisherwalk departs on purpose.)
+    assert dg.pareto_khat(np.zeros(100)) == -np.inf
+    assert dg.pareto_khat(np.full(500, 3.0) + 1e-13 * np.arange(500)) == -np.inf
+    assert np.isfinite(dg.pareto_khat(np.random.default_rng(1).normal(size=500)))
 
 
 # ---------------------------------------------------------------------------------------

@@ -12,7 +12,9 @@ from .errors import (
     ModelFileError,
     SamplingError,
 )
+from .checkpoint import resume
 from .laplace import LaplaceFit, laplace
+from .record import load_tuning, save_tuning
 from .sampling import Trace, walk
 from .scaling import ScaleChoice, optimal_scale
 from .walker import Tuning, Walker, start
@@ -26,6 +28,9 @@ __all__ = [
     "start",
     "refine",
     "walk",
+    "resume",
+    "save_tuning",
+    "load_tuning",
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",

@@ -411,7 +411,9 @@ def pareto_khat(log_weights) -> float:
     -------
     float
         k-hat; ``inf`` (read: cannot be trusted) when fewer than 5 tail weights are
-        left to fit, i.e. S <= 20 or ties among the largest weights.
+        left to fit, i.e. S <= 20 or ties among the largest weights; ``-inf`` when the
+        finite weights are all equal to rounding (the proposal is the target: an exactly
+        Gaussian posterior against its Laplace approximation).
     """
     where = "pareto_khat(log_weights)"
     try:
@@ -434,6 +436,9 @@ def pareto_khat(log_weights) -> float:
     if not np.isfinite(lw).any():
         raise InputError(explain("every log weight is -inf", where,
                                  "check the target and proposal log densities"))
+    finite = lw[np.isfinite(lw)]
+    if size > 20 and finite.size == size and np.ptp(finite) <= 1e-9 * max(1.0, np.abs(finite).max()):
+        return float("-inf")
     shifted = lw - np.max(lw)
     ordered = np.sort(shifted)
     cutoff = max(ordered[size - tail - 1], np.log(np.finfo(float).tiny))

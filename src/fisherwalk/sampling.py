@@ -112,7 +112,8 @@ class _Collector:
         host = jax.device_get((chunk.position, chunk.logdensity, chunk.accepted,
                                chunk.acceptance_rate, chunk.faults))
         for target, value in zip(
-            (self.flat, self.logdensity, self.accepted, self.acceptance_rate, self.faults), host
+            (self.flat, self.logdensity, self.accepted, self.acceptance_rate, self.faults), host,
+            strict=True,
         ):
             target[:, s] = np.swapaxes(value[:keep], 0, 1)
         self.done += keep
@@ -221,7 +222,7 @@ def walk(
         warnings.warn(
             f"walk() was interrupted after {collector.done} of {draws} draws per chain; the "
             "returned Trace holds them (complete=False). To make long runs resumable, pass "
-            "checkpoint='run.npz'.",
+            "checkpoint='run.ckpt'.",
             FisherwalkWarning,
             stacklevel=2,
         )

@@ -156,6 +156,9 @@ def proposal_shape(shape, fit: LaplaceFit) -> tuple[jax.Array, str]:
             )
         )
     if isinstance(shape, Tuning):
+        from .record import check_tuning
+
+        check_tuning(shape, fit.names)
         return jnp.asarray(shape.shape, dtype=fit.mode_flat.dtype), "saved"
     return _user_shape(shape, fit), "user"
 

@@ -1,0 +1,558 @@
+"""A walker's tuning as a plain JSON record, and back.
+
+The record keeps what was learned before the first step, so that a later run can
+reuse it or a checkpoint can rebuild its walker: the parameter names, the proposal
+shape S and the factor (l/√d)·S, the scale l and the target acceptance, the spectrum
+of A = Sᵀ H S, and the Laplace fit (mode and observed Fisher information H).
+
+Loaded with :func:`load_tuning`, a record is a :class:`SavedTuning`, which
+``start(..., shape=<SavedTuning>)`` accepts as the proposal shape of a refit: start()
+then computes the spectrum of A = Sᵀ H_new S against the new Fisher information and
+chooses the scale for that spectrum (:func:`fisherwalk.optimal_scale`).
+
+JSON is plain: numbers are lists of floats (Python writes the shortest repr that reads
+back to the same double, so float64 arrays survive bit for bit), and NaN or infinity is
+refused, both when writing and when reading.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from blackjax.mcmc.random_walk import RWState
+
+from . import proposal, pytrees
+from .engine import make_engine
+from .errors import InputError, explain
+from .laplace import LaplaceFit
+from .scaling import ScaleChoice
+from .walker import LaplaceCheck, StartReport, Tuning, Walker
+
+__all__ = [
+    "SavedTuning",
+    "tuning_record",
+    "save_tuning",
+    "load_tuning",
+    "read_record",
+    "check_tuning",
+    "walker_from_record",
+]
+
+FORMAT = "fisherwalk-tuning"
+FORMAT_VERSION = 1
+
+
+class SavedTuning(Tuning):
+    """A :class:`~fisherwalk.walker.Tuning` read from a record.
+
+    Besides the tuning fields it knows the parameter names it was made for
+    (``names``) and the record it came from (``record``), so that a model with other
+    parameters can be refused by name (:func:`check_tuning`).
+    """
+
+    names: tuple[str, ...] | None = None  # set per instance by load_tuning
+    record: dict | None = None
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+def _package_version() -> str:
+    try:
+        from importlib.metadata import version
+
+        return version("fisherwalk")
+    except Exception:  # noqa: BLE001 - not installed: fall back to the source tree's
+        from . import __version__
+
+        return str(__version__)
+
+
+def _plain_array(value: Any, field: str) -> list:
+    array = np.asarray(value, dtype=np.float64)
+    if not np.isfinite(array).all():
+        raise InputError(
+            explain(
+                f"The tuning field '{field}' holds a non-finite value (NaN or infinity); "
+                "a record stores finite numbers only.",
+                f"tuning_record(), field '{field}'",
+                "save a walker whose fit and tuning are finite (re-run fisherwalk.start).",
+            )
+        )
+    return array.tolist()
+
+
+def _plain_number(value: Any, field: str) -> float:
+    return float(_plain_array(value, field))
+
+
+def _structure(tree: Any) -> dict | None:
+    """The pytree structure of a position as plain JSON, or None when it has a node
+    type JSON cannot name (a NamedTuple, a dataclass, ...)."""
+    if isinstance(tree, dict):
+        if not all(isinstance(key, str) for key in tree):
+            return None
+        items = {key: _structure(value) for key, value in tree.items()}
+        return None if any(v is None for v in items.values()) else {"dict": items}
+    if type(tree) in (list, tuple):
+        items = [_structure(value) for value in tree]
+        return None if any(v is None for v in items) else {type(tree).__name__: items}
+    if tree is None:
+        return {"none": None}
+    if hasattr(tree, "shape") and hasattr(tree, "dtype"):
+        return {"array": {"shape": list(np.shape(tree)), "dtype": str(np.dtype(tree.dtype))}}
+    if isinstance(tree, float):
+        return {"array": {"shape": [], "dtype": "float64"}}
+    return None
+
+
+def _choice_record(choice: Any) -> dict | None:
+    if not isinstance(choice, ScaleChoice):
+        return None
+    out: dict[str, Any] = {}
+    for name, value in choice._asdict().items():
+        if value is None or isinstance(value, str):
+            out[name] = value
+        elif isinstance(value, bool | int | np.integer):
+            out[name] = int(value)
+        else:
+            out[name] = _plain_array(value, f"choice.{name}")
+    return out
+
+
+def _check_record(check: Any) -> dict | None:
+    """The PSIS check of the Laplace approximation (walker.LaplaceCheck) as numbers;
+    an infinite k̂ (too few finite draws) is written as null."""
+    if not isinstance(check, LaplaceCheck):
+        return None
+    return {name: (float(v) if math.isfinite(v) else None) if isinstance(v, float) else int(v)
+            for name, v in check._asdict().items()}
+
+
+def _laplace_check(values: Any) -> LaplaceCheck | None:
+    if not isinstance(values, dict) or set(values) != set(LaplaceCheck._fields):
+        return None
+    khat = values["khat"]
+    return LaplaceCheck(**{**values, "khat": math.inf if khat is None else float(khat)})
+
+
+def tuning_record(walker: Walker) -> dict:
+    """The walker's tuning and Laplace fit as a plain, JSON-ready dict.
+
+    Parameters
+    ----------
+    walker
+        From :func:`fisherwalk.start` or :func:`fisherwalk.refine`.
+
+    Returns
+    -------
+    dict
+        Keys ``format``, ``format_version``, ``package_version``, ``dim``, ``names``,
+        ``dtype``, ``structure`` (the position's pytree layout, or None), ``tuning``
+        (``shape_kind``, ``shape``, ``factor``, ``scale``, ``target_acceptance``,
+        ``spectrum``, ``predicted_jump``, ``whitening``, ``choice``), ``laplace``
+        (``mode``, ``logdensity``, ``fisher``, ``cholesky``, ...) and ``notes``.
+
+    Raises
+    ------
+    InputError
+        If the walker is not a Walker or holds a non-finite number.
+    """
+    if not isinstance(walker, Walker):
+        raise InputError(explain(f"Expected a Walker, got {type(walker).__name__}.",
+                                 "tuning_record(walker)",
+                                 "pass the result of fisherwalk.start() or refine()."))
+    tuning, fit = walker.tuning, walker.report.laplace
+    return {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "package_version": _package_version(),
+        "dim": int(tuning.dim),
+        "names": list(walker.names),
+        "dtype": str(np.asarray(tuning.factor).dtype),
+        "structure": _structure(fit.mode),
+        "tuning": {
+            "shape_kind": str(tuning.shape_kind),
+            "shape": _plain_array(tuning.shape, "shape"),
+            "factor": _plain_array(tuning.factor, "factor"),
+            "scale": _plain_number(tuning.scale, "scale"),
+            "target_acceptance": _plain_number(tuning.target_acceptance, "target_acceptance"),
+            "spectrum": _plain_array(tuning.spectrum, "spectrum"),
+            "predicted_jump": _plain_number(tuning.predicted_jump, "predicted_jump"),
+            "whitening": _plain_array(tuning.whitening, "whitening"),
+            "choice": _choice_record(tuning.choice),
+        },
+        "laplace": {
+            "mode": _plain_array(fit.mode_flat, "mode"),
+            "logdensity": _plain_number(fit.logdensity, "logdensity"),
+            "fisher": _plain_array(fit.fisher, "fisher"),
+            "cholesky": _plain_array(fit.cholesky, "cholesky"),
+            "gradient_norm": _plain_number(fit.gradient_norm, "gradient_norm"),
+            "fisher_source": str(getattr(fit, "fisher_source", "hessian")),
+        },
+        "check": _check_record(getattr(walker.report, "check", None)),
+        "notes": [str(note) for note in walker.report.notes],
+    }
+
+
+def save_tuning(walker: Walker, path: str | os.PathLike) -> Path:
+    """Write :func:`tuning_record` of a walker to a JSON file (atomically).
+
+    Returns the path written. NaN and infinity are refused (:class:`InputError`).
+    """
+    record = tuning_record(walker)
+    path = Path(path)
+    text = json.dumps(record, allow_nan=False, indent=1)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(tmp, "w", encoding="utf-8") as handle:
+            handle.write(text)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path
+
+
+# ----------------------------------------------------------------------------- reading
+
+
+def _refuse_constant(name: str):
+    raise ValueError(f"the JSON holds {name}, which a record does not allow")
+
+
+def _bad(what: str, where: str) -> InputError:
+    return InputError(explain(what, where, "use a record written by fisherwalk.save_tuning "
+                                           "(or tuning_record), unedited."))
+
+
+def read_record(source: str | os.PathLike | dict) -> dict:
+    """Read and validate a tuning record from a JSON file or a dict.
+
+    Raises
+    ------
+    InputError
+        Naming the file or field when the record is unreadable, from another format,
+        inconsistent, or holds NaN or infinity.
+    """
+    where = "load_tuning(<dict>)"
+    if isinstance(source, dict):
+        record = source
+    else:
+        where = f"file {os.fspath(source)}"
+        try:
+            with open(source, encoding="utf-8") as handle:
+                record = json.load(handle, parse_constant=_refuse_constant)
+        except OSError as err:
+            raise InputError(explain(f"The record cannot be read ({err.strerror}).", where,
+                                     "check the path.")) from err
+        except ValueError as err:
+            raise _bad(f"The record is not valid JSON ({err}).", where) from err
+    if not isinstance(record, dict) or record.get("format") != FORMAT:
+        raise _bad(f"This is not a fisherwalk tuning record (format {FORMAT!r} expected).",
+                   where)
+    if record.get("format_version") != FORMAT_VERSION:
+        raise _bad(f"Record format version {record.get('format_version')!r}; this fisherwalk "
+                   f"reads version {FORMAT_VERSION}.", where)
+    dim, names = record.get("dim"), record.get("names")
+    if isinstance(dim, bool) or not isinstance(dim, int) or dim < 1:
+        raise _bad(f"Field 'dim' is {dim!r}, not a positive integer.", where)
+    if (not isinstance(names, list) or len(names) != dim
+            or not all(isinstance(n, str) for n in names)):
+        raise _bad(f"Field 'names' must list {dim} parameter names.", where)
+    try:
+        floating = np.dtype(record.get("dtype")).kind == "f"
+    except TypeError:
+        floating = False
+    if not floating:
+        raise _bad(f"Field 'dtype' is {record.get('dtype')!r}, not a floating dtype.", where)
+    tuning, fit = record.get("tuning"), record.get("laplace")
+    if not isinstance(tuning, dict) or not isinstance(fit, dict):
+        raise _bad("Fields 'tuning' and 'laplace' must be objects.", where)
+    matrices = [("tuning", "shape"), ("tuning", "factor"), ("tuning", "whitening"),
+                ("laplace", "fisher"), ("laplace", "cholesky")]
+    for part, field in matrices:
+        _number_array(record[part].get(field), (dim, dim), f"{part}.{field}", where)
+    _number_array(tuning.get("spectrum"), (dim,), "tuning.spectrum", where)
+    _number_array(fit.get("mode"), (dim,), "laplace.mode", where)
+    for part, field in [("tuning", "scale"), ("tuning", "target_acceptance"),
+                        ("tuning", "predicted_jump"), ("laplace", "logdensity"),
+                        ("laplace", "gradient_norm")]:
+        _number_array(record[part].get(field), (), f"{part}.{field}", where)
+    if not isinstance(tuning.get("shape_kind"), str):
+        raise _bad("Field 'tuning.shape_kind' must be a string.", where)
+    shape = np.asarray(tuning["shape"])
+    expected = tuning["scale"] / math.sqrt(dim) * shape
+    rtol = 1e3 * float(np.finfo(np.dtype(record["dtype"])).eps)  # rounding of the dtype
+    if not np.allclose(tuning["factor"], expected, rtol=rtol, atol=1e-300):
+        raise _bad("Fields 'tuning.factor', 'tuning.scale' and 'tuning.shape' disagree: the "
+                   "factor must be (scale / sqrt(dim)) * shape.", where)
+    return record
+
+
+def _number_array(value: Any, shape: tuple, field: str, where: str) -> np.ndarray:
+    def numbers(x) -> bool:
+        if isinstance(x, list):
+            return all(numbers(v) for v in x)
+        return isinstance(x, int | float) and not isinstance(x, bool)
+
+    if value is None or not numbers(value):
+        raise _bad(f"Field '{field}' must hold numbers (shape {shape}).", where)
+    array = np.asarray(value, dtype=np.float64)
+    if array.shape != shape:
+        raise _bad(f"Field '{field}' has shape {array.shape}; expected {shape}.", where)
+    if not np.isfinite(array).all():
+        raise _bad(f"Field '{field}' holds NaN or infinity.", where)
+    return array
+
+
+def _choice(choice: dict | None, where: str) -> ScaleChoice | None:
+    """The scale computation behind the tuning (None when the record has none)."""
+    if not isinstance(choice, dict) or set(choice) != set(ScaleChoice._fields):
+        return None
+    values = dict(choice)
+    for name, value in choice.items():
+        if isinstance(value, list):
+            values[name] = _number_array(value, (len(value),), f"tuning.choice.{name}", where)
+        elif value is not None and not isinstance(value, str):
+            _number_array(value, (), f"tuning.choice.{name}", where)
+    return ScaleChoice(**values)
+
+
+def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
+    """Read a tuning record (a JSON file or the dict of :func:`tuning_record`).
+
+    Returns
+    -------
+    SavedTuning
+        A :class:`~fisherwalk.walker.Tuning` (arrays in the record's dtype) that also
+        carries ``names`` and ``record``. Pass it as ``start(..., shape=tuning)`` to
+        reuse its proposal shape on a refit; start() re-chooses the scale for the new
+        spectrum of A = Sᵀ H S.
+
+    Raises
+    ------
+    InputError
+        The record is unreadable, inconsistent, or holds NaN or infinity.
+    """
+    record = read_record(source)
+    t = record["tuning"]
+    dtype = np.dtype(record["dtype"])
+
+    def matrix(values):
+        return jnp.asarray(np.asarray(values, dtype=dtype))
+
+    tuning = SavedTuning(
+        float(t["scale"]),
+        float(t["target_acceptance"]),
+        matrix(t["factor"]),
+        matrix(t["shape"]),
+        int(record["dim"]),
+        t["shape_kind"],
+        np.asarray(t["spectrum"], dtype=np.float64),
+        float(t["predicted_jump"]),
+        _choice(t.get("choice"), "load_tuning()"),
+        matrix(t["whitening"]),
+    )
+    tuning.names = tuple(record["names"])
+    tuning.record = record
+    return tuning
+
+
+def _name_difference(saved: tuple[str, ...], names: tuple[str, ...], *,
+                     there: str = "the record", here: str = "this model") -> str:
+    """The difference between two lists of parameter names, in words."""
+    missing = [n for n in saved if n not in names]
+    extra = [n for n in names if n not in saved]
+    if missing or extra:
+        parts = []
+        if missing:
+            parts.append(f"{there} has {', '.join(missing[:6])} which {here} lacks")
+        if extra:
+            parts.append(f"{here} has {', '.join(extra[:6])} which {there} lacks")
+        return "; ".join(parts)
+    k = next(i for i, (a, b) in enumerate(zip(saved, names, strict=True)) if a != b)
+    return (f"same names in another order: position {k} is {saved[k]!r} in {there} and "
+            f"{names[k]!r} in {here}")
+
+
+def check_tuning(tuning: Tuning, names: tuple[str, ...], *,
+                 where: str = "start(shape=<saved tuning>)") -> None:
+    """Refuse a saved tuning made for other parameters (:class:`InputError`).
+
+    Compares the dimension, and the parameter names when the tuning carries them
+    (a :class:`SavedTuning`).
+    """
+    names = tuple(names)
+    d = len(names)
+    if int(tuning.dim) != d or tuple(np.shape(tuning.shape)) != (d, d):
+        raise InputError(
+            explain(
+                f"The saved tuning is for {tuning.dim} parameters; this model has {d} "
+                f"({', '.join(names[:6])}{', ...' if d > 6 else ''}).",
+                where,
+                "pass a tuning saved from a model with the same parameters, or use "
+                "shape='fisher'.",
+            )
+        )
+    saved = getattr(tuning, "names", None)
+    if saved is not None and tuple(saved) != names:
+        raise InputError(
+            explain(
+                "The saved tuning was made for other parameters: "
+                f"{_name_difference(tuple(saved), names)}.",
+                where,
+                "pass a tuning saved from a model with the same parameters (same names, same "
+                "order), or use shape='fisher'.",
+            )
+        )
+
+
+# ----------------------------------------------------------------------------- rebuilding
+
+
+def _template(structure: Any, dtype: np.dtype) -> Any:
+    (kind, body), = structure.items()
+    if kind == "dict":
+        return {key: _template(value, dtype) for key, value in body.items()}
+    if kind in ("list", "tuple"):
+        items = [_template(value, dtype) for value in body]
+        return items if kind == "list" else tuple(items)
+    if kind == "none":
+        return None
+    if kind == "array":
+        return jnp.zeros(tuple(body["shape"]), dtype=np.dtype(body["dtype"]))
+    raise ValueError(kind)
+
+
+def _unravel_for(record: dict, position: Any) -> Callable:
+    where = "walker_from_record()"
+    names = tuple(record["names"])
+    if position is None:
+        structure = record.get("structure")
+        if structure is None:
+            raise InputError(explain(
+                "The record does not describe the position's structure (it used a node type "
+                "JSON cannot name, such as a NamedTuple).", where,
+                "pass position=<a position of the model> so the structure can be rebuilt."))
+        try:
+            position = _template(structure, np.dtype(record["dtype"]))
+        except (AttributeError, KeyError, TypeError, ValueError) as err:
+            raise _bad("Field 'structure' is malformed.", where) from err
+    flat = pytrees.flatten_position(jax.tree.map(jnp.zeros_like, position), where=where)
+    if flat.names != names:
+        raise InputError(explain(
+            "The position's structure does not give the record's parameters: "
+            f"{_name_difference(names, flat.names)}.", where,
+            "pass a position of the model the record was written for."))
+    return flat.unravel
+
+
+def walker_from_record(
+    record: dict,
+    logdensity_fn: Callable,
+    positions: Any,
+    logdensity: Any = None,
+    *,
+    position: Any = None,
+) -> Walker:
+    """Rebuild a :class:`~fisherwalk.walker.Walker` from a record and a log density.
+
+    The log density cannot be stored; the tuning (factor, scale, target acceptance,
+    spectrum, whitening) and the Laplace fit are taken from the record unchanged, the
+    BlackJAX algorithm and the compiled engine are built anew.
+
+    Parameters
+    ----------
+    record
+        A tuning record (dict or JSON path), see :func:`tuning_record`.
+    logdensity_fn
+        The model's log density, ``position -> scalar``.
+    positions
+        (chains, d) ravelled chain positions to start from.
+    logdensity
+        (chains,) log densities there; computed when None.
+    position
+        A position of the model, needed only when the record could not describe the
+        pytree structure (``record["structure"]`` is None).
+
+    Raises
+    ------
+    InputError
+        Malformed record, positions of the wrong shape or not finite, or a position
+        structure that does not give the record's parameter names.
+    """
+    tuning = load_tuning(record)
+    record = tuning.record
+    dim, names = tuning.dim, tuning.names
+    unravel = _unravel_for(record, position)
+    dtype = np.dtype(record["dtype"])
+    where = "walker_from_record(positions=...)"
+    flat = np.asarray(positions)
+    if flat.ndim != 2 or flat.shape[1] != dim or flat.shape[0] < 1:
+        raise InputError(explain(f"positions has shape {flat.shape}; expected (chains, {dim}).",
+                                 where, "pass one ravelled position per chain."))
+    if not np.isfinite(flat).all():
+        raise InputError(explain("positions holds non-finite values.", where,
+                                 "pass finite chain positions."))
+    flat = jnp.asarray(flat.astype(dtype, copy=False))
+    chains = int(flat.shape[0])
+
+    def flat_logdensity(vector):
+        return logdensity_fn(unravel(vector))
+
+    evaluate = jax.jit(jax.vmap(flat_logdensity))
+    if logdensity is None:
+        logdensity = evaluate(flat)
+    logdensity = jnp.asarray(np.asarray(logdensity).astype(dtype, copy=False))
+    if logdensity.shape != (chains,) or not np.isfinite(np.asarray(logdensity)).all():
+        raise InputError(explain(
+            f"The log densities at the positions have shape {logdensity.shape} or are not "
+            "finite.", "walker_from_record(logdensity=...)",
+            "pass positions inside the model's support (one finite value per chain)."))
+    fit_values = record["laplace"]
+    mode_flat = jnp.asarray(np.asarray(fit_values["mode"], dtype=dtype))
+    mode = unravel(mode_flat)
+    known = {
+        "mode": mode,
+        "mode_flat": mode_flat,
+        "logdensity": float(fit_values["logdensity"]),
+        "fisher": jnp.asarray(np.asarray(fit_values["fisher"], dtype=dtype)),
+        "cholesky": jnp.asarray(np.asarray(fit_values["cholesky"], dtype=dtype)),
+        "gradient_norm": float(fit_values["gradient_norm"]),
+        "iterations": 0,
+        "evaluations": 0,
+        "converged": True,
+        "names": names,
+        "fisher_source": str(fit_values.get("fisher_source", "hessian")),
+        "modes": ((mode, float(fit_values["logdensity"])),),
+        "warnings": (),
+        "seconds": {},
+    }
+    fit = LaplaceFit(**{field: known.get(field) for field in LaplaceFit._fields})
+    notes = tuple(str(n) for n in record.get("notes", ())) + (
+        "Walker rebuilt from a saved record: the tuning and the Laplace fit were not "
+        "recomputed.",)
+    report = {"laplace": fit, "check": _laplace_check(record.get("check")), "notes": notes}
+    parts = {
+        "algorithm": proposal.blackjax_algorithm(logdensity_fn, tuning.factor),
+        "states": RWState(jax.vmap(unravel)(flat), logdensity),
+        "tuning": tuning,
+        "report": StartReport(**{f: report.get(f) for f in StartReport._fields}),
+        "logdensity_fn": logdensity_fn,
+        "names": names,
+        "unravel": unravel,
+        "engine": make_engine(flat_logdensity, chains),
+        "evaluate": evaluate,
+    }
+    return Walker(**{field: parts[field] for field in Walker._fields})
