@@ -1,0 +1,641 @@
+"""The console command ``fisherwalk``: the whole workflow from a shell.
+
+Subcommands
+-----------
+``demo``   fit, tune, warm up, sample and diagnose an invented demo scenario
+           (:mod:`fisherwalk.scenarios`), and write plots, data, draws and a record.
+``scale``  the optimal scale l and target acceptance for given dimensions.
+``run``    the same workflow as ``demo`` on a model file of the user's.
+
+The command is an application, so it switches JAX to float64 for itself (the library
+never changes JAX's configuration). :func:`workflow` runs the steps (start, refine,
+walk, summary); :func:`write_outputs` writes ``draws.npz`` (plain arrays, no pickle),
+the plots and ``record.json``; :func:`load_model` imports and checks a model file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import importlib.util
+import json
+import math
+import platform
+import sys
+import textwrap
+import time
+import traceback
+from collections.abc import Sequence
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any, NamedTuple
+
+import numpy as np
+
+from .errors import FisherwalkError, InputError, ModelFileError, explain
+
+__all__ = ["main", "load_model", "ModelSpec", "workflow", "RunResult"]
+
+DEFAULT_CHAINS = 4
+# Random-walk Metropolis makes about 0.3/d effective draws per step at the optimal scale
+# (Roberts, Gelman & Gilks 1997); for the demo's d = 8, 4 chains x 8000 draws give a bulk
+# ESS near 1,300, enough for R-hat's own noise to stay below 1.01 (measured: 2000 draws
+# left every ESS below 400, 5000 gave an R-hat of 1.011 for one seed of four).
+DEFAULT_DRAWS = 8000
+DEFAULT_WARMUP = 400
+DEFAULT_SEED = 0
+PACKAGES = ("fisherwalk", "jax", "jaxlib", "blackjax", "optax", "numpy", "scipy")
+
+_TRUST = ("'run' executes the Python code in MODEL_FILE with your own rights (the file\n"
+          "is imported like any module): run only model files you trust.")
+
+
+# ------------------------------------------------------------------------------ model files
+
+
+class ModelSpec(NamedTuple):
+    """What a model file provides."""
+
+    path: Path
+    logdensity: Any  # position -> scalar
+    initial_position: Any  # pytree of floats
+    fisher: Any  # None, a (d, d) matrix, or mode -> (d, d)
+    labels: tuple[str, ...] | None  # readable names, one per scalar parameter
+    dim: int
+
+
+def _file_problem(path: Path, what: str, todo: str) -> ModelFileError:
+    return ModelFileError(explain(what, f"model file {path}", todo))
+
+
+def load_model(path) -> ModelSpec:
+    """Import a model file and check what it defines.
+
+    The file must define ``logdensity(position)`` (a JAX function returning a scalar)
+    and ``initial_position`` (a pytree of floating arrays); it may define
+    ``fisher(mode)`` (or a matrix) and ``names`` (one label per scalar parameter).
+    Importing the file runs its code.
+
+    Raises
+    ------
+    ModelFileError
+        The file is missing, fails to import, lacks a name, or its log density does
+        not return a finite-shaped scalar at ``initial_position``.
+    """
+    import jax
+
+    path = Path(path)
+    if not path.is_file():
+        raise _file_problem(path, "The model file does not exist (or is not a file).",
+                            "check the path; the file must be a Python file defining "
+                            "logdensity and initial_position.")
+    module_name = f"_fisherwalk_model_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:12]}"
+    spec = importlib.util.spec_from_file_location(module_name, path)
+    if spec is None or spec.loader is None:
+        raise _file_problem(path, "Python cannot load this file as a module.",
+                            "give a file whose name ends in .py.")
+    module = importlib.util.module_from_spec(spec)
+    try:
+        spec.loader.exec_module(module)
+    except BaseException as err:  # noqa: BLE001 - any failure of the user's code is reported
+        if isinstance(err, KeyboardInterrupt | SystemExit):
+            raise
+        raise _file_problem(path, f"Importing it raised {_describe(err, path)}",
+                            "fix the file so that `python MODEL_FILE` runs without error."
+                            ) from None
+    missing = [n for n in ("logdensity", "initial_position") if not hasattr(module, n)]
+    if missing:
+        raise _file_problem(path, f"It does not define {' or '.join(missing)}.",
+                            "define logdensity(position) -> scalar and initial_position "
+                            "(e.g. {'beta': jnp.zeros(3)}) at the top level of the file.")
+    logdensity = module.logdensity
+    if not callable(logdensity):
+        raise _file_problem(path, f"logdensity is a {type(logdensity).__name__}, not a function.",
+                            "define logdensity as a function of the position.")
+    position = module.initial_position
+    try:
+        value = logdensity(position)
+        shape = np.shape(value)
+    except Exception as err:  # noqa: BLE001
+        raise _file_problem(path, f"logdensity(initial_position) raised {_describe(err, path)}",
+                            "make logdensity accept initial_position's structure.") from None
+    if shape != ():
+        raise _file_problem(path, f"logdensity(initial_position) returns an array of shape "
+                            f"{shape}, not a scalar.",
+                            "sum the log likelihood over observations (e.g. jnp.sum(...)) so "
+                            "that it returns one number.")
+    leaves = jax.tree_util.tree_leaves(position)
+    dim = int(sum(np.size(leaf) for leaf in leaves))
+    fisher = getattr(module, "fisher", None)
+    labels = getattr(module, "names", None)
+    if labels is not None:
+        labels = tuple(str(label) for label in labels)
+        if len(labels) != dim:
+            raise _file_problem(path, f"names has {len(labels)} entries but the position has "
+                                f"{dim} scalar parameters.",
+                                "give one name per scalar parameter, in ravelled order "
+                                "(dict keys sorted, arrays row-major), or leave names out.")
+    return ModelSpec(path, logdensity, position, fisher, labels, dim)
+
+
+def _describe(err: BaseException, path: Path) -> str:
+    """'TypeError: message (line 12)': the exception and the line of the model file."""
+    line = ""
+    for frame in reversed(traceback.extract_tb(err.__traceback__)):
+        if Path(frame.filename).resolve() == path.resolve():
+            line = f" (line {frame.lineno}: {frame.line.strip() if frame.line else ''})"
+            break
+    if isinstance(err, SyntaxError) and err.lineno:
+        line = f" (line {err.lineno})"
+    return f"{type(err).__name__}: {err}{line}"
+
+
+# --------------------------------------------------------------------------------- workflow
+
+
+class RunResult(NamedTuple):
+    """Everything one workflow run produced."""
+
+    trace: Any  # fisherwalk.Trace
+    summary: Any  # fisherwalk.report.Summary
+    seconds: dict[str, float]  # wall time of each step
+    keys: dict[str, list[int]]  # key data of each step's key
+
+
+class _Say:
+    """Narration on stdout (unless quiet) and a 'working on it' line on stderr."""
+
+    def __init__(self, quiet: bool):
+        self.quiet = quiet
+        self.tty = sys.stderr.isatty()
+
+    def __call__(self, text: str = "") -> None:
+        if not self.quiet:
+            print(text, flush=True)
+
+    def busy(self, text: str) -> None:
+        if not self.quiet and self.tty:
+            print(f"  ... {text}", file=sys.stderr, flush=True)
+
+
+def workflow(logdensity, position, *, seed: int, chains: int, draws: int,
+             warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None) -> RunResult:
+    """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary."""
+    import jax
+
+    import fisherwalk
+
+    say = say or _Say(quiet=True)
+    progress = None if not say.quiet else False
+    key = jax.random.key(seed)
+    k_start, k_warm, k_walk = jax.random.split(key, 3)
+    keys = {name: np.asarray(jax.random.key_data(k)).tolist()
+            for name, k in (("start", k_start), ("warmup", k_warm), ("sampling", k_walk))}
+    seconds: dict[str, float] = {}
+
+    say.busy("Laplace fit: mode search and Fisher information (includes compilation)")
+    t = time.perf_counter()
+    walker = fisherwalk.start(logdensity, position, k_start, chains, fisher=fisher)
+    seconds["start"] = time.perf_counter() - t
+    _say_fit(say, walker, seconds["start"])
+
+    t = time.perf_counter()
+    walker = fisherwalk.refine(walker, k_warm, warmup, progress=progress)
+    seconds["warmup"] = time.perf_counter() - t
+    _say_warmup(say, walker, seconds["warmup"], chains)
+
+    t = time.perf_counter()
+    trace = fisherwalk.walk(walker, k_walk, draws, progress=progress)
+    seconds["sampling"] = time.perf_counter() - t
+
+    t = time.perf_counter()
+    summary = trace.summary()
+    seconds["diagnostics"] = time.perf_counter() - t
+    _say_sampling(say, trace, summary, seconds["sampling"])
+    return RunResult(trace, summary, seconds, keys)
+
+
+def _say_fit(say: _Say, walker, seconds: float) -> None:
+    fit, tuning = walker.report.laplace, walker.tuning
+    cond = np.linalg.cond(np.asarray(fit.fisher))
+    source = "autodiff Hessian" if fit.fisher_source == "hessian" else "from the model"
+    say(_step("[1/4] Laplace fit (compilation included)", seconds))
+    say(f"      mode after {fit.iterations} iterations, largest |gradient| {fit.gradient_norm:.1e}")
+    say(f"      Fisher information H: {source}, condition number {cond:.3g}")
+    check = getattr(walker.report, "check", None)
+    if check is not None and hasattr(check, "khat"):
+        verdict = "holds" if check.khat <= check.threshold else "is doubtful"
+        say(f"      Laplace check: PSIS k̂ {check.khat:.2f} (limit {check.threshold:.2f}): "
+            f"the Gaussian picture {verdict}")
+    say(f"[2/4] tuning from the theory, d = {tuning.dim}")
+    say(f"      scale l = {tuning.scale:.3f}, step (l/√d)·S z with l/√d = "
+        f"{tuning.scale / math.sqrt(tuning.dim):.3f}, S Sᵀ = H⁻¹ ({tuning.shape_kind})")
+    say(f"      target acceptance {tuning.target_acceptance:.3f}; predicted jump "
+        f"{tuning.predicted_jump:.3f} per step (squared, in sd of N(mode, H⁻¹))")
+    for note in walker.report.notes:
+        say(_wrap(f"note: {note}"))
+
+
+def _say_warmup(say: _Say, walker, seconds: float, chains: int) -> None:
+    warm = walker.report.warmup
+    say(_step(f"[3/4] warm-up, {warm.steps} steps x {chains} chains", seconds))
+    ratio = warm.scale_final / warm.scale_start
+    say(f"      scale {warm.scale_start:.3f} -> {warm.scale_final:.3f} (x{ratio:.2f}); "
+        f"acceptance {warm.acceptance_final:.3f} vs target {warm.target_acceptance:.3f}")
+    low, high = warm.spectrum_bounds
+    spec = np.asarray(warm.covariance_spectrum)
+    say(f"      warm-up covariance against H⁻¹: eigenvalues {spec.min():.2f} to {spec.max():.2f}")
+    say(f"      (Monte Carlo error allows {low:.2f} to {high:.2f} with "
+        f"{warm.effective_draws:.0f} effective draws)")
+    if warm.reshaped:
+        say(_wrap("      proposal shape re-estimated because: " + "; ".join(warm.reasons)
+                  if warm.reasons else "      proposal shape re-estimated (asked for)"))
+    else:
+        say("      proposal shape kept: every check agreed with the Gaussian picture")
+
+
+def _say_sampling(say: _Say, trace, summary, seconds: float) -> None:
+    chains, draws = trace.flat.shape[:2]
+    say(_step(f"[4/4] sampling, {draws} draws x {chains} chains", seconds))
+    per_chain = " ".join(f"{a:.3f}" for a in np.mean(trace.accepted, axis=1))
+    say(f"      acceptance: target {summary.target_acceptance:.3f}, realised "
+        f"{summary.acceptance_pooled:.3f} (chains: {per_chain})")
+    if summary.realised_jump is not None:
+        say(f"      jump per step: predicted {summary.predicted_jump:.3f}, realised "
+            f"{summary.realised_jump:.3f}")
+
+
+def _step(title: str, seconds: float) -> str:
+    return f"{title:<44}{seconds:6.1f} s"
+
+
+def _wrap(text: str) -> str:
+    return textwrap.fill(text, width=96, subsequent_indent="        ")
+
+
+# ------------------------------------------------------------------------------ the record
+
+
+def _versions() -> dict[str, str]:
+    from importlib.metadata import PackageNotFoundError, version
+
+    out = {}
+    for name in PACKAGES:
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = "not installed"
+    out["python"] = platform.python_version()
+    return out
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready: arrays to lists, NamedTuples to dicts, non-finite floats to strings."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if hasattr(value, "_asdict"):
+        return {k: _plain(v) for k, v in value._asdict().items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, str | bool) or value is None:
+        return value
+    if isinstance(value, int | np.integer):
+        return int(value)
+    try:
+        array = np.asarray(value)
+    except Exception:  # noqa: BLE001 - an object JSON cannot hold
+        return repr(value)
+    if array.dtype.kind in "fiub" and array.ndim > 0:
+        return [_plain(v) for v in array.tolist()]
+    if array.dtype.kind in "iub":
+        return int(array)
+    if array.dtype.kind == "f":
+        number = float(array)
+        return number if math.isfinite(number) else str(number)
+    return repr(value)
+
+
+def _sha256(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def build_record(command: str, argv: Sequence[str], options: dict, result: RunResult,
+                 extra: dict) -> dict:
+    """Every setting and result needed to reproduce and judge a run, JSON-ready."""
+    from . import record as _record
+
+    trace = result.trace
+    walker = trace.walker
+    fit = walker.report.laplace
+    laplace = {name: getattr(fit, name) for name in (
+        "logdensity", "gradient_norm", "iterations", "evaluations", "converged",
+        "fisher_source", "warnings", "seconds")}
+    laplace["mode"] = dict(zip(fit.names, np.asarray(fit.mode_flat).tolist(), strict=True))
+    sd = np.sqrt(np.diag(np.linalg.inv(np.asarray(fit.fisher))))
+    laplace["sd"] = dict(zip(fit.names, sd.tolist(), strict=True))
+    return _plain({
+        "format": "fisherwalk-run",
+        "format_version": 1,
+        "command": command,
+        "argv": list(argv),
+        "created": datetime.now(UTC).isoformat(timespec="seconds"),
+        "versions": _versions(),
+        "platform": platform.platform(),
+        "float64": True,
+        "seed": options["seed"],
+        "keys": {"derivation": "start, warmup, sampling = jax.random.split(jax.random.key("
+                               "seed), 3)", **result.keys},
+        "options": options,
+        "laplace": laplace,
+        "tuning": _record.tuning_record(walker),
+        "warmup": walker.report.warmup,
+        "summary": result.summary.to_dict(),
+        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin},
+        "seconds": result.seconds,
+        **extra,
+    })
+
+
+def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[str, Path]:
+    """draws.npz, the plots and record.json (written last, listing the other files)."""
+    from . import plots
+
+    trace = result.trace
+    files = {}
+    draws_path = out / "draws.npz"
+    np.savez(draws_path, draws=np.asarray(trace.flat), names=np.asarray(trace.names),
+             logdensity=np.asarray(trace.logdensity), accepted=np.asarray(trace.accepted))
+    files["draws"] = draws_path
+    for path in plots.save_all(trace, out, labels=labels):
+        files[path.stem] = path
+    record["files"] = {name: {"path": path.name, "sha256": _sha256(path)}
+                       for name, path in files.items()}
+    record_path = out / "record.json"
+    record_path.write_text(json.dumps(record, indent=1, allow_nan=False) + "\n")
+    files["record"] = record_path
+    return files
+
+
+# ---------------------------------------------------------------------------- subcommands
+
+
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"{value} is not positive")
+    return value
+
+
+def _nonnegative(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{value} is negative")
+    return value
+
+
+def _options(args) -> dict:
+    import inspect
+
+    from .laplace import laplace
+
+    defaults = {k: v.default for k, v in inspect.signature(laplace).parameters.items()
+                if v.default is not inspect.Parameter.empty}
+    eps = float(np.finfo(np.float64).eps)
+    return {
+        "seed": args.seed, "chains": args.chains, "draws": args.draws,
+        "warmup_steps": args.warmup, "thin": 1, "shape": "fisher", "criterion": "slowest",
+        "laplace": {"max_iterations": defaults.get("max_iterations"),
+                    "gradient_tolerance": defaults.get("gradient_tolerance") or math.sqrt(eps),
+                    "restarts": defaults.get("restarts", 0)},
+    }
+
+
+def _say_files(say: _Say, out: Path, files: dict[str, Path]) -> None:
+    say(f"files in {out}/")
+    for name, path in files.items():
+        say(f"  {path.name:<22} {name}")
+
+
+def _demo(args, argv) -> int:
+    from . import scenarios
+
+    say = _Say(args.quiet)
+    began = time.perf_counter()
+    scene = scenarios.scenario(args.scenario)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    data_path = scene.to_csv(out / "data.csv")
+    n, p = scene.X.shape
+    say(f"fisherwalk demo: the '{scene.name}' scenario (invented data, seed {scene.seed})")
+    say("=" * 72)
+    say(textwrap.indent(scene.story, "  "))
+    say(f"\n  {n:,} records, {p} coefficients ({scene.family}); data in {data_path}")
+    say(f"  {args.chains} chains x {args.draws} draws after {args.warmup} warm-up steps, "
+        f"seed {args.seed}\n")
+    result = workflow(scene.logdensity, scene.initial_position, seed=args.seed,
+                      chains=args.chains, draws=args.draws, warmup=args.warmup, say=say)
+    print()
+    print(str(result.summary))
+    truth = _truth_table(scene, result.summary)
+    print()
+    print(truth["text"])
+    extra = {"scenario": {"name": scene.name, "records": n, "family": scene.family,
+                          "data_seed": scene.seed, "prior_sd": scene.prior_sd,
+                          "labels": list(scene.names), "true_beta": scene.true_beta,
+                          "data_file": data_path.name, "data_sha256": _sha256(data_path)},
+             "truth": truth["rows"]}
+    t = time.perf_counter()
+    say.busy("writing the figures and the record")
+    record = build_record("demo", argv, _options(args), result, extra)
+    files = {"data": data_path, **write_outputs(out, result, record, scene.names)}
+    say(f"\nplots and record written in {time.perf_counter() - t:.1f} s")
+    _say_files(say, out, files)
+    say(f"wall time {time.perf_counter() - began:.1f} s")
+    return 0
+
+
+def _truth_table(scene, summary) -> dict:
+    rows, lines = [], []
+    lines.append("Against the truth (the data were simulated from these coefficients):")
+    lines.append(f"  {'parameter':<26}{'true':>8}{'mean':>9}{'sd':>8}{'(mean-true)/sd':>16}")
+    for j, (name, label) in enumerate(zip(summary.names, scene.names, strict=True)):
+        mean, sd, true = float(summary.mean[j]), float(summary.sd[j]), float(scene.true_beta[j])
+        z = (mean - true) / sd
+        rows.append({"name": name, "label": label, "true": true, "mean": mean, "sd": sd,
+                     "z": z})
+        lines.append(f"  {name + ' ' + label:<26}{true:>8.3f}{mean:>9.3f}{sd:>8.3f}{z:>+16.2f}")
+    worst = max(abs(r["z"]) for r in rows)
+    low, high = _max_z_range(len(rows))
+    lines.append(f"  largest |mean - true| / sd: {worst:.2f}. Each ratio is about a standard "
+                 "normal draw (one data set),")
+    lines.append(f"  so with {len(rows)} coefficients the largest falls between {low:.1f} and "
+                 f"{high:.1f} in 90% of data sets.")
+    return {"rows": rows, "text": "\n".join(lines)}
+
+
+def _max_z_range(count: int) -> tuple[float, float]:
+    """5% and 95% quantiles of max |Z_i| over ``count`` independent standard normals:
+    P(max <= x) = (2 Phi(x) - 1)^count. By Bernstein-von Mises the posterior mean sits
+    about N(truth, sd²) over repeated data sets (van der Vaart 1998, Asymptotic
+    Statistics, ch. 10)."""
+    from scipy.stats import norm
+
+    return tuple(float(norm.ppf((1.0 + q ** (1.0 / count)) / 2.0)) for q in (0.05, 0.95))
+
+
+def _scale(args) -> int:
+    from .scaling import optimal_scale
+
+    choices = [optimal_scale(d) for d in args.dims]
+    if args.json:
+        payload = [{"dim": c.dim, "scale": c.scale, "acceptance": c.acceptance,
+                    "jump_distance": c.jump_distance} for c in choices]
+        print(json.dumps(payload, indent=1))
+        return 0
+    print("Optimal random-walk Metropolis scale for a proposal matched to H⁻¹")
+    print("(Gaussian limit; step = (l/√d)·S z, jump in squared posterior-sd units)\n")
+    print(f"{'d':>10}  {'scale l':>8}  {'l/√d':>9}  {'acceptance':>10}  {'jump/step':>9}")
+    for c in choices:
+        print(f"{c.dim:>10}  {c.scale:>8.4f}  {c.scale / math.sqrt(c.dim):>9.5f}  "
+              f"{c.acceptance:>10.4f}  {c.jump_distance:>9.4f}")
+    return 0
+
+
+def _run(args, argv) -> int:
+    say = _Say(args.quiet)
+    began = time.perf_counter()
+    model = load_model(args.model_file)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    say(f"fisherwalk run: {model.path} ({model.dim} parameters)")
+    say("=" * 72)
+    say(f"  {args.chains} chains x {args.draws} draws after {args.warmup} warm-up steps, "
+        f"seed {args.seed}\n")
+    result = workflow(model.logdensity, model.initial_position, seed=args.seed,
+                      chains=args.chains, draws=args.draws, warmup=args.warmup,
+                      fisher=model.fisher, say=say)
+    print()
+    print(str(result.summary))
+    extra = {"model_file": {"path": str(model.path.resolve()), "sha256": _sha256(model.path),
+                            "labels": list(model.labels) if model.labels else None,
+                            "fisher": "from the model file" if model.fisher is not None
+                            else "autodiff Hessian"}}
+    say.busy("writing the figures and the record")
+    record = build_record("run", argv, _options(args), result, extra)
+    files = write_outputs(out, result, record, model.labels)
+    say()
+    _say_files(say, out, files)
+    say(f"wall time {time.perf_counter() - began:.1f} s")
+    return 0
+
+
+# ---------------------------------------------------------------------------------- parser
+
+
+def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
+    sub.add_argument("--out", default=out_default, metavar="DIR",
+                     help=f"output folder, created if needed (default: {out_default})")
+    sub.add_argument("--chains", type=_positive, default=DEFAULT_CHAINS, metavar="N",
+                     help=f"number of chains (default {DEFAULT_CHAINS})")
+    sub.add_argument("--draws", type=_positive, default=DEFAULT_DRAWS, metavar="N",
+                     help=f"draws kept per chain after the warm-up (default {DEFAULT_DRAWS})")
+    sub.add_argument("--warmup", type=_positive, default=DEFAULT_WARMUP, metavar="N",
+                     help=f"warm-up steps per chain (default {DEFAULT_WARMUP})")
+    sub.add_argument("--seed", type=_nonnegative, default=DEFAULT_SEED, metavar="S",
+                     help=f"seed of the JAX random key (default {DEFAULT_SEED})")
+    sub.add_argument("--quiet", action="store_true",
+                     help="no progress bars and no step-by-step account; print the tables")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of ``fisherwalk`` (exposed for documentation and tests)."""
+    fmt = argparse.RawDescriptionHelpFormatter
+    parser = argparse.ArgumentParser(
+        prog="fisherwalk", formatter_class=fmt,
+        description="Random-walk Metropolis tuned before its first step from the Laplace "
+                    "approximation\n(mode and observed Fisher information) of the posterior.",
+        epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
+               "  fisherwalk run my_model.py --out results\n\n"
+               "'fisherwalk COMMAND --help' describes each command.")
+    subs = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    demo = subs.add_parser(
+        "demo", formatter_class=fmt, help="the whole workflow on an invented demo data set",
+        description="Fit, tune, warm up, sample and diagnose an invented regression, then "
+                    "compare the\nposterior with the coefficients the data were simulated "
+                    "from. Writes data.csv,\ndraws.npz, record.json and four PNG figures.",
+        epilog="examples:\n  fisherwalk demo\n  fisherwalk demo --scenario poisson --out culverts"
+               "\n  fisherwalk demo --chains 2 --draws 500 --seed 7 --quiet")
+    _common(demo, "fisherwalk-demo")
+    demo.add_argument("--scenario", choices=("logistic", "poisson"), default="logistic",
+                      help="logistic: seed-bank germination test, 20,000 records, 8 "
+                           "coefficients; poisson: culvert blockage counts, 6,000 records, "
+                           "6 coefficients (default logistic)")
+
+    scale = subs.add_parser(
+        "scale", formatter_class=fmt, help="optimal scale and acceptance for dimensions",
+        description="The scale l maximising the expected squared jump of random-walk "
+                    "Metropolis with\na proposal matched to the posterior's covariance, and "
+                    "the acceptance rate it implies,\nfor each dimension d (Gaussian limit, "
+                    "computed for finite d).",
+        epilog="examples:\n  fisherwalk scale 1 2 5 10 100\n  fisherwalk scale 4 --json")
+    scale.add_argument("dims", type=_positive, nargs="+", metavar="DIM",
+                       help="number of scalar parameters d")
+    scale.add_argument("--json", action="store_true",
+                       help="print a JSON list of {dim, scale, acceptance, jump_distance}")
+
+    run = subs.add_parser(
+        "run", formatter_class=fmt, help="the whole workflow on your model file",
+        description="Run the workflow on a Python model file that defines\n"
+                    "  logdensity(position) -> scalar   the log posterior, written in JAX\n"
+                    "  initial_position                 a pytree of floats to start from\n"
+                    "and optionally\n"
+                    "  fisher(mode) -> (d, d)           your Fisher information (else autodiff)\n"
+                    "  names                            one label per scalar parameter\n\n"
+                    "Warning: " + _TRUST,
+        epilog="examples:\n  fisherwalk run model.py\n"
+               "  fisherwalk run model.py --out results --chains 6 --draws 4000 --seed 3\n\n"
+               "A minimal model.py:\n"
+               "  import jax.numpy as jnp\n"
+               "  y = jnp.array([2.1, 1.7, 2.6, 2.2])\n"
+               "  def logdensity(p):\n"
+               "      return -0.5 * jnp.sum((y - p['mu']) ** 2) - 0.5 * p['mu'] ** 2 / 100\n"
+               "  initial_position = {'mu': jnp.asarray(0.0)}")
+    run.add_argument("model_file", metavar="MODEL_FILE", help="path of the model file (.py)")
+    _common(run, "fisherwalk-run")
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``fisherwalk`` command; returns the exit code.
+
+    Exit codes: 0 success; 2 a usage error or a model file that cannot be used; 1 a
+    failure of the fit or the sampling (the message says what and where).
+    """
+    argv = list(sys.argv[1:] if argv is None else argv)
+    args = build_parser().parse_args(argv)
+    import jax
+
+    jax.config.update("jax_enable_x64", True)  # the application's choice, not the library's
+    try:
+        if args.command == "scale":
+            return _scale(args)
+        if args.command == "demo":
+            return _demo(args, argv)
+        return _run(args, argv)
+    except (ModelFileError, InputError) as err:
+        print(f"fisherwalk {args.command}: {err}", file=sys.stderr)
+        return 2
+    except FisherwalkError as err:
+        print(f"fisherwalk {args.command}: {err}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

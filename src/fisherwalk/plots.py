@@ -1,0 +1,375 @@
+"""Figures of a walk, saved as PNG files (optional extra: ``pip install fisherwalk[plots]``).
+
+The core library never imports this module, and this module imports matplotlib only
+inside its functions. Figures are built as ``matplotlib.figure.Figure`` objects drawn
+by the Agg renderer: no display, no pyplot, no global backend is touched, so the
+functions run on a headless server as well as in a notebook.
+
+Each figure stands alone (title, axis labels, legend):
+
+* :func:`plot_traces`: every chain's path, one panel per parameter.
+* :func:`plot_tuning`: predicted acceptance and jump distance against the scale l for
+  this dimension and proposal shape, with the chosen, refined and realised values.
+* :func:`plot_marginals`: each marginal of the draws against the Gaussian (Laplace)
+  approximation N(mode, H⁻¹).
+* :func:`plot_autocorrelation`: autocorrelation by lag, one panel per parameter.
+
+:func:`save_all` writes all four.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import diagnostics
+
+__all__ = [
+    "plot_traces",
+    "plot_tuning",
+    "plot_marginals",
+    "plot_autocorrelation",
+    "save_all",
+    "FILE_NAMES",
+]
+
+FILE_NAMES = {
+    "traces": "traces.png",
+    "tuning": "tuning.png",
+    "marginals": "marginals.png",
+    "autocorrelation": "autocorrelation.png",
+}
+MAX_PANELS = 16  # parameters shown per figure; more would be unreadable
+_DPI = 110
+_CHAIN_COLOURS = ("#1b6ca8", "#d1495b", "#2a9d5c", "#e09f3e", "#6a4c93", "#3d3d3d",
+                  "#00a6a6", "#9c6644")
+
+
+def _figure(width: float, height: float):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
+
+
+def _save(fig, path) -> Path | None:
+    if path is None:
+        return None
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, format="png")
+    return path
+
+
+def _labels(trace, labels: Sequence[str] | None) -> list[str]:
+    names = list(trace.names)
+    if labels is None:
+        return names
+    labels = list(labels)
+    if len(labels) != len(names):
+        from .errors import InputError, explain
+
+        raise InputError(explain(
+            f"{len(labels)} labels were given for {len(names)} parameters.",
+            "fisherwalk.plots (labels=...)",
+            f"pass one label per parameter, in the order {', '.join(names[:6])}"
+            f"{', ...' if len(names) > 6 else ''}."))
+    return [f"{name}  ({label})" if label != name else name
+            for name, label in zip(names, labels, strict=True)]
+
+
+def _grid(fig, count: int):
+    from matplotlib.ticker import MaxNLocator
+
+    cols = min(4, count)
+    rows = math.ceil(count / cols)
+    axes = fig.subplots(rows, cols, squeeze=False)
+    for ax in axes.flat[count:]:
+        ax.set_visible(False)
+    for ax in axes.flat[:count]:
+        ax.xaxis.set_major_locator(MaxNLocator(5))
+        ax.tick_params(labelsize=7)
+    return axes.flat[:count]
+
+
+def _legend(fig, ncols: int) -> None:
+    """One legend for the whole grid, below it, with lines thick enough to read."""
+    handles, texts = fig.axes[0].get_legend_handles_labels()
+    legend = fig.legend(handles, texts, loc="outside lower center", ncols=ncols, fontsize=8,
+                        frameon=False)
+    for line in legend.get_lines():
+        line.set_linewidth(2.0)
+        line.set_alpha(1.0)
+
+
+def _panel_count(dim: int, max_panels: int) -> tuple[int, str]:
+    shown = min(dim, max_panels)
+    note = f" (first {shown} of {dim} parameters)" if shown < dim else ""
+    return shown, note
+
+
+def _panel_size(count: int) -> tuple[float, float]:
+    cols = min(4, count)
+    rows = math.ceil(count / cols)
+    return 3.4 * cols + 0.4, 2.5 * rows + 0.9
+
+
+def _laplace_moments(trace) -> tuple[np.ndarray, np.ndarray]:
+    fit = trace.walker.report.laplace
+    mode = np.asarray(fit.mode_flat, dtype=float)
+    cholesky = np.asarray(fit.cholesky, dtype=float)
+    inverse = np.linalg.inv(cholesky)  # H⁻¹ = L⁻ᵀ L⁻¹: diagonal = column sums of L⁻¹ squared
+    return mode, np.sqrt(np.sum(inverse**2, axis=0))
+
+
+def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
+                max_panels: int = MAX_PANELS, max_points: int = 2000):
+    """Chain traces: each parameter's value against the draw index, chains coloured.
+
+    The dashed line is the posterior mode found by the Laplace fit. Well-mixed chains
+    overlap and look like stationary noise around the same level; a chain that wanders
+    off, sticks (flat stretches) or sits apart from the others is a problem.
+
+    Parameters
+    ----------
+    trace
+        A :class:`fisherwalk.Trace`.
+    path
+        Where to write the PNG (``None``: do not write).
+    labels
+        Readable names, one per parameter, shown beside fisherwalk's names.
+    max_panels
+        At most this many parameters (the first ones) are drawn.
+    max_points
+        Longer chains are drawn at every k-th draw (stated in the title): more points
+        than pixels only blur the picture.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    flat = np.asarray(trace.flat)
+    chains, draws, dim = flat.shape
+    shown, note = _panel_count(dim, max_panels)
+    names = _labels(trace, labels)
+    mode, _ = _laplace_moments(trace)
+    fig = _figure(*_panel_size(shown))
+    every = max(1, math.ceil(draws / max_points))
+    steps = np.arange(0, draws, every) * trace.thin
+    if every > 1:
+        note += f", 1 draw in {every} shown"
+    for i, ax in enumerate(_grid(fig, shown)):
+        for c in range(chains):
+            ax.plot(steps, flat[c, ::every, i], lw=0.5, alpha=0.75,
+                    color=_CHAIN_COLOURS[c % len(_CHAIN_COLOURS)],
+                    label=f"chain {c}" if i == 0 else None)
+        ax.axhline(mode[i], color="black", ls="--", lw=0.9,
+                   label="Laplace mode" if i == 0 else None)
+        ax.set_title(names[i], fontsize=9)
+        ax.set_xlabel("step after warm-up", fontsize=8)
+        ax.set_ylabel("value", fontsize=8)
+    _legend(fig, min(chains + 1, 9))
+    fig.suptitle(f"Chain traces: {chains} chains x {draws} draws{note}", fontsize=11)
+    _save(fig, path)
+    return fig
+
+
+def plot_tuning(trace, path=None):
+    """The tuning picture for this dimension and proposal shape.
+
+    Top: the acceptance rate that the Gaussian limit predicts at each scale l (Roberts,
+    Gelman & Gilks 1997, Ann. Appl. Probab. 7(1), computed for this finite d and the
+    spectrum of A = Sᵀ H S). Bottom: the predicted expected squared jump distance per
+    step in whitened units, |Lᵀ Δθ|² with L Lᵀ = H (standard deviations of the Laplace
+    approximation, summed over parameters); its peak is the optimal l. A posterior
+    wider than N(mode, H⁻¹) shows a realised jump above the curve, and the warm-up then
+    raises l to bring the acceptance back to the target. Marked: the scale start() chose
+    from the theory, the scale after the warm-up, and the realised acceptance and jump
+    of the walk at the refined scale. Realised points on the curves say the Gaussian
+    picture holds; points off them say the posterior differs from N(mode, H⁻¹) (wider,
+    narrower, skewed).
+    """
+    from .scaling import acceptance_curve
+
+    tuning = trace.walker.tuning
+    warm = trace.walker.report.warmup
+    dim = int(tuning.dim)
+    spectrum = np.asarray(tuning.spectrum, dtype=float)
+    matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6))
+    chosen = float(warm.scale_start) if warm is not None else float(tuning.scale)
+    refined = float(tuning.scale)
+    top = max(3.0 * max(chosen, refined), 6.0)
+    grid = np.linspace(0.05, top, 240)
+    curve = acceptance_curve(grid, dim, None if matched else spectrum)
+    marks = acceptance_curve(np.array([chosen, refined]), dim, None if matched else spectrum)
+    realised_acc = float(np.mean(trace.accepted))
+    realised_jump = None
+    if trace.thin == 1 and trace.flat.shape[1] > 1:
+        realised_jump = diagnostics.whitened_jump(
+            np.asarray(trace.flat), np.asarray(tuning.whitening)).mean
+
+    fig = _figure(7.6, 7.0)
+    ax_acc, ax_jump = fig.subplots(2, 1, sharex=True)
+    ax_acc.plot(grid, curve.acceptance, color="#1b6ca8", lw=1.8, label="predicted acceptance")
+    ax_jump.plot(grid, curve.jump_distance, color="#1b6ca8", lw=1.8,
+                 label="predicted jump distance (all directions)")
+    if not matched:
+        ax_jump.plot(grid, curve.slowest_jump * dim, color="#1b6ca8", lw=1.2, ls=":",
+                     label="slowest direction's jump x d")
+    for ax, values in ((ax_acc, marks.acceptance), (ax_jump, marks.jump_distance)):
+        ax.axvline(chosen, color="#6a4c93", ls="--", lw=1.0,
+                   label=f"chosen by start(): l = {chosen:.3f}")
+        ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
+                   label=f"after warm-up: l = {refined:.3f}")
+        ax.plot([chosen, refined], values, "o", color="#1b6ca8", ms=5, zorder=3,
+                label="predicted at these scales")
+    ax_acc.axhline(tuning.target_acceptance, color="grey", ls=":", lw=1.0,
+                   label=f"target acceptance {tuning.target_acceptance:.3f}")
+    ax_acc.plot([refined], [realised_acc], "D", color="#d1495b", ms=8, zorder=4,
+                label=f"realised acceptance {realised_acc:.3f}")
+    if realised_jump is not None:
+        ax_jump.plot([refined], [realised_jump], "D", color="#d1495b", ms=8, zorder=4,
+                     label=f"realised jump {realised_jump:.3f}")
+    ax_acc.set_ylabel("acceptance rate")
+    ax_acc.set_ylim(0, 1)
+    precision = "re-estimated precision" if tuning.shape_kind == "warm-up" else "H"
+    ax_jump.set_ylabel(f"squared jump per step, whitened\n|Lᵀ Δθ|² with L Lᵀ = {precision}")
+    ax_jump.set_xlabel("scale l  (proposal step = l/√d · S z)")
+    ax_jump.set_ylim(bottom=0)
+    ax_acc.legend(fontsize=8, loc="upper right")
+    ax_jump.legend(fontsize=8, loc="upper right")
+    shape = "proposal matched to H⁻¹" if matched else (
+        f"proposal shape '{tuning.shape_kind}', spectrum of SᵀHS "
+        f"{spectrum.min():.2g} to {spectrum.max():.2g}")
+    fig.suptitle(f"Tuning for d = {dim}: {shape}\n"
+                 "curves: Gaussian-limit predictions; diamonds: this walk", fontsize=11)
+    _save(fig, path)
+    return fig
+
+
+def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
+                   max_panels: int = MAX_PANELS, bins: int = 40):
+    """Each parameter's marginal: the draws against the Laplace approximation.
+
+    Bars: histogram of all chains' draws (a density). Solid line: a kernel density
+    estimate of the draws. Dashed line: the marginal of N(mode, H⁻¹), the large-sample
+    (Bernstein-von Mises) picture that tuned the sampler. Each panel states the shift
+    of the posterior mean from the mode and the ratio of the posterior sd to the
+    Laplace sd; 0 and 1 mean the Gaussian picture holds for that parameter.
+    """
+    from scipy import stats
+
+    flat = np.asarray(trace.flat)
+    chains, draws, dim = flat.shape
+    shown, note = _panel_count(dim, max_panels)
+    names = _labels(trace, labels)
+    mode, laplace_sd = _laplace_moments(trace)
+    fig = _figure(*_panel_size(shown))
+    pooled = flat.reshape(-1, dim)
+    rng = np.random.default_rng(0)
+    for i, ax in enumerate(_grid(fig, shown)):
+        x = pooled[:, i]
+        mean, sd = float(x.mean()), float(x.std(ddof=1))
+        lo = min(x.min(), mode[i] - 4 * laplace_sd[i])
+        hi = max(x.max(), mode[i] + 4 * laplace_sd[i])
+        grid = np.linspace(lo, hi, 300)
+        heights, _, _ = ax.hist(x, bins=bins, range=(x.min(), x.max()) if sd > 0 else None,
+                                density=True, color="#9ecae1", edgecolor="white", lw=0.3,
+                                label="draws (histogram)" if i == 0 else None)
+        top = float(np.max(heights))
+        if sd > 0:
+            sub = x if x.size <= 4000 else rng.choice(x, 4000, replace=False)
+            kde = stats.gaussian_kde(sub)(grid)
+            top = max(top, float(kde.max()))
+            ax.plot(grid, kde, color="#1b6ca8", lw=1.4,
+                    label="draws (kernel density)" if i == 0 else None)
+        gauss = stats.norm.pdf(grid, mode[i], laplace_sd[i])
+        ax.plot(grid, gauss, color="#d1495b", ls="--", lw=1.4,
+                label="Laplace N(mode, H⁻¹)" if i == 0 else None)
+        ax.set_ylim(0.0, 1.3 * max(top, float(gauss.max())))  # room for the text box
+        shift = (mean - mode[i]) / laplace_sd[i]
+        ratio = sd / laplace_sd[i]
+        ax.text(0.02, 0.97, f"(mean − mode) / Laplace sd: {shift:+.2f}\n"
+                f"sd / Laplace sd: {ratio:.2f}",
+                transform=ax.transAxes, va="top", ha="left", fontsize=7,
+                bbox={"facecolor": "white", "alpha": 0.7, "lw": 0})
+        ax.set_title(names[i], fontsize=9)
+        ax.set_xlabel("value", fontsize=8)
+        ax.set_ylabel("density", fontsize=8)
+    _legend(fig, 3)
+    fig.suptitle(f"Marginals of {chains * draws} draws against the Laplace approximation"
+                 f"{note}", fontsize=11)
+    _save(fig, path)
+    return fig
+
+
+def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = None,
+                         max_panels: int = MAX_PANELS, max_lag: int | None = None):
+    """Autocorrelation of each parameter's draws by lag, averaged over chains.
+
+    A fast decay means nearly independent draws. Each panel gives the integrated
+    autocorrelation time tau (Geyer 1992, Statistical Science 7(4)): about tau steps
+    per independent draw, so N/tau is the effective number of the N draws. The grey
+    band is ±2/√(chains·draws), where the autocorrelation of independent draws would
+    fall.
+    """
+    flat = np.asarray(trace.flat)
+    chains, draws, dim = flat.shape
+    shown, note = _panel_count(dim, max_panels)
+    names = _labels(trace, labels)
+    taus = np.atleast_1d(diagnostics.integrated_autocorrelation_time(flat))
+    if max_lag is None:
+        finite = taus[np.isfinite(taus)]
+        longest = float(finite.max()) if finite.size else 10.0
+        max_lag = int(min(draws - 1, max(20, math.ceil(4 * longest))))
+    max_lag = int(min(max_lag, draws - 1))
+    acf = np.atleast_2d(diagnostics.autocorrelation(flat, max_lag))
+    lags = np.arange(max_lag + 1) * trace.thin
+    band = 2.0 / math.sqrt(chains * draws)
+    fig = _figure(*_panel_size(shown))
+    for i, ax in enumerate(_grid(fig, shown)):
+        ax.axhspan(-band, band, color="#dddddd", lw=0,
+                   label="±2/√N: independent draws" if i == 0 else None)
+        ax.axhline(0.0, color="black", lw=0.6)
+        ax.vlines(lags, 0.0, acf[i], color="#1b6ca8", lw=1.0,
+                  label="autocorrelation" if i == 0 else None)
+        ess = chains * draws / taus[i] if np.isfinite(taus[i]) and taus[i] > 0 else 0.0
+        ax.text(0.97, 0.95, f"τ = {taus[i]:.1f} steps\nN/τ = {ess:.0f} effective draws",
+                transform=ax.transAxes,
+                ha="right", va="top", fontsize=7,
+                bbox={"facecolor": "white", "alpha": 0.7, "lw": 0})
+        ax.set_ylim(min(-0.1, float(acf[i].min()) - 0.05), 1.05)
+        ax.set_title(names[i], fontsize=9)
+        ax.set_xlabel("lag (steps)", fontsize=8)
+        ax.set_ylabel("autocorrelation", fontsize=8)
+    _legend(fig, 2)
+    fig.suptitle(f"Autocorrelation by lag, mean over {chains} chains; τ: integrated "
+                 f"autocorrelation time{note}", fontsize=11)
+    _save(fig, path)
+    return fig
+
+
+def save_all(trace, out_dir, *, labels: Sequence[str] | None = None) -> list[Path]:
+    """Write the four figures as PNG files into ``out_dir``; return their paths.
+
+    File names: ``traces.png``, ``tuning.png``, ``marginals.png``,
+    ``autocorrelation.png`` (see :data:`FILE_NAMES`). The tuning figure needs a walker
+    that has been through :func:`fisherwalk.refine` or :func:`fisherwalk.start`.
+    """
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    makers: dict[str, Any] = {
+        "traces": lambda p: plot_traces(trace, p, labels=labels),
+        "tuning": lambda p: plot_tuning(trace, p),
+        "marginals": lambda p: plot_marginals(trace, p, labels=labels),
+        "autocorrelation": lambda p: plot_autocorrelation(trace, p, labels=labels),
+    }
+    paths = []
+    for key, make in makers.items():
+        path = out / FILE_NAMES[key]
+        make(path)
+        paths.append(path)
+    return paths
