@@ -1,0 +1,220 @@
+"""Every input the public API refuses, the error it raises and its message.
+
+The table CASES is the single source: each row runs here as a test, and
+docs/refused-inputs.md is rendered from the same rows with the messages the code
+actually gives (regenerate with `python tests/test_refused_inputs.py`; a test fails
+when the document is out of date).
+"""
+
+from __future__ import annotations
+
+import re
+import sys
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+
+import fisherwalk
+from fisherwalk import checkpoint, diagnostics
+
+DOC = Path(__file__).resolve().parents[1] / "docs" / "refused-inputs.md"
+KEY = jax.random.key(0)
+
+
+def _normal(x):
+    return -0.5 * jnp.sum(x**2)
+
+
+def _walker():
+    return fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=2)
+
+
+def _nan_data(x):
+    data = jnp.asarray([1.0, jnp.nan, 2.0])
+    return -0.5 * jnp.sum((data - x[0]) ** 2) - 0.5 * x[1] ** 2
+
+
+def _separated(b):
+    # complete separation (y = 1 exactly when x > 0) and a flat prior: no finite mode
+    x = jnp.linspace(-2.0, 2.0, 20)
+    y = (x > 0).astype(float)
+    eta = b[0] + b[1] * x
+    return jnp.sum(y * eta - jnp.logaddexp(0.0, eta))
+
+
+def _unidentified(p):
+    return -0.5 * (p[0] + p[1] - 1.0) ** 2
+
+
+def _ill_conditioned(x):
+    return -0.5 * (x[0] ** 2 + 1e4 * (x[1] - x[0] ** 2) ** 2)
+
+
+def _damaged_checkpoint(tmp):
+    w = _walker()
+    path = tmp / "run.ckpt"
+    fisherwalk.walk(w, KEY, draws=30, chunk=10, checkpoint=path, checkpoint_every=0.0,
+                    progress=False)
+    (path / "state.json").write_text("{ not json")
+    return fisherwalk.walk(w, KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+
+
+def _other_model_checkpoint(tmp):
+    path = tmp / "run.ckpt"
+    fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+    other = fisherwalk.start(_normal, jnp.zeros(3), KEY, chains=2)
+    return fisherwalk.walk(other, KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+
+
+def _saved_other_names(tmp):
+    path = tmp / "tuning.json"
+    fisherwalk.save_tuning(_walker(), path)
+    return fisherwalk.start(lambda p: _normal(p["a"]), {"a": jnp.zeros(2)}, KEY,
+                            shape=fisherwalk.load_tuning(path))
+
+
+def _model_file_missing_name(tmp):
+    from fisherwalk.cli import load_model
+
+    path = tmp / "model.py"
+    path.write_text("import jax.numpy as jnp\ninitial_position = jnp.zeros(2)\n")
+    return load_model(path)
+
+
+# (where, what is refused, call(tmp_path), exception, words the message must contain)
+CASES = [
+    ("start / laplace", "a position leaf of integer dtype",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2, dtype=jnp.int32), KEY),
+     fisherwalk.InputError, "dtype"),
+    ("start / laplace", "an empty position",
+     lambda t: fisherwalk.start(_normal, {}, KEY), fisherwalk.InputError, "no array"),
+    ("start / laplace", "a position holding NaN",
+     lambda t: fisherwalk.start(_normal, jnp.asarray([0.0, jnp.nan]), KEY),
+     fisherwalk.InputError, "non-finite"),
+    ("start / laplace", "a log density that returns a vector",
+     lambda t: fisherwalk.start(lambda x: x**2, jnp.zeros(2), KEY),
+     fisherwalk.ModelError, "scalar"),
+    ("start / laplace", "NaN in the data the log density closes over",
+     lambda t: fisherwalk.start(_nan_data, jnp.zeros(2), KEY), fisherwalk.ModelError, "NaN"),
+    ("start / laplace", "a log density of -inf at the start",
+     lambda t: fisherwalk.start(lambda x: jnp.where(x[0] < 1, -jnp.inf, 0.0) - x @ x,
+                                jnp.zeros(2), KEY),
+     fisherwalk.ModelError, "inf"),
+    ("start / laplace", "an optimiser that stops before converging",
+     lambda t: fisherwalk.start(_ill_conditioned, jnp.asarray([2.0, 3.0]), KEY,
+                                max_iterations=2),
+     fisherwalk.FitError, "gradient"),
+    ("start / laplace", "a mode at infinity (complete separation)",
+     lambda t: fisherwalk.start(_separated, jnp.zeros(2), KEY), fisherwalk.FitError, "separation"),
+    ("start / laplace", "a Hessian that is not positive definite (unidentified parameters)",
+     lambda t: fisherwalk.start(_unidentified, jnp.zeros(2), KEY), fisherwalk.FitError, "x[0]"),
+    ("start / laplace", "a user Fisher information that is not symmetric",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=np.array([[1.0, 0.5], [0.0, 1.0]])),
+     fisherwalk.InputError, "symmetric"),
+    ("start / laplace", "a user Fisher information that is not positive definite",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=np.array([[1.0, 2.0], [2.0, 1.0]])),
+     fisherwalk.InputError, "positive definite"),
+    ("start / laplace", "a user Fisher information of the wrong size",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=np.eye(3)),
+     fisherwalk.InputError, "(2, 2)"),
+    ("start", "chains that are not a positive whole number",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=0), fisherwalk.InputError, "chains"),
+    ("start", "an unknown proposal shape",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, shape="round"),
+     fisherwalk.InputError, "shape"),
+    ("start", "a proposal covariance that is not positive definite",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, shape=np.array([[1.0, 2.0], [2.0, 1.0]])),
+     fisherwalk.InputError, "positive definite"),
+    ("start", "a saved tuning for other parameters",
+     _saved_other_names, fisherwalk.InputError, "names"),
+    ("start / walk / refine", "an integer where a random key belongs",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), 7), fisherwalk.InputError, "jax.random.key(7)"),
+    ("refine", "steps that are not a positive whole number",
+     lambda t: fisherwalk.refine(_walker(), KEY, steps=0), fisherwalk.InputError, "steps"),
+    ("walk", "draws that are not a positive whole number",
+     lambda t: fisherwalk.walk(_walker(), KEY, draws=0), fisherwalk.InputError, "draws"),
+    ("walk", "a thinning that is not a whole number",
+     lambda t: fisherwalk.walk(_walker(), KEY, draws=10, thin=1.5), fisherwalk.InputError, "thin"),
+    ("walk", "a chain whose current log density is NaN",
+     lambda t: fisherwalk.walk(_walker()._replace(states=_walker().states._replace(
+         logdensity=jnp.asarray([0.0, jnp.nan]))), KEY, draws=10),
+     fisherwalk.SamplingError, "chain 1"),
+    ("walk(checkpoint=...)", "a damaged checkpoint", _damaged_checkpoint,
+     fisherwalk.CheckpointError, "state.json"),
+    ("walk(checkpoint=...)", "a checkpoint written for another model", _other_model_checkpoint,
+     fisherwalk.CheckpointError, "dimension"),
+    ("optimal_scale", "a dimension below 1",
+     lambda t: fisherwalk.optimal_scale(0), fisherwalk.InputError, "dim"),
+    ("optimal_scale", "a spectrum with a non-positive eigenvalue",
+     lambda t: fisherwalk.optimal_scale(2, [1.0, -1.0]), fisherwalk.InputError, "spectrum"),
+    ("diagnostics", "chains of fewer than 4 draws",
+     lambda t: diagnostics.ess_bulk(np.zeros((2, 3))), fisherwalk.InputError, "draws"),
+    ("fisherwalk run", "a model file without `logdensity`",
+     _model_file_missing_name, fisherwalk.ModelFileError, "logdensity"),
+]
+
+
+def _ids():
+    return [f"{i:02d}-{case[1][:40]}" for i, case in enumerate(CASES)]
+
+
+@pytest.mark.parametrize("case", CASES, ids=_ids())
+def test_refused(case, tmp_path):
+    _, _, call, error, words = case
+    with pytest.raises(error) as info:
+        call(tmp_path)
+    assert words in str(info.value)
+    assert isinstance(info.value, fisherwalk.FisherwalkError)
+
+
+def _message(case, tmp) -> str:
+    try:
+        case[2](tmp)
+    except fisherwalk.FisherwalkError as err:
+        return str(err)
+    raise AssertionError(f"not refused: {case[1]}")
+
+
+def render(tmp: Path) -> str:
+    def cell(text: str) -> str:
+        return text.replace("|", "\\|").replace("\n", "<br>")
+
+    lines = [
+        "# Inputs fisherwalk refuses",
+        "",
+        "Rendered by `python tests/test_refused_inputs.py` from the table that "
+        "`tests/test_refused_inputs.py` runs; every row is a test. Messages say what went "
+        "wrong, where, and what to do.",
+        "",
+        "| call | refused input | error | message |",
+        "| --- | --- | --- | --- |",
+    ]
+    for i, case in enumerate(CASES):
+        sub = tmp / f"case{i}"
+        sub.mkdir(parents=True, exist_ok=True)
+        message = re.sub(r"/\S*?(case\d+)", r"<tmp>/\1", _message(case, sub))
+        lines.append(f"| {case[0]} | {case[1]} | `{case[3].__name__}` | {cell(message)} |")
+    return "\n".join(lines) + "\n"
+
+
+def _normalise(text: str) -> str:
+    # Temporary directories and numbers printed to many digits differ between runs.
+    text = re.sub(r"/[^ |<`']*?(case\d+)", r"<tmp>/\1", text)
+    return re.sub(r"\d\.\d{3,}(e[-+]?\d+)?", "#", text)
+
+
+def test_document_is_up_to_date(tmp_path):
+    assert DOC.exists(), "run `python tests/test_refused_inputs.py` to write the document"
+    assert _normalise(DOC.read_text()) == _normalise(render(tmp_path))
+
+
+if __name__ == "__main__":
+    import tempfile
+
+    jax.config.update("jax_enable_x64", True)
+    with tempfile.TemporaryDirectory() as tmp:
+        DOC.write_text(render(Path(tmp)))
+    print(f"wrote {DOC}", file=sys.stderr)
