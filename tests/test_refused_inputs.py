@@ -18,10 +18,12 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk import checkpoint, diagnostics
+from fisherwalk import diagnostics
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "refused-inputs.md"
 KEY = jax.random.key(0)
+ASYMMETRIC = np.array([[1.0, 0.5], [0.0, 1.0]])
+INDEFINITE = np.array([[1.0, 2.0], [2.0, 1.0]])
 
 
 def _normal(x):
@@ -112,26 +114,28 @@ CASES = [
     ("start / laplace", "a Hessian that is not positive definite (unidentified parameters)",
      lambda t: fisherwalk.start(_unidentified, jnp.zeros(2), KEY), fisherwalk.FitError, "x[0]"),
     ("start / laplace", "a user Fisher information that is not symmetric",
-     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=np.array([[1.0, 0.5], [0.0, 1.0]])),
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=ASYMMETRIC),
      fisherwalk.InputError, "symmetric"),
     ("start / laplace", "a user Fisher information that is not positive definite",
-     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=np.array([[1.0, 2.0], [2.0, 1.0]])),
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=INDEFINITE),
      fisherwalk.InputError, "positive definite"),
     ("start / laplace", "a user Fisher information of the wrong size",
      lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, fisher=np.eye(3)),
      fisherwalk.InputError, "(2, 2)"),
     ("start", "chains that are not a positive whole number",
-     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=0), fisherwalk.InputError, "chains"),
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=0),
+     fisherwalk.InputError, "chains"),
     ("start", "an unknown proposal shape",
      lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, shape="round"),
      fisherwalk.InputError, "shape"),
     ("start", "a proposal covariance that is not positive definite",
-     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, shape=np.array([[1.0, 2.0], [2.0, 1.0]])),
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, shape=INDEFINITE),
      fisherwalk.InputError, "positive definite"),
     ("start", "a saved tuning for other parameters",
      _saved_other_names, fisherwalk.InputError, "names"),
     ("start / walk / refine", "an integer where a random key belongs",
-     lambda t: fisherwalk.start(_normal, jnp.zeros(2), 7), fisherwalk.InputError, "jax.random.key(7)"),
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), 7),
+     fisherwalk.InputError, "jax.random.key(7)"),
     ("refine", "steps that are not a positive whole number",
      lambda t: fisherwalk.refine(_walker(), KEY, steps=0), fisherwalk.InputError, "steps"),
     ("walk", "draws that are not a positive whole number",

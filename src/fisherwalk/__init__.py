@@ -1,6 +1,7 @@
 """fisherwalk: random-walk Metropolis for JAX models, tuned from the Fisher information
 before its first step."""
 
+from .checkpoint import resume
 from .errors import (
     CheckpointError,
     FisherwalkError,
@@ -12,7 +13,6 @@ from .errors import (
     ModelFileError,
     SamplingError,
 )
-from .checkpoint import resume
 from .laplace import LaplaceFit, laplace
 from .record import load_tuning, save_tuning
 from .sampling import Trace, walk

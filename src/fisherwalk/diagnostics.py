@@ -437,7 +437,8 @@ def pareto_khat(log_weights) -> float:
         raise InputError(explain("every log weight is -inf", where,
                                  "check the target and proposal log densities"))
     finite = lw[np.isfinite(lw)]
-    if size > 20 and finite.size == size and np.ptp(finite) <= 1e-9 * max(1.0, np.abs(finite).max()):
+    spread = np.ptp(finite) if finite.size else np.inf
+    if size > 20 and finite.size == size and spread <= 1e-9 * max(1.0, np.abs(finite).max()):
         return float("-inf")
     shifted = lw - np.max(lw)
     ordered = np.sort(shifted)

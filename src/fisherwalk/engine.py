@@ -1,12 +1,13 @@
 """The compiled loop: ``lax.scan`` over kept draws of ``vmap``-ed Metropolis steps.
 
 One jitted function serves warm-up and sampling alike, so a run compiles it once:
-the proposal factor, the scale multiplier, the adaptation gain and target, the
-thinning and the first step's index are all data, not constants. Only the number of
-kept draws per call (the chunk) is static.
+the proposal factor, the scale multiplier, the adaptation gain and target and the
+random numbers are all data, not constants. Only the shapes are static: kept draws per
+call (the chunk), steps per kept draw (the thinning), chains and dimension.
 
-Per-step keys are ``split(fold_in(run_key, step_index), chains)``, so a run gives the
-same draws however it is chunked, thinned at the boundaries, or resumed.
+The random numbers of step ``s`` come from a counter-based generator on the host
+(:func:`fisherwalk.keys.step_noise`), so a run gives the same draws however it is
+chunked or resumed.
 
 Scale adaptation (warm-up only; ``rate = 0`` switches it off) is a Robbins-Monro
 recursion on the log of the scale multiplier, driven by the acceptance probability
@@ -23,9 +24,10 @@ from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from . import proposal
-from .keys import chain_keys
+from .keys import step_noise
 
 GAIN_EXPONENT = 0.6  # in (1/2, 1]: the Robbins-Monro conditions sum gain = inf, sum gain² < inf
 
@@ -44,7 +46,6 @@ class Control(NamedTuple):
     target: jax.Array  # () acceptance the adaptation aims for
     rate: jax.Array  # () adaptation gain constant; 0 = no adaptation
     adapt_step: jax.Array  # () int: adaptation steps already taken before this call
-    thin: jax.Array  # () int >= 1: steps per kept draw
 
 
 class Chunk(NamedTuple):
@@ -60,22 +61,19 @@ class Chunk(NamedTuple):
     log_multiplier_path: jax.Array  # (draws,) log multiplier after each kept draw
 
 
-def make_engine(logdensity_flat: Callable, chains: int) -> Callable:
-    """Build the jitted engine ``advance(run_key, first_step, state, factor, control, draws)``.
+def _compiled(logdensity_flat: Callable) -> Callable:
+    vstep = jax.vmap(proposal.metropolis, in_axes=(0, 0, 0, None, None, None))
 
-    ``draws`` (kept draws per call) is static; everything else is traced.
-    """
-    vstep = jax.vmap(proposal.step, in_axes=(0, 0, None, None, None))
+    def advance(noise, uniform, state: ChainState, factor, control: Control):
+        # noise: (draws, thin, chains, d); uniform: (draws, thin, chains)
+        thin = noise.shape[1]
 
-    def advance(run_key, first_step, state: ChainState, factor, control: Control, draws: int):
-        def one_step(carry, index):
+        def one_step(carry, inputs):
             flat_state, log_m, faults, n_acc, rate_sum = carry
-            keys = chain_keys(run_key, first_step + index, chains)
-            new_state, info = vstep(
-                keys, proposal.FlatState(*flat_state), logdensity_flat, factor, jnp.exp(log_m)
-            )
-            t = control.adapt_step + index
-            gain = control.rate * (t + 1.0) ** (-GAIN_EXPONENT)
+            z, u, t = inputs
+            new_state, info = vstep(proposal.FlatState(*flat_state), z, u, logdensity_flat,
+                                    factor, jnp.exp(log_m))
+            gain = control.rate * (control.adapt_step + t + 1.0) ** (-GAIN_EXPONENT)
             log_m = log_m + gain * (jnp.mean(info.acceptance_rate) - control.target)
             return (
                 ChainState(*new_state),
@@ -83,39 +81,56 @@ def make_engine(logdensity_flat: Callable, chains: int) -> Callable:
                 faults + info.fault.astype(faults.dtype),
                 n_acc + info.is_accepted.astype(n_acc.dtype),
                 rate_sum + info.acceptance_rate,
-            )
+            ), None
 
-        def kept(carry, i):
+        def kept(carry, inputs):
             flat_state, log_m = carry
-            zeros = jnp.zeros(chains, dtype=flat_state.logdensity.dtype)
-            faults = jnp.zeros(chains, dtype=jnp.int32)
-            first = i * control.thin
-
-            def body(j, c):
-                return one_step(c, first + j)
-
-            flat_state, log_m, faults, n_acc, rate_sum = jax.lax.fori_loop(
-                0, control.thin, body, (flat_state, log_m, faults, zeros, zeros)
+            z, u, i = inputs
+            zeros = jnp.zeros(z.shape[1], dtype=flat_state.logdensity.dtype)
+            faults = jnp.zeros(z.shape[1], dtype=jnp.int32)
+            steps = i * thin + jnp.arange(thin)
+            (flat_state, log_m, faults, n_acc, rate_sum), _ = jax.lax.scan(
+                one_step, (flat_state, log_m, faults, zeros, zeros), (z, u, steps)
             )
-            thin = control.thin.astype(zeros.dtype)
             out = (faults, flat_state.position, flat_state.logdensity, n_acc / thin,
                    rate_sum / thin, log_m)
             return (flat_state, log_m), out
 
+        draws = noise.shape[0]
         (final, log_m), outs = jax.lax.scan(
-            kept, (state, control.log_multiplier), jnp.arange(draws)
+            kept, (state, control.log_multiplier), (noise, uniform, jnp.arange(draws))
         )
         return Chunk(final, log_m, *outs)
 
-    return jax.jit(advance, static_argnames=("draws",))
+    return jax.jit(advance)
 
 
-def control(*, log_multiplier=0.0, target=0.0, rate=0.0, adapt_step=0, thin=1, dtype=jnp.float64):
+def make_engine(logdensity_flat: Callable, chains: int) -> Callable:
+    """Build ``engine(stream, first_step, state, factor, control, draws, thin=1) -> Chunk``.
+
+    ``stream`` is a Philox key (:func:`fisherwalk.keys.stream`); ``first_step`` the global
+    index of the first step this call takes. Compiles once per (draws, thin) pair.
+    """
+    compiled = _compiled(logdensity_flat)
+
+    def engine(stream, first_step: int, state: ChainState, factor, control: Control,
+               draws: int, thin: int = 1) -> Chunk:
+        dim = np.shape(state.position)[1]
+        dtype = np.asarray(state.logdensity).dtype
+        noise, uniform = step_noise(stream, first_step, draws * thin, chains, dim, dtype)
+        noise = noise.reshape(draws, thin, chains, dim)
+        uniform = uniform.reshape(draws, thin, chains)
+        return compiled(noise, uniform, state, factor, control)
+
+    engine.compiled = compiled
+    return engine
+
+
+def control(*, log_multiplier=0.0, target=0.0, rate=0.0, adapt_step=0, dtype=np.float64):
     """A :class:`Control` with the right dtypes (so that calls share one compilation)."""
     return Control(
-        jnp.asarray(log_multiplier, dtype=dtype),
-        jnp.asarray(target, dtype=dtype),
-        jnp.asarray(rate, dtype=dtype),
-        jnp.asarray(adapt_step, dtype=jnp.int32),
-        jnp.asarray(thin, dtype=jnp.int32),
+        np.asarray(log_multiplier, dtype=dtype),
+        np.asarray(target, dtype=dtype),
+        np.asarray(rate, dtype=dtype),
+        np.asarray(adapt_step, dtype=np.int32),
     )

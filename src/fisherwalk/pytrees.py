@@ -8,7 +8,8 @@ results back in the user's structure.
 
 from __future__ import annotations
 
-from typing import Any, Callable, NamedTuple
+from collections.abc import Callable
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -104,7 +105,7 @@ def flatten_position(position: Any, *, where: str = "position") -> Flat:
                     f"Leaf '{name}' of the position has dtype {dtype}; fisherwalk "
                     "samples continuous parameters only.",
                     where,
-                    f"convert it with jnp.asarray(..., dtype=float); a discrete "
+                    "convert it with jnp.asarray(..., dtype=float); a discrete "
                     "parameter must be marginalised out of the log density.",
                 )
             )
@@ -112,7 +113,7 @@ def flatten_position(position: Any, *, where: str = "position") -> Flat:
     names = parameter_names(position)
     bad = ~np.isfinite(np.asarray(vector))
     if bad.any():
-        which = ", ".join(n for n, b in zip(names, bad) if b)
+        which = ", ".join(n for n, b in zip(names, bad, strict=True) if b)
         raise InputError(
             explain(
                 f"The position holds non-finite values at {which}.",
@@ -121,3 +122,29 @@ def flatten_position(position: Any, *, where: str = "position") -> Flat:
             )
         )
     return Flat(vector, unravel, names)
+
+
+def ravel_batch(tree: Any, batch_dims: int = 1) -> np.ndarray:
+    """Ravel a pytree whose leaves carry ``batch_dims`` leading axes: (..., d), on the host.
+
+    Same parameter order as ``ravel_pytree`` (leaves in ``tree_flatten`` order, each
+    row-major), without compiling anything.
+    """
+    leaves = [np.asarray(leaf) for leaf in jax.tree_util.tree_leaves(tree)]
+    batch = leaves[0].shape[:batch_dims]
+    return np.concatenate([leaf.reshape(*batch, -1) for leaf in leaves], axis=-1)
+
+
+def unravel_batch(flat: np.ndarray, like: Any) -> Any:
+    """Inverse of :func:`ravel_batch`: (..., d) -> the structure of ``like`` (unbatched),
+    each leaf with the same leading axes. Host numpy; nothing is compiled."""
+    flat = np.asarray(flat)
+    leaves, treedef = jax.tree_util.tree_flatten(like)
+    batch = flat.shape[:-1]
+    out, start = [], 0
+    for leaf in leaves:
+        shape = np.shape(leaf)
+        size = int(np.prod(shape, dtype=int))
+        out.append(flat[..., start:start + size].reshape(*batch, *shape))
+        start += size
+    return jax.tree_util.tree_unflatten(treedef, out)

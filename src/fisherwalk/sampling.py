@@ -21,7 +21,7 @@ from blackjax.mcmc.random_walk import RWState
 
 from . import engine as _engine
 from .errors import FisherwalkWarning, InputError, SamplingError, explain
-from .keys import as_key, key_data
+from .keys import as_key, key_data, stream
 from .walker import Walker
 
 DEFAULT_CHUNK = 100  # kept draws per compiled call; warm-up uses the same, so one compile
@@ -93,7 +93,7 @@ def check_states(walker: Walker, where: str) -> _engine.ChainState:
                 "start the chains where the log density is finite (fisherwalk.start does).",
             )
         )
-    return _engine.ChainState(walker.flat_positions(), jnp.asarray(logdens))
+    return _engine.ChainState(walker.flat_positions(), logdens)
 
 
 class _Collector:
@@ -188,7 +188,8 @@ def walk(
     chains, dim = state.position.shape
     dtype = np.asarray(state.logdensity).dtype
     collector = _Collector(chains, draws, dim, dtype)
-    ctrl = _engine.control(thin=thin, dtype=dtype)
+    ctrl = _engine.control(dtype=dtype)
+    noise_key = stream(key, 0)
     factor = walker.tuning.factor
     store = None
     if checkpoint is not None:
@@ -204,11 +205,11 @@ def walk(
     try:
         n_chunks = math.ceil(draws / chunk)
         for k in range(-(-collector.done // chunk), n_chunks):
-            out = walker.engine(key, jnp.asarray(k * chunk * thin, jnp.int32), state, factor,
-                                ctrl, draws=chunk)
+            out = walker.engine(noise_key, k * chunk * thin, state, factor, ctrl, chunk, thin)
             keep = min(chunk, draws - k * chunk)
             collector.add(out, keep)
-            state = _engine.ChainState(out.position[keep - 1], out.logdensity[keep - 1])
+            last = collector.done - 1
+            state = _engine.ChainState(collector.flat[:, last], collector.logdensity[:, last])
             if store is not None:
                 store.save(collector, state)
             if bar is not None:
@@ -234,13 +235,10 @@ def walk(
 
 
 def _trace(walker, collector, state, thin, key, seconds, *, complete) -> Trace:
-    unravel = walker.unravel
     flat = collector.flat
-    tree = jax.vmap(jax.vmap(unravel))(jnp.asarray(flat)) if flat.shape[1] else None
-    tree = jax.tree.map(np.asarray, tree)
-    final = walker._replace(
-        states=RWState(jax.vmap(unravel)(state.position), jnp.asarray(state.logdensity))
-    )
+    tree = walker.unravel_many(flat) if flat.shape[1] else None
+    positions = jax.tree.map(jnp.asarray, walker.unravel_many(np.asarray(state.position)))
+    final = walker._replace(states=RWState(positions, jnp.asarray(state.logdensity)))
     return Trace(tree, collector.logdensity, collector.accepted, final, flat,
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
                  complete)

@@ -9,7 +9,8 @@ that Gaussian when n is large; van der Vaart 1998, Asymptotic Statistics, ch. 10
 
 from __future__ import annotations
 
-from typing import Any, Callable, NamedTuple
+from collections.abc import Callable
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -19,7 +20,8 @@ from blackjax.mcmc.random_walk import RWState
 from . import proposal
 from .engine import make_engine
 from .errors import InputError, explain
-from .keys import as_key
+from . import pytrees
+from .keys import as_key, normals, stream
 from .laplace import LaplaceFit, laplace
 from .scaling import ScaleChoice, optimal_scale
 
@@ -31,14 +33,14 @@ class Tuning(NamedTuple):
 
     scale: float  # l, the dimension-free scale
     target_acceptance: float  # acceptance the theory predicts at this scale and shape
-    factor: jax.Array  # (d, d) (l / sqrt(d)) * shape, handed to BlackJAX as sigma
-    shape: jax.Array  # (d, d) S; S Sᵀ is the proposal's covariance up to l²/d
+    factor: np.ndarray  # (d, d) (l / sqrt(d)) * shape, handed to BlackJAX as sigma
+    shape: np.ndarray  # (d, d) S; S Sᵀ is the proposal's covariance up to l²/d
     dim: int  # d
     shape_kind: str  # "fisher", "diagonal", "identity", "user", "saved" or "warm-up"
     spectrum: np.ndarray  # (d,) eigenvalues of A = Sᵀ P S, P the precision the walker believes
     predicted_jump: float  # expected squared jump per step in whitened units at this scale
     choice: ScaleChoice  # the full scale computation behind scale and target_acceptance
-    whitening: jax.Array  # (d, d) lower L with L Lᵀ = P: whitened position = Lᵀ (theta - mode)
+    whitening: np.ndarray  # (d, d) lower L with L Lᵀ = P: whitened position = Lᵀ (theta - mode)
 
 
 class StartReport(NamedTuple):
@@ -65,7 +67,7 @@ class Walker(NamedTuple):
     logdensity_fn: Callable  # the user's log density, position pytree -> scalar
     names: tuple[str, ...]  # one name per scalar parameter, ravelled order
     unravel: Callable  # (d,) vector -> the user's pytree
-    engine: Callable  # the jitted multi-chain loop (engine.make_engine), compiled once per walker
+    engine: Callable  # the multi-chain loop (engine.make_engine), compiled once per walker
     evaluate: Callable  # jitted batched log density, (m, d) -> (m,)
 
     @property
@@ -78,9 +80,13 @@ class Walker(NamedTuple):
         unravel, fn = self.unravel, self.logdensity_fn
         return lambda vector: fn(unravel(vector))
 
-    def flat_positions(self) -> jax.Array:
-        """Chain positions ravelled: (chains, d)."""
-        return jax.vmap(lambda p: jax.flatten_util.ravel_pytree(p)[0])(self.states.position)
+    def flat_positions(self) -> np.ndarray:
+        """Chain positions ravelled: (chains, d), on the host."""
+        return pytrees.ravel_batch(self.states.position)
+
+    def unravel_many(self, flat) -> Any:
+        """(..., d) ravelled positions -> the user's pytree with the same leading axes."""
+        return pytrees.unravel_batch(flat, self.report.laplace.mode)
 
 
 def _validate_chains(chains) -> int:
@@ -98,7 +104,13 @@ def _validate_chains(chains) -> int:
 def _user_shape(matrix, fit: LaplaceFit) -> jax.Array:
     """A user's proposal covariance -> its lower Cholesky factor, validated."""
     d = len(fit.names)
-    cov = np.asarray(matrix, dtype=float)
+    try:
+        cov = np.asarray(matrix, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise InputError(explain(f"shape={type(matrix).__name__} is neither a known shape nor "
+                                 "a matrix.", "start(shape=...)",
+                                 f"use one of {', '.join(map(repr, SHAPES))}, or a (d, d) "
+                                 "covariance matrix.")) from err
     where = "start(shape=<matrix>)"
     if cov.shape != (d, d):
         raise InputError(
@@ -129,25 +141,27 @@ def _user_shape(matrix, fit: LaplaceFit) -> jax.Array:
         raise InputError(
             explain(
                 "The proposal covariance is not positive definite (smallest eigenvalue "
-                f"{eigval[0]:.3g}); the direction involves {', '.join(fit.names[k] for k in worst)}.",
+                f"{eigval[0]:.3g}); the direction involves "
+                f"{', '.join(fit.names[k] for k in worst)}.",
                 where,
                 "pass a positive-definite covariance matrix.",
             )
         )
-    return jnp.asarray(np.linalg.cholesky(cov), dtype=fit.mode_flat.dtype)
+    return np.linalg.cholesky(cov).astype(np.asarray(fit.mode_flat).dtype)
 
 
 def proposal_shape(shape, fit: LaplaceFit) -> tuple[jax.Array, str]:
     """The proposal shape S for a named kind or a user covariance matrix."""
-    fisher_shape = proposal.shape_from_cholesky(fit.cholesky)
+    dtype = np.asarray(fit.mode_flat).dtype
+    fisher_shape = proposal.shape_from_cholesky(fit.cholesky).astype(dtype)
     if isinstance(shape, str):
         if shape == "fisher":
             return fisher_shape, "fisher"
         if shape == "diagonal":
-            sd = jnp.sqrt(jnp.sum(fisher_shape**2, axis=1))  # sqrt(diag(H⁻¹))
-            return jnp.diag(sd), "diagonal"
+            sd = np.sqrt(np.sum(fisher_shape**2, axis=1))  # sqrt(diag(H⁻¹))
+            return np.diag(sd), "diagonal"
         if shape == "identity":
-            return jnp.eye(len(fit.names), dtype=fit.mode_flat.dtype), "identity"
+            return np.eye(len(fit.names), dtype=dtype), "identity"
         raise InputError(
             explain(
                 f"shape={shape!r} is not a known proposal shape.",
@@ -159,7 +173,7 @@ def proposal_shape(shape, fit: LaplaceFit) -> tuple[jax.Array, str]:
         from .record import check_tuning
 
         check_tuning(shape, fit.names)
-        return jnp.asarray(shape.shape, dtype=fit.mode_flat.dtype), "saved"
+        return np.asarray(shape.shape, dtype=dtype), "saved"
     return _user_shape(shape, fit), "user"
 
 
@@ -169,13 +183,15 @@ def spectrum_of(shape: jax.Array, cholesky: jax.Array) -> np.ndarray:
     return np.sort(np.linalg.svd(m, compute_uv=False) ** 2)
 
 
-def tune(shape: jax.Array, shape_kind: str, cholesky: jax.Array, *, criterion: str = "slowest",
+def tune(shape, shape_kind: str, cholesky, *, criterion: str = "slowest",
          scale: float | None = None) -> Tuning:
     """Scale and target acceptance for a proposal shape against the precision L Lᵀ.
 
     The matched shape uses the exact chi-law computation; any other shape uses the
     spectrum of A = Sᵀ H S (see :func:`fisherwalk.optimal_scale`).
     """
+    shape = np.asarray(shape)
+    cholesky = np.asarray(cholesky)
     dim = int(shape.shape[0])
     spectrum = spectrum_of(shape, cholesky)
     matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6, atol=0.0))
@@ -214,21 +230,21 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
     """
     from .diagnostics import khat_threshold, pareto_khat
 
-    fisher_shape = proposal.shape_from_cholesky(fit.cholesky)
-    mode = jnp.asarray(fit.mode_flat)
+    mode = np.asarray(fit.mode_flat)
+    fisher_shape = proposal.shape_from_cholesky(fit.cholesky).astype(mode.dtype)
     size = max(LAPLACE_DRAWS, chains)
-    z = jax.random.normal(key, (size, mode.shape[0]), dtype=mode.dtype)
+    z = normals(stream(key, 3), (size, mode.shape[0]), mode.dtype)
     draws = mode + z @ fisher_shape.T
     logp = np.asarray(evaluate(draws))
     finite = np.isfinite(logp)
-    logq = -0.5 * np.sum(np.asarray(z) ** 2, axis=1)
+    logq = -0.5 * np.sum(z**2, axis=1)
     khat = float(pareto_khat((logp - logq)[finite])) if finite.sum() > 10 else float("inf")
     check = LaplaceCheck(khat, float(khat_threshold(size)), size, int((~finite).sum()))
     notes: list[str] = []
     good = np.flatnonzero(finite)[:chains]
-    positions = np.repeat(np.asarray(mode)[None], chains, axis=0)
+    positions = np.repeat(mode[None], chains, axis=0)
     logdens = np.full(chains, fit.logdensity, dtype=positions.dtype)
-    positions[: len(good)] = np.asarray(draws)[good]
+    positions[: len(good)] = draws[good]
     logdens[: len(good)] = logp[good]
     if check.outside_support:
         notes.append(
@@ -246,7 +262,7 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
             f"PSIS k̂ = {khat:.2f} exceeds {check.threshold:.2f}: the Laplace approximation "
             "misses the posterior's tails (refine() will check the shape and may re-estimate it)."
         )
-    return jnp.asarray(positions), jnp.asarray(logdens), check, notes
+    return positions, logdens, check, notes
 
 
 def start(
@@ -312,8 +328,8 @@ def start(
     """
     chains = _validate_chains(chains)
     key = as_key(rng_key, where="start(rng_key=...)")
-    key_restarts, key_states = jax.random.split(key)
     if fit is None:
+        key_restarts = jax.random.fold_in(key, 1) if restarts else None
         fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
                       rng_key=key_restarts, **laplace_options)
     elif not isinstance(fit, LaplaceFit):
@@ -335,9 +351,10 @@ def start(
             f"efficiency {tuning.choice.efficiency:.3f} of the matched proposal."
         )
     evaluate = jax.jit(jax.vmap(flat_logdensity))
-    positions, logdens, check, state_notes = _laplace_sample(evaluate, fit, key_states, chains)
+    positions, logdens, check, state_notes = _laplace_sample(evaluate, fit, key, chains)
     notes.extend(state_notes)
-    states = RWState(jax.vmap(unravel)(positions), logdens)
+    states = RWState(jax.tree.map(jnp.asarray, pytrees.unravel_batch(positions, fit.mode)),
+                     jnp.asarray(logdens))
     algorithm = proposal.blackjax_algorithm(logdensity_fn, tuning.factor)
     engine = make_engine(flat_logdensity, chains)
     return Walker(algorithm, states, tuning, StartReport(fit, check, tuple(notes)),

@@ -15,14 +15,17 @@ N(mode, H⁻¹). The warm-up checks that in three ways and repairs what it can:
    in the Gaussian picture; its sampling spread follows the Marchenko-Pastur edges
    (1 ± sqrt(d / n_eff))², Marchenko & Pastur 1967, Math. USSR Sbornik 1(4), with n_eff
    the effective number of warm-up draws) by a likelihood-ratio test at level 0.001,
-   and the adapted scale with the predicted one (off by more than 16%).
+   and the adapted scale with the predicted one (off by more than 16%). When every
+   check agrees, the theoretical scale is kept (adaptation only adds noise to an exact
+   answer) and phase 2 runs at it, measuring the acceptance there.
 3. When a check fails beyond its Monte Carlo error, the proposal shape is re-estimated
    from the warm-up draws, shrunk toward H⁻¹ (weight n_eff / (n_eff + d + 1) on the
    draws: a choice, common practice, no published source), and the scale and target
    acceptance are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the
-   spectrum of A = Sᵀ P S, P the precision the walker now believes). Phase 2 (the other
-   half) adapts the scale again; the final scale is the average of the adapted log scale
-   over the second half of phase 2 (Polyak & Juditsky 1992, SIAM J. Control Optim. 30(4)).
+   spectrum of A = Sᵀ P S, P the precision the walker now believes). When a check fails,
+   phase 2 (the other half) adapts the scale again, and the final scale is the average of
+   the adapted log scale over the second half of phase 2 (Polyak & Juditsky 1992, SIAM J.
+   Control Optim. 30(4)).
 
 Default length: 400 steps. Started near stationarity from N(mode, H⁻¹), the chains need
 no burn-in to travel; the warm-up only has to settle one scalar (a few dozen steps from a
@@ -40,14 +43,14 @@ from typing import NamedTuple
 import jax
 import jax.numpy as jnp
 import numpy as np
-from scipy.stats import chi2
 from blackjax.mcmc.random_walk import RWState
+from scipy.stats import chi2
 
 from . import engine as _engine
 from .diagnostics import ess_mean
 from .errors import InputError, explain
-from .keys import as_key
-from .proposal import shape_from_cholesky
+from .keys import as_key, stream
+from .proposal import proposal_factor, shape_from_cholesky
 from .sampling import DEFAULT_CHUNK, _progress_bar, check_states
 from .walker import Walker, tune, with_tuning
 
@@ -79,16 +82,17 @@ class WarmupReport(NamedTuple):
     notes: tuple[str, ...]  # plain-language account for the report
 
 
-def _run_phase(walker, key, state, tuning, steps, adapt_from, target, bar):
+def _run_phase(walker, noise_key, state, tuning, steps, adapt_from, target, bar,
+               rate=ADAPTATION_RATE):
     """Adapt the scale multiplier for ``steps`` steps; return draws and the path."""
     dtype = np.asarray(state.logdensity).dtype
     pieces, rates, paths = [], [], []
     log_m = 0.0
     for k in range(steps // DEFAULT_CHUNK):
-        ctrl = _engine.control(log_multiplier=log_m, target=target, rate=ADAPTATION_RATE,
+        ctrl = _engine.control(log_multiplier=log_m, target=target, rate=rate,
                                adapt_step=adapt_from + k * DEFAULT_CHUNK, dtype=dtype)
-        out = walker.engine(key, jnp.asarray(k * DEFAULT_CHUNK, jnp.int32), state,
-                            tuning.factor, ctrl, draws=DEFAULT_CHUNK)
+        out = walker.engine(noise_key, k * DEFAULT_CHUNK, state, tuning.factor, ctrl,
+                            DEFAULT_CHUNK)
         state, log_m = out.state, float(out.log_multiplier)
         pieces.append(np.asarray(out.position))
         rates.append(np.asarray(out.acceptance_rate))
@@ -145,7 +149,7 @@ def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
     else:
         shape = np.linalg.cholesky(blend)
     precision_chol = np.linalg.cholesky(np.linalg.inv(blend))
-    tuning = tune(jnp.asarray(shape, dtype), "warm-up", jnp.asarray(precision_chol, dtype))
+    tuning = tune(shape.astype(dtype), "warm-up", precision_chol.astype(dtype))
     return tuning, weight
 
 
@@ -195,7 +199,7 @@ def refine(
     half = steps // 2
     try:
         state, draws, acc1, log_m1 = _run_phase(
-            walker, jax.random.fold_in(key, 1), state, tuning0, half, 0,
+            walker, stream(key, 1), state, tuning0, half, 0,
             tuning0.target_acceptance, bar)
         cov, spectrum, bounds, n_eff, p_value = _covariance_check(draws,
                                                                   np.asarray(fit.cholesky))
@@ -209,8 +213,11 @@ def refine(
                 f"{spectrum[-1]:.2f} (1 in the Gaussian picture; Monte Carlo error with "
                 f"{n_eff:.0f} effective draws allows about {bounds[0]:.2f} to {bounds[1]:.2f}); "
                 f"test of equality p = {p_value:.1e}")
-        if abs(log_m1) > SCALE_TOLERANCE:
-            reasons.append(f"the adapted scale is {math.exp(log_m1):.2f} x the predicted one")
+        theory = tuning0.choice.scale  # the optimum for this shape in the Gaussian picture
+        scale1 = tuning0.scale * math.exp(log_m1)
+        if abs(math.log(scale1 / theory)) > SCALE_TOLERANCE:
+            reasons.append(f"the adapted scale {scale1:.3f} is {scale1 / theory:.2f} x the "
+                           f"predicted optimum {theory:.3f}")
         do_reshape = bool(reasons) if reshape is None else bool(reshape)
         if tuning0.shape_kind == "identity":
             do_reshape = False
@@ -221,15 +228,26 @@ def refine(
                 "Re-estimated the proposal shape from the warm-up draws (weight "
                 f"{weight:.2f} on the draws, the rest on H⁻¹) because "
                 + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
-            log_m_start = 0.0
-        else:
+            log_m_start, rate = 0.0, ADAPTATION_RATE
+        elif reasons:
             tuning1 = tuning0
-            log_m_start = log_m1
+            log_m_start, rate = log_m1, ADAPTATION_RATE
+            notes.append("Kept the proposal shape; the scale keeps adapting because "
+                         + "; ".join(reasons) + ".")
+        else:
+            # Every check agrees with the Gaussian picture, where the theoretical scale is
+            # exact: keep it (the adapted one differs from it only by Monte Carlo noise)
+            # and let phase 2 measure the acceptance at that scale.
+            tuning1 = tuning0._replace(
+                scale=float(theory), factor=proposal_factor(tuning0.shape, theory))
+            log_m_start, rate = 0.0, 0.0
+            notes.append("Every check agreed with the Gaussian picture: kept the proposal "
+                         f"shape and the theoretical scale {theory:.3f}.")
         target = tuning1.target_acceptance
         state2, _, acc2, log_m2 = _run_phase(
-            walker, jax.random.fold_in(key, 2), state,
+            walker, stream(key, 2), state,
             tuning1._replace(factor=tuning1.factor * math.exp(log_m_start)),
-            half, half, target, bar)
+            half, half, target, bar, rate)
     finally:
         if bar is not None:
             bar.close()
@@ -247,7 +265,7 @@ def refine(
         float(scale_final), float(target), acc1, acc2, spectrum, bounds, p_value, n_eff,
         do_reshape,
         tuple(reasons), fisher_spectrum, tuple(notes))
-    unravel = walker.unravel
-    states = RWState(jax.vmap(unravel)(state2.position), state2.logdensity)
+    positions = jax.tree.map(jnp.asarray, walker.unravel_many(np.asarray(state2.position)))
+    states = RWState(positions, jnp.asarray(state2.logdensity))
     report = walker.report._replace(warmup=warm)
     return with_tuning(walker, final, states=states, report=report)
