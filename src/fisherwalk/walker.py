@@ -17,10 +17,9 @@ import jax.numpy as jnp
 import numpy as np
 from blackjax.mcmc.random_walk import RWState
 
-from . import proposal
+from . import proposal, pytrees
 from .engine import make_engine
 from .errors import InputError, explain
-from . import pytrees
 from .keys import as_key, normals, stream
 from .laplace import LaplaceFit, laplace
 from .scaling import ScaleChoice, optimal_scale
