@@ -58,7 +58,7 @@ class Trace(NamedTuple):
         realised = None
         if self.thin == 1 and self.flat.shape[1] > 1:
             realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).mean
-        return summarize(
+        summary = summarize(
             self.flat,
             self.names,
             target_acceptance=tuning.target_acceptance,
@@ -67,6 +67,36 @@ class Trace(NamedTuple):
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
         )
+        mismatch = _acceptance_mismatch(self.acceptance_rate, tuning)
+        if mismatch:
+            summary = summary._replace(warnings=summary.warnings + (mismatch,))
+        return summary
+
+
+def _acceptance_mismatch(rates: np.ndarray, tuning) -> str | None:
+    """A warning when the realised acceptance departs from what the Gaussian picture
+    predicts at the walker's scale and shape, beyond 4 Monte Carlo standard errors (ESS of
+    the per-step acceptance probabilities) plus 0.005."""
+    from .diagnostics import ess_mean
+    from .scaling import expected_acceptance
+
+    if rates.shape[1] < 20:
+        return None
+    spectrum = np.asarray(tuning.spectrum)
+    matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6, atol=0.0))
+    predicted = float(expected_acceptance(tuning.scale, tuning.dim, None if matched else spectrum))
+    realised = float(rates.mean())
+    mcse = float(rates.std() / np.sqrt(max(float(ess_mean(rates)), 1.0)))
+    if abs(realised - predicted) <= 4.0 * mcse + 0.005:
+        return None
+    return (
+        f"The realised acceptance {realised:.3f} departs from the {predicted:.3f} that the "
+        f"Gaussian picture N(mode, H⁻¹) predicts at scale {tuning.scale:.3f} (Monte Carlo "
+        f"error {mcse:.3f}). Where: the whole run. What to do: the posterior is not shaped "
+        "like its Laplace approximation here, so the tuning is approximate; compare the "
+        "marginals with the Gaussian curves (plots.save_all), and draw more if the ESS is "
+        "short."
+    )
 
 
 def _positive_int(value, name: str, where: str) -> int:
