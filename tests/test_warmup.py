@@ -129,3 +129,40 @@ def test_tune_with_explicit_scale_reports_theory_at_that_scale(logistic_run):
     half = tune(t.shape, t.shape_kind, walker.report.laplace.cholesky, scale=t.scale / 2)
     assert half.target_acceptance > t.target_acceptance
     assert half.predicted_jump < t.predicted_jump
+
+
+def _student_t(nu=6.0, d=3):
+    """Multivariate Student-t (location m, scale matrix S): its Laplace approximation has
+    covariance nu/(nu+d) S while the law's covariance is nu/(nu-2) S (standard results for
+    the multivariate t, e.g. Kotz & Nadarajah 2004, Multivariate t Distributions, ch. 1),
+    so N(mode, H⁻¹) is too narrow by (nu+d)/(nu-2) in variance: 2.25 here."""
+    scale = jnp.asarray([[1.0, 0.3, 0.0], [0.3, 2.0, 0.5], [0.0, 0.5, 0.5]])
+    prec = jnp.linalg.inv(scale)
+    m = jnp.asarray([1.0, -2.0, 0.5])
+
+    def logdensity(x):
+        r = x - m
+        return -0.5 * (nu + d) * jnp.log1p(r @ prec @ r / nu)
+
+    return logdensity
+
+
+def test_checks_fire_and_acceptance_reaches_target_when_laplace_is_too_narrow():
+    walker = fisherwalk.start(_student_t(), jnp.zeros(3), jax.random.key(0))
+    # Without warm-up the chains accept far more often than the Gaussian picture predicts,
+    # and the summary says so.
+    plain = fisherwalk.walk(walker, jax.random.key(1), draws=2000, progress=False)
+    assert plain.acceptance_rate.mean() > walker.tuning.target_acceptance + 0.05
+    assert any("Gaussian picture" in w for w in plain.summary().warnings)
+    refined = fisherwalk.refine(walker, jax.random.key(2), progress=False)
+    assert refined.report.warmup.reasons  # some check saw the mismatch
+    trace = fisherwalk.walk(refined, jax.random.key(3), draws=4000, progress=False)
+    # the issue's criterion: within ±0.03 of the target after refine()
+    assert abs(trace.accepted.mean() - refined.tuning.target_acceptance) < 0.03
+
+
+def test_no_acceptance_warning_on_a_gaussian(logistic_run):
+    # The logistic posterior at n = 5000 is Gaussian to within Monte Carlo error at the
+    # acceptance level: the mismatch warning must stay silent there.
+    _, _, trace = logistic_run
+    assert not any("Gaussian picture" in w for w in trace.summary().warnings)
