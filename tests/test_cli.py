@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk import cli, scenarios
+from fisherwalk import cli, modelfile, scenarios
 
 MODELS = Path(__file__).parent / "models"
 FIGURES = ("traces.png", "tuning.png", "marginals.png", "autocorrelation.png")
@@ -174,7 +174,7 @@ def test_names_of_the_wrong_length_are_refused(tmp_path):
                      "initial_position = jnp.zeros(3)\nnames = ['a', 'b']\n")
     with pytest.raises(fisherwalk.ModelFileError, match="names has 2 entries but the "
                                                         "position has 3"):
-        cli.load_model(model)
+        modelfile.load_model(model)
 
 
 @pytest.mark.parametrize("command", ["demo", "scale", "run"])

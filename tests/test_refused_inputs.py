@@ -79,7 +79,7 @@ def _saved_other_names(tmp):
 
 
 def _model_file_missing_name(tmp):
-    from fisherwalk.cli import load_model
+    from fisherwalk.modelfile import load_model
 
     path = tmp / "model.py"
     path.write_text("import jax.numpy as jnp\ninitial_position = jnp.zeros(2)\n")

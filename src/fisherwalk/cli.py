@@ -9,32 +9,30 @@ Subcommands
 
 The command is an application, so it switches JAX to float64 for itself (the library
 never changes JAX's configuration). :func:`workflow` runs the steps (start, refine,
-walk, summary); :func:`write_outputs` writes ``draws.npz`` (plain arrays, no pickle),
-the plots and ``record.json``; :func:`load_model` imports and checks a model file.
+walk, summary) and tells the user what each found; :func:`fisherwalk.runrecord.write_outputs`
+writes ``draws.npz`` (plain arrays, no pickle), the plots and ``record.json``;
+:func:`fisherwalk.modelfile.load_model` imports and checks a model file.
 """
 
 from __future__ import annotations
 
 import argparse
-import hashlib
-import importlib.util
 import json
 import math
-import platform
 import sys
 import textwrap
 import time
-import traceback
 from collections.abc import Sequence
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, NamedTuple
 
 import numpy as np
 
-from .errors import FisherwalkError, InputError, ModelFileError, explain
+from .errors import FisherwalkError, InputError, ModelFileError
+from .modelfile import load_model
+from .runrecord import _sha256, build_record, write_outputs
 
-__all__ = ["main", "load_model", "ModelSpec", "workflow", "RunResult"]
+__all__ = ["main", "workflow", "RunResult"]
 
 DEFAULT_CHAINS = 4
 # Random-walk Metropolis makes about 0.3/d effective draws per step at the optimal scale
@@ -44,110 +42,9 @@ DEFAULT_CHAINS = 4
 DEFAULT_DRAWS = 8000
 DEFAULT_WARMUP = 400
 DEFAULT_SEED = 0
-PACKAGES = ("fisherwalk", "jax", "jaxlib", "blackjax", "optax", "numpy", "scipy")
 
 _TRUST = ("'run' executes the Python code in MODEL_FILE with your own rights (the file\n"
           "is imported like any module): run only model files you trust.")
-
-
-# ------------------------------------------------------------------------------ model files
-
-
-class ModelSpec(NamedTuple):
-    """What a model file provides."""
-
-    path: Path
-    logdensity: Any  # position -> scalar
-    initial_position: Any  # pytree of floats
-    fisher: Any  # None, a (d, d) matrix, or mode -> (d, d)
-    labels: tuple[str, ...] | None  # readable names, one per scalar parameter
-    dim: int
-
-
-def _file_problem(path: Path, what: str, todo: str) -> ModelFileError:
-    return ModelFileError(explain(what, f"model file {path}", todo))
-
-
-def load_model(path) -> ModelSpec:
-    """Import a model file and check what it defines.
-
-    The file must define ``logdensity(position)`` (a JAX function returning a scalar)
-    and ``initial_position`` (a pytree of floating arrays); it may define
-    ``fisher(mode)`` (or a matrix) and ``names`` (one label per scalar parameter).
-    Importing the file runs its code.
-
-    Raises
-    ------
-    ModelFileError
-        The file is missing, fails to import, lacks a name, or its log density does
-        not return a finite-shaped scalar at ``initial_position``.
-    """
-    import jax
-
-    path = Path(path)
-    if not path.is_file():
-        raise _file_problem(path, "The model file does not exist (or is not a file).",
-                            "check the path; the file must be a Python file defining "
-                            "logdensity and initial_position.")
-    module_name = f"_fisherwalk_model_{hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:12]}"
-    spec = importlib.util.spec_from_file_location(module_name, path)
-    if spec is None or spec.loader is None:
-        raise _file_problem(path, "Python cannot load this file as a module.",
-                            "give a file whose name ends in .py.")
-    module = importlib.util.module_from_spec(spec)
-    try:
-        spec.loader.exec_module(module)
-    except BaseException as err:  # noqa: BLE001 - any failure of the user's code is reported
-        if isinstance(err, KeyboardInterrupt | SystemExit):
-            raise
-        raise _file_problem(path, f"Importing it raised {_describe(err, path)}",
-                            "fix the file so that `python MODEL_FILE` runs without error."
-                            ) from None
-    missing = [n for n in ("logdensity", "initial_position") if not hasattr(module, n)]
-    if missing:
-        raise _file_problem(path, f"It does not define {' or '.join(missing)}.",
-                            "define logdensity(position) -> scalar and initial_position "
-                            "(e.g. {'beta': jnp.zeros(3)}) at the top level of the file.")
-    logdensity = module.logdensity
-    if not callable(logdensity):
-        raise _file_problem(path, f"logdensity is a {type(logdensity).__name__}, not a function.",
-                            "define logdensity as a function of the position.")
-    position = module.initial_position
-    try:
-        value = logdensity(position)
-        shape = np.shape(value)
-    except Exception as err:  # noqa: BLE001
-        raise _file_problem(path, f"logdensity(initial_position) raised {_describe(err, path)}",
-                            "make logdensity accept initial_position's structure.") from None
-    if shape != ():
-        raise _file_problem(path, f"logdensity(initial_position) returns an array of shape "
-                            f"{shape}, not a scalar.",
-                            "sum the log likelihood over observations (e.g. jnp.sum(...)) so "
-                            "that it returns one number.")
-    leaves = jax.tree_util.tree_leaves(position)
-    dim = int(sum(np.size(leaf) for leaf in leaves))
-    fisher = getattr(module, "fisher", None)
-    labels = getattr(module, "names", None)
-    if labels is not None:
-        labels = tuple(str(label) for label in labels)
-        if len(labels) != dim:
-            raise _file_problem(path, f"names has {len(labels)} entries but the position has "
-                                f"{dim} scalar parameters.",
-                                "give one name per scalar parameter, in ravelled order "
-                                "(dict keys sorted, arrays row-major), or leave names out.")
-    return ModelSpec(path, logdensity, position, fisher, labels, dim)
-
-
-def _describe(err: BaseException, path: Path) -> str:
-    """'TypeError: message (line 12)': the exception and the line of the model file."""
-    line = ""
-    for frame in reversed(traceback.extract_tb(err.__traceback__)):
-        if Path(frame.filename).resolve() == path.resolve():
-            line = f" (line {frame.lineno}: {frame.line.strip() if frame.line else ''})"
-            break
-    if isinstance(err, SyntaxError) and err.lineno:
-        line = f" (line {err.lineno})"
-    return f"{type(err).__name__}: {err}{line}"
 
 
 # --------------------------------------------------------------------------------- workflow
@@ -271,109 +168,6 @@ def _step(title: str, seconds: float) -> str:
 
 def _wrap(text: str) -> str:
     return textwrap.fill(text, width=96, subsequent_indent="        ")
-
-
-# ------------------------------------------------------------------------------ the record
-
-
-def _versions() -> dict[str, str]:
-    from importlib.metadata import PackageNotFoundError, version
-
-    out = {}
-    for name in PACKAGES:
-        try:
-            out[name] = version(name)
-        except PackageNotFoundError:
-            out[name] = "not installed"
-    out["python"] = platform.python_version()
-    return out
-
-
-def _plain(value: Any) -> Any:
-    """JSON-ready: arrays to lists, NamedTuples to dicts, non-finite floats to strings."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if hasattr(value, "_asdict"):
-        return {k: _plain(v) for k, v in value._asdict().items()}
-    if isinstance(value, list | tuple):
-        return [_plain(v) for v in value]
-    if isinstance(value, str | bool) or value is None:
-        return value
-    if isinstance(value, int | np.integer):
-        return int(value)
-    try:
-        array = np.asarray(value)
-    except Exception:  # noqa: BLE001 - an object JSON cannot hold
-        return repr(value)
-    if array.dtype.kind in "fiub" and array.ndim > 0:
-        return [_plain(v) for v in array.tolist()]
-    if array.dtype.kind in "iub":
-        return int(array)
-    if array.dtype.kind == "f":
-        number = float(array)
-        return number if math.isfinite(number) else str(number)
-    return repr(value)
-
-
-def _sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def build_record(command: str, argv: Sequence[str], options: dict, result: RunResult,
-                 extra: dict) -> dict:
-    """Every setting and result needed to reproduce and judge a run, JSON-ready."""
-    from . import record as _record
-
-    trace = result.trace
-    walker = trace.walker
-    fit = walker.report.laplace
-    laplace = {name: getattr(fit, name) for name in (
-        "logdensity", "gradient_norm", "iterations", "evaluations", "converged",
-        "fisher_source", "warnings", "seconds")}
-    laplace["mode"] = dict(zip(fit.names, np.asarray(fit.mode_flat).tolist(), strict=True))
-    sd = np.sqrt(np.diag(np.linalg.inv(np.asarray(fit.fisher))))
-    laplace["sd"] = dict(zip(fit.names, sd.tolist(), strict=True))
-    return _plain({
-        "format": "fisherwalk-run",
-        "format_version": 1,
-        "command": command,
-        "argv": list(argv),
-        "created": datetime.now(UTC).isoformat(timespec="seconds"),
-        "versions": _versions(),
-        "platform": platform.platform(),
-        "float64": True,
-        "seed": options["seed"],
-        "keys": {"derivation": "start, warmup, sampling = jax.random.split(jax.random.key("
-                               "seed), 3)", **result.keys},
-        "options": options,
-        "laplace": laplace,
-        "tuning": _record.tuning_record(walker),
-        "warmup": walker.report.warmup,
-        "summary": result.summary.to_dict(),
-        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin},
-        "seconds": result.seconds,
-        **extra,
-    })
-
-
-def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[str, Path]:
-    """draws.npz, the plots and record.json (written last, listing the other files)."""
-    from . import plots
-
-    trace = result.trace
-    files = {}
-    draws_path = out / "draws.npz"
-    np.savez(draws_path, draws=np.asarray(trace.flat), names=np.asarray(trace.names),
-             logdensity=np.asarray(trace.logdensity), accepted=np.asarray(trace.accepted))
-    files["draws"] = draws_path
-    for path in plots.save_all(trace, out, labels=labels):
-        files[path.stem] = path
-    record["files"] = {name: {"path": path.name, "sha256": _sha256(path)}
-                       for name, path in files.items()}
-    record_path = out / "record.json"
-    record_path.write_text(json.dumps(record, indent=1, allow_nan=False) + "\n")
-    files["record"] = record_path
-    return files
 
 
 # ---------------------------------------------------------------------------- subcommands

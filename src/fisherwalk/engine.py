@@ -89,10 +89,13 @@ def _compiled(logdensity_flat: Callable) -> Callable:
             z, u, i = inputs
             zeros = jnp.zeros(z.shape[1], dtype=flat_state.logdensity.dtype)
             faults = jnp.zeros(z.shape[1], dtype=jnp.int32)
-            steps = i * thin + jnp.arange(thin)
-            (flat_state, log_m, faults, n_acc, rate_sum), _ = jax.lax.scan(
-                one_step, (flat_state, log_m, faults, zeros, zeros), (z, u, steps)
-            )
+            carry = (flat_state, log_m, faults, zeros, zeros)
+            if thin == 1:  # no inner loop: one step per kept draw
+                carry, _ = one_step(carry, (z[0], u[0], i))
+            else:
+                steps = i * thin + jnp.arange(thin)
+                carry, _ = jax.lax.scan(one_step, carry, (z, u, steps))
+            flat_state, log_m, faults, n_acc, rate_sum = carry
             out = (faults, flat_state.position, flat_state.logdensity, n_acc / thin,
                    rate_sum / thin, log_m)
             return (flat_state, log_m), out

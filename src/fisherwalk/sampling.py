@@ -218,9 +218,9 @@ def walk(
     chains, dim = state.position.shape
     dtype = np.asarray(state.logdensity).dtype
     collector = _Collector(chains, draws, dim, dtype)
-    ctrl = _engine.control(dtype=dtype)
+    ctrl = jax.device_put(_engine.control(dtype=dtype))  # moved to the device once
     noise_key = stream(key, 0)
-    factor = walker.tuning.factor
+    factor = jax.device_put(walker.tuning.factor)
     store = None
     if checkpoint is not None:
         from . import checkpoint as _checkpoint
@@ -238,8 +238,12 @@ def walk(
             out = walker.engine(noise_key, k * chunk * thin, state, factor, ctrl, chunk, thin)
             keep = min(chunk, draws - k * chunk)
             collector.add(out, keep)
-            last = collector.done - 1
-            state = _engine.ChainState(collector.flat[:, last], collector.logdensity[:, last])
+            if keep == chunk:  # the chains continue from the chunk's end, still on the device
+                state = out.state
+            else:
+                last = collector.done - 1
+                state = _engine.ChainState(collector.flat[:, last],
+                                           collector.logdensity[:, last])
             if store is not None:
                 store.save(collector, state)
             if bar is not None:
