@@ -1,0 +1,128 @@
+"""The files a run of the ``fisherwalk`` command leaves behind.
+
+:func:`build_record` gathers every setting and result needed to reproduce and judge a
+run (versions, platform, keys, options, the Laplace fit, the tuning, the warm-up, the
+summary, wall times) as JSON-ready data; :func:`write_outputs` writes ``draws.npz``
+(plain arrays, no pickle), the plots and ``record.json`` (last, listing the other files
+with their SHA-256).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import platform
+from collections.abc import Sequence
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+if TYPE_CHECKING:
+    from .cli import RunResult
+
+__all__ = ["build_record", "write_outputs"]
+
+PACKAGES = ("fisherwalk", "jax", "jaxlib", "blackjax", "optax", "numpy", "scipy")
+
+
+def _versions() -> dict[str, str]:
+    from importlib.metadata import PackageNotFoundError, version
+
+    out = {}
+    for name in PACKAGES:
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = "not installed"
+    out["python"] = platform.python_version()
+    return out
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready: arrays to lists, NamedTuples to dicts, non-finite floats to strings."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if hasattr(value, "_asdict"):
+        return {k: _plain(v) for k, v in value._asdict().items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, str | bool) or value is None:
+        return value
+    if isinstance(value, int | np.integer):
+        return int(value)
+    try:
+        array = np.asarray(value)
+    except Exception:  # noqa: BLE001 - an object JSON cannot hold
+        return repr(value)
+    if array.dtype.kind in "fiub" and array.ndim > 0:
+        return [_plain(v) for v in array.tolist()]
+    if array.dtype.kind in "iub":
+        return int(array)
+    if array.dtype.kind == "f":
+        number = float(array)
+        return number if math.isfinite(number) else str(number)
+    return repr(value)
+
+
+def _sha256(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def build_record(command: str, argv: Sequence[str], options: dict, result: RunResult,
+                 extra: dict) -> dict:
+    """Every setting and result needed to reproduce and judge a run, JSON-ready."""
+    from . import record as _record
+
+    trace = result.trace
+    walker = trace.walker
+    fit = walker.report.laplace
+    laplace = {name: getattr(fit, name) for name in (
+        "logdensity", "gradient_norm", "iterations", "evaluations", "converged",
+        "fisher_source", "warnings", "seconds")}
+    laplace["mode"] = dict(zip(fit.names, np.asarray(fit.mode_flat).tolist(), strict=True))
+    sd = np.sqrt(np.diag(np.linalg.inv(np.asarray(fit.fisher))))
+    laplace["sd"] = dict(zip(fit.names, sd.tolist(), strict=True))
+    return _plain({
+        "format": "fisherwalk-run",
+        "format_version": 1,
+        "command": command,
+        "argv": list(argv),
+        "created": datetime.now(UTC).isoformat(timespec="seconds"),
+        "versions": _versions(),
+        "platform": platform.platform(),
+        "float64": True,
+        "seed": options["seed"],
+        "keys": {"derivation": "start, warmup, sampling = jax.random.split(jax.random.key("
+                               "seed), 3)", **result.keys},
+        "options": options,
+        "laplace": laplace,
+        "tuning": _record.tuning_record(walker),
+        "warmup": walker.report.warmup,
+        "summary": result.summary.to_dict(),
+        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin},
+        "seconds": result.seconds,
+        **extra,
+    })
+
+
+def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[str, Path]:
+    """draws.npz, the plots and record.json (written last, listing the other files)."""
+    from . import plots
+
+    trace = result.trace
+    files = {}
+    draws_path = out / "draws.npz"
+    np.savez(draws_path, draws=np.asarray(trace.flat), names=np.asarray(trace.names),
+             logdensity=np.asarray(trace.logdensity), accepted=np.asarray(trace.accepted))
+    files["draws"] = draws_path
+    for path in plots.save_all(trace, out, labels=labels):
+        files[path.stem] = path
+    record["files"] = {name: {"path": path.name, "sha256": _sha256(path)}
+                       for name, path in files.items()}
+    record_path = out / "record.json"
+    record_path.write_text(json.dumps(record, indent=1, allow_nan=False) + "\n")
+    files["record"] = record_path
+    return files
