@@ -111,3 +111,17 @@ def test_bad_inputs_are_refused():
     a = fisherwalk.start(logdensity, jnp.zeros(2), jax.random.PRNGKey(3))
     b = fisherwalk.start(logdensity, jnp.zeros(2), jax.random.key(3))
     np.testing.assert_array_equal(a.states.position, b.states.position)
+
+
+def test_start_warns_when_restarts_find_another_mode():
+    # An equal mixture of N(-3, 1) and N(3, 1): restarts from a box around both modes
+    # find both, and start() says out loud that one Laplace approximation cannot
+    # describe this posterior (the walker is still returned, for the user to judge).
+    def logdensity(x):
+        return jnp.logaddexp(-0.5 * (x[0] - 3.0) ** 2, -0.5 * (x[0] + 3.0) ** 2)
+
+    with pytest.warns(fisherwalk.FisherwalkWarning, match="does not describe the posterior"):
+        walker = fisherwalk.start(logdensity, jnp.asarray([2.0]), jax.random.key(3),
+                                  restarts=8, box=(-8.0, 8.0))
+    assert len(walker.report.laplace.modes) == 2
+    assert any("does not describe the posterior" in n for n in walker.report.notes)

@@ -9,6 +9,7 @@ that Gaussian when n is large; van der Vaart 1998, Asymptotic Statistics, ch. 10
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Callable
 from typing import Any, NamedTuple
 
@@ -19,7 +20,7 @@ from blackjax.mcmc.random_walk import RWState
 
 from . import proposal, pytrees
 from .engine import make_engine
-from .errors import InputError, explain
+from .errors import FisherwalkWarning, InputError, explain
 from .keys import as_key, normals, stream
 from .laplace import LaplaceFit, laplace
 from .scaling import ScaleChoice, optimal_scale
@@ -342,6 +343,8 @@ def start(
     shape_matrix, kind = proposal_shape(shape, fit)
     tuning = tune(shape_matrix, kind, fit.cholesky, criterion=criterion)
     notes = list(fit.warnings)
+    for message in fit.warnings:  # other modes, a better restart: say it out loud
+        warnings.warn(message, FisherwalkWarning, stacklevel=2)
     if kind != "fisher":
         notes.append(
             f"Proposal shape '{kind}': the spectrum of A = Sᵀ H S spans "
