@@ -173,24 +173,24 @@ def _wrap(text: str) -> str:
 # ---------------------------------------------------------------------------- subcommands
 
 
-def _positive(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"{value} is not positive")
-    return value
+def _whole(minimum: int):
+    """An argparse type: a whole number of at least ``minimum``."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(
+                f"{value} is not positive" if minimum == 1 else f"{value} is negative")
+        return value
+
+    return parse
 
 
-def _nonnegative(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"{value} is negative")
-    return value
+_positive = _whole(1)
+_nonnegative = _whole(0)
 
 
 def _options(args) -> dict:
