@@ -113,6 +113,14 @@ def _run_phase(walker, noise_key, state, tuning, steps, adapt_from, target, bar,
     return state, draws, float(used.mean()), float(path[half:].mean()), mcse
 
 
+def _khat_words(khat: float, limit: float) -> str:
+    """PSIS k̂ in words; -inf means the importance ratios were all equal."""
+    if khat == -math.inf:
+        return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (the "
+                "posterior is the Laplace Gaussian itself)")
+    return f"PSIS k̂ {khat:.2f} (threshold {limit:.2f})"
+
+
 def _covariance_check(draws: np.ndarray, whitening: np.ndarray):
     """Whitened warm-up covariance C = Lᵀ Σ̂ L against the identity.
 
@@ -277,7 +285,7 @@ def refine(
     )
     notes.append(
         f"Scale {tuning0.scale:.3f} -> {scale_final:.3f}; acceptance in the last quarter "
-        f"{acc2:.3f} (target {target:.3f}); PSIS k̂ {khat:.2f} (threshold {k_limit:.2f}).")
+        f"{acc2:.3f} (target {target:.3f}); " + _khat_words(khat, k_limit) + ".")
     warm = WarmupReport(
         steps, khat, k_limit, outside, tuning0.scale, tuning0.scale * math.exp(log_m1),
         float(scale_final), float(target), acc1, acc2, spectrum, bounds, p_value, n_eff,
