@@ -29,7 +29,6 @@ are not counted twice.
 from __future__ import annotations
 
 import contextlib
-import inspect
 import math
 import time
 from collections.abc import Callable
@@ -394,52 +393,43 @@ class FisherwalkSampler:
         return Advanced(trace.walker, trace.flat, trace.accepted, self.chains * draws)
 
 
-def engine_seconds_per_step(walker, budget: float = 0.3) -> float | None:
-    """Seconds per step of fisherwalk's engine call alone (no walk() host work).
+def _median_seconds_per_step(call, chunk: int, budget: float) -> float:
+    """Median over 3 batches of the seconds per step of ``call(i)`` (one chunk per call),
+    after a warm-up call; batches sized to about ``budget`` seconds."""
+    call(0)
+    t0 = time.perf_counter()
+    call(1)
+    per = max(time.perf_counter() - t0, 1e-6)
+    calls = int(min(max(budget / per, 3), 500))
+    samples = []
+    for _ in range(3):
+        t0 = time.perf_counter()
+        for i in range(calls):
+            call(i)
+        samples.append((time.perf_counter() - t0) / (calls * chunk))
+    return float(np.median(samples))
 
-    Follows the engine's calling convention of the installed version (a JAX key, or a
-    host-side noise stream); None when the engine cannot be called that way.
-    """
+
+def engine_seconds_per_step(walker, budget: float = 0.3) -> float | None:
+    """Seconds per step of fisherwalk's engine call alone (no walk() host work):
+    the host-side noise of each chunk and the compiled loop. None if it cannot run."""
     from fisherwalk import engine
+    from fisherwalk.keys import stream
 
     try:
         dtype = np.asarray(walker.states.logdensity).dtype
         state = engine.ChainState(walker.flat_positions(),
                                   jax.numpy.asarray(walker.states.logdensity))
         factor = walker.tuning.factor
+        ctrl = engine.control(dtype=dtype)
+        source = stream(jax.random.key(0), 7)
         chunk = 100
-        if "thin" in inspect.signature(engine.control).parameters:
-            ctrl = engine.control(thin=1, dtype=dtype)
-        else:
-            ctrl = engine.control(dtype=dtype)
-        if hasattr(walker.engine, "compiled"):  # the random numbers come from the host
-            from fisherwalk.keys import stream
 
-            source = stream(jax.random.key(0), 7)
+        def call(i):
+            out = walker.engine(source, i * chunk, state, factor, ctrl, chunk)
+            jax.block_until_ready(out.position)
 
-            def call(i):
-                out = walker.engine(source, i * chunk, state, factor, ctrl, draws=chunk)
-                jax.block_until_ready(out.position)
-        else:
-            key = jax.random.key(0)
-
-            def call(i):
-                out = walker.engine(key, jax.numpy.asarray(i * chunk, jax.numpy.int32), state,
-                                    factor, ctrl, draws=chunk)
-                jax.block_until_ready(out.position)
-
-        call(0)
-        t0 = time.perf_counter()
-        call(1)
-        per = max(time.perf_counter() - t0, 1e-6)
-        calls = int(min(max(budget / per, 3), 500))
-        samples = []
-        for _ in range(3):
-            t0 = time.perf_counter()
-            for i in range(calls):
-                call(i)
-            samples.append((time.perf_counter() - t0) / (calls * chunk))
-        return float(np.median(samples))
+        return _median_seconds_per_step(call, chunk, budget)
     except Exception as err:  # noqa: BLE001 - a figure we can do without
         print(f"engine timing skipped: {type(err).__name__}: {err}", flush=True)
         return None
@@ -507,15 +497,5 @@ def chunk_noise_seconds_per_step(logdensity_fn: Callable, point: np.ndarray, cha
     x = jax.numpy.asarray(np.broadcast_to(point, (chains, dim)).copy())
     logdens = batched(x)
     key = jax.random.key(0)
-    jax.block_until_ready(advance(key, 0, x, logdens))
-    t0 = time.perf_counter()
-    jax.block_until_ready(advance(key, 1, x, logdens))
-    per = max(time.perf_counter() - t0, 1e-6)
-    calls = int(min(max(budget / per, 3), 500))
-    samples = []
-    for _ in range(3):
-        t0 = time.perf_counter()
-        for i in range(calls):
-            jax.block_until_ready(advance(key, i, x, logdens))
-        samples.append((time.perf_counter() - t0) / (calls * chunk))
-    return float(np.median(samples))
+    return _median_seconds_per_step(
+        lambda i: jax.block_until_ready(advance(key, i, x, logdens)), chunk, budget)
