@@ -7,7 +7,7 @@ The harness treats every sampler alike (see ``baselines.py`` for the interface):
    in whole chunks of the sampler's compiled loop) until every parameter has bulk ESS
    >= 400 and R-hat < 1.01 (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021,
    Bayesian Analysis 16(2): the working thresholds), computed with
-   ``fisherwalk.diagnostics`` on the draws so far;
+   ``fisherwalk.results.diagnostics`` on the draws so far;
 3. the draw count at which the criteria first held is then located inside the last round
    by bisection over whole chunks (diagnostics on prefixes of the kept draws), and the
    time to answer is the preparation time, plus the earlier rounds, plus that fraction of
@@ -38,7 +38,7 @@ from typing import Any
 import jax
 import numpy as np
 
-from fisherwalk.diagnostics import ess_bulk, ess_tail, rhat
+from fisherwalk.results.diagnostics import ess_bulk, ess_tail, rhat
 
 ESS_GOAL = 400.0  # Vehtari et al. (2021): bulk ESS > 400 ...
 RHAT_GOAL = 1.01  # ... and R-hat < 1.01 before trusting the draws
@@ -328,7 +328,7 @@ class FisherwalkSampler:
 
     key = "fisherwalk"
     name = "fisherwalk"
-    chunk = 100  # fisherwalk.sampling.DEFAULT_CHUNK
+    chunk = 100  # fisherwalk.run.engine.DEFAULT_CHUNK
     first_round = 500
 
     def __init__(self, logdensity_fn: Callable, dim: int, monitor: CompileMonitor,
@@ -343,13 +343,8 @@ class FisherwalkSampler:
     def prepare(self, initial: np.ndarray, key):
         from baselines import Prepared
 
-        from fisherwalk import walker as _walker
-        from fisherwalk import warmup as _warmup
-        from fisherwalk.walker import start
-        from fisherwalk.warmup import refine
-
-        # draws of N(mode, H^-1) for the PSIS check (start() or refine(), by version)
-        laplace_draws = getattr(_walker, "LAPLACE_DRAWS", getattr(_warmup, "LAPLACE_DRAWS", 500))
+        from fisherwalk import refine, start
+        from fisherwalk.run.start import LAPLACE_DRAWS as laplace_draws  # PSIS check draws
 
         k_start, k_refine = jax.random.split(key)
         t0 = time.perf_counter()
@@ -386,7 +381,7 @@ class FisherwalkSampler:
     def advance(self, walker, key, first: int, draws: int):
         from baselines import Advanced
 
-        from fisherwalk.sampling import walk
+        from fisherwalk import walk
 
         trace = walk(walker, jax.random.fold_in(key, first), draws=draws, progress=False)
         self.walker = trace.walker
@@ -413,13 +408,13 @@ def _median_seconds_per_step(call, chunk: int, budget: float) -> float:
 def engine_seconds_per_step(walker, budget: float = 0.3) -> float | None:
     """Seconds per step of fisherwalk's engine call alone (no walk() host work):
     the host-side noise of each chunk and the compiled loop. None if it cannot run."""
-    from fisherwalk import engine
-    from fisherwalk.keys import stream
+    from fisherwalk.base.keys import stream
+    from fisherwalk.run import engine
 
     try:
-        dtype = np.asarray(walker.states.logdensity).dtype
+        dtype = np.asarray(walker.state.logdensity).dtype
         state = engine.ChainState(walker.flat_positions(),
-                                  jax.numpy.asarray(walker.states.logdensity))
+                                  jax.numpy.asarray(walker.state.logdensity))
         factor = walker.tuning.factor
         ctrl = engine.control(dtype=dtype)
         source = stream(jax.random.key(0), 7)

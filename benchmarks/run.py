@@ -173,9 +173,7 @@ def probe_cache(cache_dir: str) -> None:
     jax.monitoring.register_event_listener(
         lambda event, **_: hits.append(event) if event.endswith("cache_hits") else None)
     monitor = harness.CompileMonitor()
-    from fisherwalk.sampling import walk
-    from fisherwalk.walker import start
-    from fisherwalk.warmup import refine
+    from fisherwalk import refine, start, walk
 
     target = target_defs.all_targets()[CACHE_TARGET]
     logdensity = target.make()

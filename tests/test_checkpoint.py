@@ -1,8 +1,8 @@
 """Checkpoints: atomic saves, exact resumption after a kill, refusal of damage and of
 other runs.
 
-Exactness is checked against an uninterrupted run with the same key: per-step keys are
-fold_in(key, global step), so a correct resume gives the same draws bit for bit
+Exactness is checked against an uninterrupted run with the same key: step s reads the
+random-number counters of step s alone, so a correct resume gives the same draws bit for bit
 (np.array_equal, no tolerance). Kills are real: a subprocess runs the walk and sends
 itself SIGKILL at a chosen point (the test script patches os.replace / os.fsync or the
 engine; the library knows nothing of it).
@@ -25,11 +25,10 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk import checkpoint as ck
 from fisherwalk.errors import CheckpointError, FisherwalkWarning, InputError
-from fisherwalk.record import save_tuning
-from fisherwalk.sampling import walk
-from fisherwalk.walker import start
+from fisherwalk.run.sampling import walk
+from fisherwalk.run.start import start
+from fisherwalk.run.tuningfile import save_tuning
 
 # A correlated Gaussian on a dict position (names a[0], a[1], b): the same source runs
 # here and in the subprocesses.
@@ -55,7 +54,8 @@ SCRIPT = textwrap.dedent("""
     import jax
     jax.config.update("jax_enable_x64", True)
     import numpy as np
-    from fisherwalk import checkpoint as ck, record, sampling
+    import fisherwalk
+    from fisherwalk.run import checkpoint as ck, sampling, tuningfile as record
     exec(open(sys.argv[1]).read())
     directory, mode, kill = sys.argv[2], sys.argv[3], sys.argv[4]
     what, n, *when = kill.split(":")
@@ -81,11 +81,11 @@ SCRIPT = textwrap.dedent("""
         walker = record.walker_from_record(sys.argv[5], logdensity, start["position"],
                                            start["logdensity"])
         if what == "engine":
-            walker = walker._replace(engine=counted(walker.engine))
+            walker = walker._replace(model=walker.model._replace(engine=counted(walker.engine)))
         sampling.walk(walker, jax.random.key(1), int(sys.argv[7]), chunk=int(sys.argv[8]),
                       checkpoint=directory, checkpoint_every=0)
     else:
-        ck.resume(directory, logdensity, checkpoint_every=0)
+        fisherwalk.resume(directory, logdensity, checkpoint_every=0)
     print("finished without being killed")
 """)
 
@@ -105,7 +105,7 @@ def _counting(walker):
         calls.append(1)
         return walker.engine(*args, **kwargs)
 
-    return walker._replace(engine=engine), calls
+    return walker._replace(model=walker.model._replace(engine=engine)), calls
 
 
 def _same(trace, reference, upto=None):
@@ -168,7 +168,7 @@ def test_killed_runs_resume_bit_identically(run, tmp_path):
     # 5. A finished checkpoint returns its draws without a step, through walk() and resume().
     again = walk(counting, jax.random.key(1), DRAWS, chunk=CHUNK, checkpoint=directory)
     assert len(calls) == (DRAWS - 140) // CHUNK and again.complete and _same(again, reference)
-    resumed = ck.resume(directory, logdensity)
+    resumed = fisherwalk.resume(directory, logdensity)
     assert resumed.complete and _same(resumed, reference)
     assert resumed.names == walker.names
 
@@ -184,7 +184,8 @@ def test_interrupt_without_checkpoint_returns_finished_draws(run):
         return walker.engine(*args, **kwargs)
 
     with pytest.warns(FisherwalkWarning, match="interrupted after 40 of 300"):
-        trace = walk(walker._replace(engine=engine), jax.random.key(1), DRAWS, chunk=CHUNK)
+        trace = walk(walker._replace(model=walker.model._replace(engine=engine)),
+                     jax.random.key(1), DRAWS, chunk=CHUNK)
     assert not trace.complete and trace.flat.shape[1] == 2 * CHUNK
     assert _same(trace, reference, upto=2 * CHUNK)
 
@@ -202,8 +203,8 @@ def test_interrupt_with_checkpoint_saves_then_propagates(run, tmp_path):
 
     with pytest.raises(KeyboardInterrupt):
         # checkpoint_every far beyond the run: only the interrupt makes it save
-        walk(walker._replace(engine=engine), jax.random.key(1), DRAWS, chunk=CHUNK,
-             checkpoint=directory, checkpoint_every=3600)
+        walk(walker._replace(model=walker.model._replace(engine=engine)), jax.random.key(1),
+             DRAWS, chunk=CHUNK, checkpoint=directory, checkpoint_every=3600)
     assert (_state(directory)["done"], _state(directory)["segments"]) == (60, 1)
     trace = walk(walker, jax.random.key(1), DRAWS, chunk=CHUNK, checkpoint=directory,
                  checkpoint_every=3600)
@@ -348,6 +349,6 @@ def test_resume_refuses_another_log_density(finished, tmp_path):
         return 0.5 * logdensity(p)
 
     with pytest.raises(CheckpointError, match="not the one this checkpoint was written with"):
-        ck.resume(finished, wider)
+        fisherwalk.resume(finished, wider)
     with pytest.raises(CheckpointError, match="no run.json"):
-        ck.resume(tmp_path, logdensity)
+        fisherwalk.resume(tmp_path, logdensity)

@@ -12,8 +12,8 @@ import pytest
 from scipy import stats
 from scipy.signal import lfilter
 
-from fisherwalk import diagnostics as dg
 from fisherwalk.errors import InputError
+from fisherwalk.results import diagnostics as dg
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # arviz announces its refactor at import

@@ -12,8 +12,9 @@ import pytest
 pytest.importorskip("matplotlib")
 
 import fisherwalk  # noqa: E402
-from fisherwalk import diagnostics, plots, scaling  # noqa: E402
 from fisherwalk.errors import InputError  # noqa: E402
+from fisherwalk.results import diagnostics, plots  # noqa: E402
+from fisherwalk.theory import randomwalk as scaling  # noqa: E402
 
 # A correlated 3-d Gaussian: small enough to compile and run in seconds.
 _COV = np.array([[1.0, 0.6, 0.0], [0.6, 2.0, -0.3], [0.0, -0.3, 0.5]])

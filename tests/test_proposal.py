@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from jax.flatten_util import ravel_pytree
 
-from fisherwalk import proposal
+from fisherwalk.run import proposal
 
 
 def _factor(d, seed=0):

@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 from jax.flatten_util import ravel_pytree
 
 import fisherwalk
-from fisherwalk import pytrees
+from fisherwalk.base import pytrees
 
 shapes = st.sampled_from([(), (1,), (3,), (2, 2), (1, 3)])
 float_dtypes = st.sampled_from([np.float32, np.float64])

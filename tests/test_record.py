@@ -21,15 +21,15 @@ import statsmodels.api as sm
 from sklearn.datasets import load_breast_cancer
 
 from fisherwalk.errors import InputError
-from fisherwalk.record import (
+from fisherwalk.run.start import start
+from fisherwalk.run.tuningfile import (
     SavedTuning,
     load_tuning,
     save_tuning,
     tuning_record,
     walker_from_record,
 )
-from fisherwalk.scaling import optimal_scale
-from fisherwalk.walker import start
+from fisherwalk.theory.randomwalk import optimal_scale
 
 
 def _samples():
@@ -81,14 +81,15 @@ def test_refit_with_saved_shape_rescales_for_new_spectrum(fitted, tmp_path):
     saved = load_tuning(path)
     assert isinstance(saved, SavedTuning) and saved.names == walker.names
     for field in ("factor", "shape", "whitening"):  # float64 survives JSON bit for bit
-        assert np.array_equal(getattr(saved, field), getattr(walker.tuning, field))
-    assert saved.choice == walker.tuning.choice
+        assert np.array_equal(getattr(saved.tuning, field), getattr(walker.tuning, field))
+    assert saved.tuning.scale == walker.tuning.scale
+    assert saved.tuning.choice == walker.tuning.choice
 
     refit = start(_logdensity(*second), {"beta": jnp.zeros(4)}, jax.random.key(0), shape=saved)
     tuning = refit.tuning
-    assert tuning.shape_kind == "saved" and np.array_equal(tuning.shape, saved.shape)
+    assert tuning.shape_kind == "saved" and np.array_equal(tuning.shape, saved.tuning.shape)
     # Spectrum of A = Sᵀ H_new S with H_new from statsmodels on the second sample.
-    shape = np.asarray(saved.shape)
+    shape = np.asarray(saved.tuning.shape)
     expected = np.linalg.eigvalsh(shape.T @ _statsmodels_fisher(*second) @ shape)
     np.testing.assert_allclose(tuning.spectrum, expected, rtol=1e-6)
     # A new sample of ~285 rows moves H by O(1/sqrt(n)): the saved shape no longer matches.

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk import diagnostics
+from fisherwalk.results import diagnostics
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "refused-inputs.md"
 KEY = jax.random.key(0)
@@ -79,7 +79,7 @@ def _saved_other_names(tmp):
 
 
 def _model_file_missing_name(tmp):
-    from fisherwalk.modelfile import load_model
+    from fisherwalk.cli.modelfile import load_model
 
     path = tmp / "model.py"
     path.write_text("import jax.numpy as jnp\ninitial_position = jnp.zeros(2)\n")
@@ -143,8 +143,8 @@ CASES = [
     ("walk", "a thinning that is not a whole number",
      lambda t: fisherwalk.walk(_walker(), KEY, draws=10, thin=1.5), fisherwalk.InputError, "thin"),
     ("walk", "a chain whose current log density is NaN",
-     lambda t: fisherwalk.walk(_walker()._replace(states=_walker().states._replace(
-         logdensity=jnp.asarray([0.0, jnp.nan]))), KEY, draws=10),
+     lambda t: fisherwalk.walk(_walker()._replace(state=_walker().state._replace(
+         logdensity=np.asarray([0.0, np.nan]))), KEY, draws=10),
      fisherwalk.SamplingError, "chain 1"),
     ("walk(checkpoint=...)", "a damaged checkpoint", _damaged_checkpoint,
      fisherwalk.CheckpointError, "state.json"),

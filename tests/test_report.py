@@ -16,9 +16,9 @@ import numpy as np
 import pytest
 from scipy.signal import lfilter
 
-from fisherwalk import diagnostics as dg
 from fisherwalk.errors import InputError
-from fisherwalk.report import Summary, summarize
+from fisherwalk.results import diagnostics as dg
+from fisherwalk.results.report import Summary, summarize
 
 NAMES = ("alpha", "beta[0]", "beta[1]", "log_sigma")
 

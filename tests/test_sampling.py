@@ -85,7 +85,8 @@ def test_bad_arguments(walker):
         fisherwalk.walk(walker, jax.random.key(0), draws=10, thin=1.5)
     with pytest.raises(fisherwalk.InputError, match="random key"):
         fisherwalk.walk(walker, "seed", draws=10)
-    broken = walker._replace(states=walker.states._replace(
-        logdensity=walker.states.logdensity.at[2].set(jnp.nan)))
+    logdensity = np.array(walker.state.logdensity)
+    logdensity[2] = np.nan
+    broken = walker._replace(state=walker.state._replace(logdensity=logdensity))
     with pytest.raises(fisherwalk.SamplingError, match="chain 2"):
         fisherwalk.walk(broken, jax.random.key(0), draws=10)

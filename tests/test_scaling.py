@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 from scipy import integrate, optimize, stats
 
 from fisherwalk.errors import InputError
-from fisherwalk.scaling import (
+from fisherwalk.theory.randomwalk import (
     CRITERIA,
     ScaleChoice,
     acceptance_curve,

@@ -9,7 +9,7 @@ import statsmodels.api as sm
 from scipy import special, stats
 
 import fisherwalk
-from fisherwalk import scenarios
+from fisherwalk.cli import scenarios
 from fisherwalk.errors import InputError
 
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk import diagnostics
+from fisherwalk.results import diagnostics
 
 
 def _gaussian(d, condition, seed):

@@ -8,8 +8,7 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk import diagnostics
-from fisherwalk.walker import tune, with_tuning
+from fisherwalk.results import diagnostics
 
 
 def _logistic(n, d, seed, scale=0.5, prior_sd=2.5):
@@ -66,7 +65,7 @@ def test_refine_repairs_a_wrong_scale(logistic_run, factor):
     # of a fresh run is within ±0.03 of the target (the criterion).
     walker, _, _ = logistic_run
     t = walker.tuning
-    wrong = with_tuning(walker, t._replace(scale=t.scale * factor, factor=t.factor * factor))
+    wrong = walker._replace(tuning=t._replace(scale=t.scale * factor))
     refined = fisherwalk.refine(wrong, jax.random.key(7), reshape=False, progress=False)
     trace = fisherwalk.walk(refined, jax.random.key(8), draws=2000, progress=False)
     assert abs(trace.accepted.mean() - t.target_acceptance) < 0.03
@@ -126,7 +125,7 @@ def test_refine_is_reproducible_and_does_not_mutate(logistic_run):
 def test_tune_with_explicit_scale_reports_theory_at_that_scale(logistic_run):
     walker, _, _ = logistic_run
     t = walker.tuning
-    half = tune(t.shape, t.shape_kind, walker.report.laplace.cholesky, scale=t.scale / 2)
+    half = t._replace(scale=t.scale / 2)
     assert half.target_acceptance > t.target_acceptance
     assert half.predicted_jump < t.predicted_jump
 

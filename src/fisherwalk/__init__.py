@@ -1,7 +1,10 @@
-"""fisherwalk: random-walk Metropolis for JAX models, tuned from the Fisher information
-before its first step."""
+"""fisherwalk: samplers for JAX models, tuned from the Fisher information before their
+first step.
 
-from .checkpoint import resume
+The public names are the ones below; everything in the sub-packages (``base``,
+``theory``, ``fit``, ``results``, ``run``, ``cli``) is internal and may change.
+"""
+
 from .errors import (
     CheckpointError,
     FisherwalkError,
@@ -13,14 +16,27 @@ from .errors import (
     ModelFileError,
     SamplingError,
 )
-from .laplace import LaplaceFit, laplace
-from .record import load_tuning, save_tuning
-from .sampling import Trace, walk
-from .scaling import ScaleChoice, optimal_scale
-from .walker import Tuning, Walker, start
-from .warmup import WarmupReport, refine
+from .fit.laplace import LaplaceFit, laplace
+from .results.trace import Trace
+from .run.resume import resume
+from .run.sampling import walk
+from .run.start import start
+from .run.tuningfile import SavedTuning, load_tuning, save_tuning
+from .run.walker import Tuning, Walker
+from .run.warmup import WarmupReport, refine
+from .theory.randomwalk import ScaleChoice, optimal_scale
 
 __version__ = "0.1.0"
+
+
+def __getattr__(name: str):
+    # ``fisherwalk.plots`` needs the optional extra 'plots' (matplotlib): imported on use.
+    if name == "plots":
+        from .results import plots
+
+        return plots
+    raise AttributeError(f"module 'fisherwalk' has no attribute {name!r}")
+
 
 __all__ = [
     "optimal_scale",
@@ -34,6 +50,7 @@ __all__ = [
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",
+    "SavedTuning",
     "Walker",
     "WarmupReport",
     "Trace",

@@ -5,22 +5,20 @@ Before the search: the options, the restarts' key and the log density's structur
 there), the end point (finite, no runaway mode, converged, a Fisher information that is
 finite and positive definite), and a Fisher information given by the user. The
 convergence test and the runaway-mode test are described in
-:func:`fisherwalk.laplace.laplace`.
+:func:`fisherwalk.fit.laplace.laplace`.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .errors import FitError, InputError, ModelError, explain
-
-if TYPE_CHECKING:
-    from .laplace import _Search
+from ..errors import FitError, InputError, ModelError, explain
+from .search import Search
 
 _EIGEN_FLOOR = 1e-12  # smallest eigenvalue must exceed this fraction of the largest
 
@@ -28,8 +26,8 @@ _EIGEN_FLOOR = 1e-12  # smallest eigenvalue must exceed this fraction of the lar
 # ------------------------------------------------------------------ a user's Fisher matrix
 
 
-def _validated(matrix: Any, names: tuple[str, ...], where: str, rtol: float) -> np.ndarray:
-    """The checks of :func:`fisherwalk.laplace.check_fisher`; returns the symmetrised
+def validated_matrix(matrix: Any, names: tuple[str, ...], where: str, rtol: float) -> np.ndarray:
+    """The checks of :func:`fisherwalk.fit.laplace.check_fisher`; returns the symmetrised
     matrix (float64, host)."""
     d = len(names)
     try:
@@ -59,7 +57,7 @@ def _validated(matrix: Any, names: tuple[str, ...], where: str, rtol: float) -> 
             f"more than {rtol:g} of the largest entry.",
             where, "pass a symmetric matrix, e.g. (M + M.T) / 2 if the asymmetry is rounding."))
     host = 0.5 * (host + host.T)
-    problem = _definiteness_problem(host, names)
+    problem = definiteness_problem(host, names)
     if problem:
         raise InputError(explain(
             f"The Fisher information is not positive definite: {problem}.",
@@ -71,7 +69,7 @@ def _validated(matrix: Any, names: tuple[str, ...], where: str, rtol: float) -> 
 # ---------------------------------------------------------------------- before the search
 
 
-def _check_options(max_iterations, tol, restarts, spread) -> None:
+def check_options(max_iterations, tol, restarts, spread) -> None:
     def positive(value):
         return isinstance(value, int | float | np.number) and bool(0 < value < np.inf)
 
@@ -87,7 +85,7 @@ def _check_options(max_iterations, tol, restarts, spread) -> None:
                                      "pass a positive number (an integer for counts)."))
 
 
-def _check_key(rng_key) -> jax.Array:
+def check_key(rng_key) -> jax.Array:
     dtype = getattr(rng_key, "dtype", None)
     if dtype is not None and jax.dtypes.issubdtype(dtype, jax.dtypes.prng_key) \
             and rng_key.shape == ():
@@ -100,7 +98,7 @@ def _check_key(rng_key) -> jax.Array:
         + ".", "laplace(rng_key=...)", "pass rng_key=jax.random.key(seed)."))
 
 
-def _check_structure(logdensity_fn: Callable, position: Any) -> None:
+def check_structure(logdensity_fn: Callable, position: Any) -> None:
     """Trace the log density abstractly (no compilation) and check it returns a scalar."""
     where = "logdensity_fn at the starting position"
     try:
@@ -132,7 +130,7 @@ def _check_structure(logdensity_fn: Callable, position: Any) -> None:
 # ----------------------------------------------------------------------- after the search
 
 
-def _check_start(s: _Search, logdensity_fn: Callable, position: Any,
+def check_start(s: Search, logdensity_fn: Callable, position: Any,
                  names: tuple[str, ...]) -> None:
     """Say what is wrong with a log density or gradient that is not finite at the start."""
     where = "logdensity_fn at the starting position"
@@ -158,7 +156,7 @@ def _check_start(s: _Search, logdensity_fn: Callable, position: Any,
     if bad.any():
         raise ModelError(explain(
             f"The gradient of the log density is not finite at the starting point for "
-            f"{_list(np.flatnonzero(bad), names)}.", where,
+            f"{name_list(np.flatnonzero(bad), names)}.", where,
             "start where the log density is smooth (e.g. away from sqrt(0), log(0)); "
             "check the data for NaN or inf."))
 
@@ -178,7 +176,7 @@ def _nonfinite_constants(logdensity_fn: Callable, position: Any) -> str:
     return "; ".join(found)
 
 
-def _information(search: _Search, fisher: Any, unravel: Callable,
+def information(search: Search, fisher: Any, unravel: Callable,
                  names: tuple[str, ...]) -> np.ndarray:
     """The reported Fisher information at a search's end point (float64, host)."""
     if fisher is None:
@@ -186,10 +184,10 @@ def _information(search: _Search, fisher: Any, unravel: Callable,
     if not callable(fisher):
         return fisher  # validated already
     matrix = fisher(unravel(jnp.asarray(search.x)))
-    return _validated(matrix, names, "laplace(fisher=...) at the mode", 1e-6)
+    return validated_matrix(matrix, names, "laplace(fisher=...) at the mode", 1e-6)
 
 
-def _check_end(s: _Search) -> None:
+def check_end(s: Search) -> None:
     if not (np.isfinite(s.x).all() and np.isfinite(s.logdensity)):
         raise FitError(explain(
             f"The mode search ended at a non-finite point or log density ({s.logdensity}).",
@@ -197,7 +195,7 @@ def _check_end(s: _Search) -> None:
             "shrinking to zero): add a proper prior, or start nearer the expected mode."))
 
 
-def _check_search(s: _Search, info: np.ndarray, x0: np.ndarray, names: tuple[str, ...],
+def check_search(s: Search, info: np.ndarray, x0: np.ndarray, names: tuple[str, ...],
                   tol: float, max_iterations: int, use_hessian: bool) -> None:
     """Raise FitError for a non-finite end, a runaway mode, no convergence, or a Fisher
     information that is not finite or not positive definite."""
@@ -209,9 +207,9 @@ def _check_search(s: _Search, info: np.ndarray, x0: np.ndarray, names: tuple[str
             f"The Hessian at the mode has {len(bad)} non-finite entries: {pairs}.",
             where, "the log density is not twice differentiable there (or overflows); "
             "rewrite those terms stably (logaddexp, log1p) or pass fisher=..."))
-    runaway = _runaway(s, info)
-    if runaway is not None:
-        direction, values, bounded = runaway
+    escape = runaway(s, info)
+    if escape is not None:
+        direction, values, bounded = escape
         what = ("the log density keeps rising, and levels off, along a direction in which "
                 "its curvature vanishes: the posterior has no mode there" if bounded else
                 "the log density keeps rising along a direction of vanishing curvature, for "
@@ -225,7 +223,7 @@ def _check_search(s: _Search, info: np.ndarray, x0: np.ndarray, names: tuple[str
             "for complete or quasi-complete separation (a predictor, or a combination, "
             "that splits the outcomes perfectly); a hierarchical scale whose density is "
             "unbounded near zero needs a non-centred parameterisation."))
-    if not _converged(s, info, tol):
+    if not converged(s, info, tol):
         gmax = float(np.max(np.abs(s.gradient)))
         threshold = tol * max(1.0, abs(float(s.logdensity)))
         decrement = _newton_decrement(s.gradient, info)
@@ -246,7 +244,7 @@ def _check_search(s: _Search, info: np.ndarray, x0: np.ndarray, names: tuple[str
             "to a huge value may have an improper or unbounded posterior (check its "
             "prior; a hierarchical scale may need a non-centred parameterisation)."))
     if use_hessian:
-        problem = _definiteness_problem(info, names)
+        problem = definiteness_problem(info, names)
         if problem:
             raise FitError(explain(
                 f"The observed Fisher information (-Hessian) is not positive definite at the "
@@ -256,15 +254,15 @@ def _check_search(s: _Search, info: np.ndarray, x0: np.ndarray, names: tuple[str
                 "add a proper prior or reparameterise."))
 
 
-def _converged(s: _Search, info: np.ndarray, tol: float) -> bool:
+def converged(s: Search, info: np.ndarray, tol: float) -> bool:
     """max |g| <= tol * max(1, |log π|), or Newton decrement sqrt(gᵀ H⁻¹ g) <= tol."""
     gmax = float(np.max(np.abs(s.gradient)))
     return (gmax <= tol * max(1.0, abs(float(s.logdensity)))
             or _newton_decrement(s.gradient, info) <= tol)
 
 
-def _runaway(s: _Search, info: np.ndarray) -> tuple[np.ndarray, str, bool] | None:
-    """A probed direction u (see :func:`fisherwalk.laplace._probe`) of vanishing
+def runaway(s: Search, info: np.ndarray) -> tuple[np.ndarray, str, bool] | None:
+    """A probed direction u (see :func:`fisherwalk.fit.search.probe`) of vanishing
     curvature (|uᵀ H u| r² < 1: the implied sd along u exceeds the probe radius r; a
     saddle's negative curvature is not vanishing) along which the log density rises
     beyond rounding at r, 10 r and 100 r. Returns u, the values, and whether the rise
@@ -291,7 +289,7 @@ def _newton_decrement(gradient: np.ndarray, info: np.ndarray) -> float:
     return value if np.isfinite(value) else np.inf
 
 
-def _definiteness_problem(matrix: np.ndarray, names: tuple[str, ...]) -> str:
+def definiteness_problem(matrix: np.ndarray, names: tuple[str, ...]) -> str:
     """'' if the symmetric matrix is positive definite (smallest eigenvalue > 1e-12 x the
     largest), else a sentence naming the parameters of the offending eigenvector."""
     eigvals, eigvecs = np.linalg.eigh(matrix)
@@ -313,6 +311,6 @@ def _signed(vector: np.ndarray, names: tuple[str, ...], k: int = 4) -> str:
     return ", ".join(f"{names[i]} ({vector[i]:+.2f})" for i in keep)
 
 
-def _list(indices, names: tuple[str, ...], k: int = 6) -> str:
+def name_list(indices, names: tuple[str, ...], k: int = 6) -> str:
     shown = [names[i] for i in indices[:k]]
     return ", ".join(shown) + (f" and {len(indices) - k} more" if len(indices) > k else "")

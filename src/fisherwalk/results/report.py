@@ -21,8 +21,8 @@ from typing import NamedTuple
 
 import numpy as np
 
+from ..errors import InputError, explain
 from . import diagnostics
-from .errors import InputError, explain
 
 __all__ = ["Summary", "summarize"]
 
@@ -177,7 +177,7 @@ def summarize(
     predicted_jump, realised_jump : expected squared jump distance per step in whitened
         units (|Lᵀ Δθ|², summed over parameters); ``realised_jump`` may be per chain.
         When it is None and ``cholesky`` (L with L Lᵀ = H) is given, it is measured
-        from the draws with :func:`fisherwalk.diagnostics.whitened_jump`.
+        from the draws with :func:`fisherwalk.results.diagnostics.whitened_jump`.
     faults : (chains,) counts of proposals rejected for a NaN or +inf log density.
     header_notes : extra lines for the header (e.g. the model and the seed).
     rhat_limit, ess_limit : warning thresholds (Vehtari et al. 2021 recommend 1.01, 400).

@@ -5,7 +5,8 @@ reuse it or a checkpoint can rebuild its walker: the parameter names, the propos
 shape S and the factor (l/√d)·S, the scale l and the target acceptance, the spectrum
 of A = Sᵀ H S, and the Laplace fit (mode and observed Fisher information H).
 
-Loaded with :func:`load_tuning`, a record is a :class:`SavedTuning`, which
+Loaded with :func:`load_tuning`, a record is a :class:`SavedTuning` (the
+:class:`~fisherwalk.run.walker.Tuning`, the parameter names and the record), which
 ``start(..., shape=<SavedTuning>)`` accepts as the proposal shape of a refit: start()
 then computes the spectrum of A = Sᵀ H_new S against the new Fisher information and
 chooses the scale for that spectrum (:func:`fisherwalk.optimal_scale`).
@@ -22,19 +23,17 @@ import math
 import os
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
-from blackjax.mcmc.random_walk import RWState
 
-from . import proposal, pytrees
-from .engine import make_engine
-from .errors import InputError, explain
-from .laplace import LaplaceFit
-from .scaling import ScaleChoice
-from .walker import LaplaceCheck, StartReport, Tuning, Walker
+from ..base import pytrees
+from ..base.pytrees import name_difference
+from ..errors import InputError, explain
+from ..fit.laplace import LaplaceFit
+from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble
 
 __all__ = [
     "SavedTuning",
@@ -50,16 +49,13 @@ FORMAT = "fisherwalk-tuning"
 FORMAT_VERSION = 1
 
 
-class SavedTuning(Tuning):
-    """A :class:`~fisherwalk.walker.Tuning` read from a record.
+class SavedTuning(NamedTuple):
+    """A tuning read from a record, with the parameter names it was made for, so that a
+    model with other parameters can be refused by name (:func:`check_tuning`)."""
 
-    Besides the tuning fields it knows the parameter names it was made for
-    (``names``) and the record it came from (``record``), so that a model with other
-    parameters can be refused by name (:func:`check_tuning`).
-    """
-
-    names: tuple[str, ...] | None = None  # set per instance by load_tuning
-    record: dict | None = None
+    tuning: Tuning  # the proposal (shape, scale, whitening, shape kind, criterion)
+    names: tuple[str, ...] | None  # the parameters it was made for, ravelled order
+    record: dict | None  # the record it came from
 
 
 # ----------------------------------------------------------------------------- writing
@@ -115,7 +111,7 @@ def _structure(tree: Any) -> dict | None:
 
 
 def _choice_record(choice: Any) -> dict | None:
-    if not isinstance(choice, ScaleChoice):
+    if not hasattr(choice, "_asdict"):
         return None
     out: dict[str, Any] = {}
     for name, value in choice._asdict().items():
@@ -181,6 +177,7 @@ def tuning_record(walker: Walker) -> dict:
         "structure": _structure(fit.mode),
         "tuning": {
             "shape_kind": str(tuning.shape_kind),
+            "criterion": str(tuning.criterion),
             "shape": _plain_array(tuning.shape, "shape"),
             "factor": _plain_array(tuning.factor, "factor"),
             "scale": _plain_number(tuning.scale, "scale"),
@@ -316,27 +313,14 @@ def _number_array(value: Any, shape: tuple, field: str, where: str) -> np.ndarra
     return array
 
 
-def _choice(choice: dict | None, where: str) -> ScaleChoice | None:
-    """The scale computation behind the tuning (None when the record has none)."""
-    if not isinstance(choice, dict) or set(choice) != set(ScaleChoice._fields):
-        return None
-    values = dict(choice)
-    for name, value in choice.items():
-        if isinstance(value, list):
-            values[name] = _number_array(value, (len(value),), f"tuning.choice.{name}", where)
-        elif value is not None and not isinstance(value, str):
-            _number_array(value, (), f"tuning.choice.{name}", where)
-    return ScaleChoice(**values)
-
-
 def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
     """Read a tuning record (a JSON file or the dict of :func:`tuning_record`).
 
     Returns
     -------
     SavedTuning
-        A :class:`~fisherwalk.walker.Tuning` (arrays in the record's dtype) that also
-        carries ``names`` and ``record``. Pass it as ``start(..., shape=tuning)`` to
+        The :class:`~fisherwalk.run.walker.Tuning` (arrays in the record's dtype), the
+        ``names`` and the ``record``. Pass it as ``start(..., shape=saved)`` to
         reuse its proposal shape on a refit; start() re-chooses the scale for the new
         spectrum of A = Sᵀ H S.
 
@@ -350,52 +334,23 @@ def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
     dtype = np.dtype(record["dtype"])
 
     def matrix(values):
-        return jnp.asarray(np.asarray(values, dtype=dtype))
+        return np.asarray(values, dtype=dtype)
 
-    tuning = SavedTuning(
-        float(t["scale"]),
-        float(t["target_acceptance"]),
-        matrix(t["factor"]),
-        matrix(t["shape"]),
-        int(record["dim"]),
-        t["shape_kind"],
-        np.asarray(t["spectrum"], dtype=np.float64),
-        float(t["predicted_jump"]),
-        _choice(t.get("choice"), "load_tuning()"),
-        matrix(t["whitening"]),
-    )
-    tuning.names = tuple(record["names"])
-    tuning.record = record
-    return tuning
+    tuning = Tuning(matrix(t["shape"]), float(t["scale"]), matrix(t["whitening"]),
+                    str(t["shape_kind"]), str(t.get("criterion", "slowest")))
+    return SavedTuning(tuning, tuple(record["names"]), record)
 
 
-def _name_difference(saved: tuple[str, ...], names: tuple[str, ...], *,
-                     there: str = "the record", here: str = "this model") -> str:
-    """The difference between two lists of parameter names, in words."""
-    missing = [n for n in saved if n not in names]
-    extra = [n for n in names if n not in saved]
-    if missing or extra:
-        parts = []
-        if missing:
-            parts.append(f"{there} has {', '.join(missing[:6])} which {here} lacks")
-        if extra:
-            parts.append(f"{here} has {', '.join(extra[:6])} which {there} lacks")
-        return "; ".join(parts)
-    k = next(i for i, (a, b) in enumerate(zip(saved, names, strict=True)) if a != b)
-    return (f"same names in another order: position {k} is {saved[k]!r} in {there} and "
-            f"{names[k]!r} in {here}")
-
-
-def check_tuning(tuning: Tuning, names: tuple[str, ...], *,
+def check_tuning(saved: SavedTuning, names: tuple[str, ...], *,
                  where: str = "start(shape=<saved tuning>)") -> None:
     """Refuse a saved tuning made for other parameters (:class:`InputError`).
 
-    Compares the dimension, and the parameter names when the tuning carries them
-    (a :class:`SavedTuning`).
+    Compares the dimension, and the parameter names when the tuning carries them.
     """
     names = tuple(names)
     d = len(names)
-    if int(tuning.dim) != d or tuple(np.shape(tuning.shape)) != (d, d):
+    tuning = saved.tuning
+    if tuple(np.shape(tuning.shape)) != (d, d):
         raise InputError(
             explain(
                 f"The saved tuning is for {tuning.dim} parameters; this model has {d} "
@@ -405,12 +360,12 @@ def check_tuning(tuning: Tuning, names: tuple[str, ...], *,
                 "shape='fisher'.",
             )
         )
-    saved = getattr(tuning, "names", None)
+    saved = saved.names
     if saved is not None and tuple(saved) != names:
         raise InputError(
             explain(
                 "The saved tuning was made for other parameters: "
-                f"{_name_difference(tuple(saved), names)}.",
+                f"{name_difference(tuple(saved), names)}.",
                 where,
                 "pass a tuning saved from a model with the same parameters (same names, same "
                 "order), or use shape='fisher'.",
@@ -453,7 +408,7 @@ def _unravel_for(record: dict, position: Any) -> Callable:
     if flat.names != names:
         raise InputError(explain(
             "The position's structure does not give the record's parameters: "
-            f"{_name_difference(names, flat.names)}.", where,
+            f"{name_difference(names, flat.names)}.", where,
             "pass a position of the model the record was written for."))
     return flat.unravel
 
@@ -466,7 +421,7 @@ def walker_from_record(
     *,
     position: Any = None,
 ) -> Walker:
-    """Rebuild a :class:`~fisherwalk.walker.Walker` from a record and a log density.
+    """Rebuild a :class:`~fisherwalk.run.walker.Walker` from a record and a log density.
 
     The log density cannot be stored; the tuning (factor, scale, target acceptance,
     spectrum, whitening) and the Laplace fit are taken from the record unchanged, the
@@ -492,9 +447,9 @@ def walker_from_record(
         Malformed record, positions of the wrong shape or not finite, or a position
         structure that does not give the record's parameter names.
     """
-    tuning = load_tuning(record)
-    record = tuning.record
-    dim, names = tuning.dim, tuning.names
+    saved = load_tuning(record)
+    record, tuning, names = saved.record, saved.tuning, saved.names
+    dim = tuning.dim
     unravel = _unravel_for(record, position)
     dtype = np.dtype(record["dtype"])
     where = "walker_from_record(positions=...)"
@@ -505,54 +460,36 @@ def walker_from_record(
     if not np.isfinite(flat).all():
         raise InputError(explain("positions holds non-finite values.", where,
                                  "pass finite chain positions."))
-    flat = jnp.asarray(flat.astype(dtype, copy=False))
-    chains = int(flat.shape[0])
-
-    def flat_logdensity(vector):
-        return logdensity_fn(unravel(vector))
-
-    evaluate = jax.jit(jax.vmap(flat_logdensity))
-    if logdensity is None:
-        logdensity = evaluate(flat)
-    logdensity = jnp.asarray(np.asarray(logdensity).astype(dtype, copy=False))
-    if logdensity.shape != (chains,) or not np.isfinite(np.asarray(logdensity)).all():
-        raise InputError(explain(
-            f"The log densities at the positions have shape {logdensity.shape} or are not "
-            "finite.", "walker_from_record(logdensity=...)",
-            "pass positions inside the model's support (one finite value per chain)."))
+    flat = flat.astype(dtype, copy=False)
     fit_values = record["laplace"]
-    mode_flat = jnp.asarray(np.asarray(fit_values["mode"], dtype=dtype))
-    mode = unravel(mode_flat)
-    known = {
-        "mode": mode,
-        "mode_flat": mode_flat,
-        "logdensity": float(fit_values["logdensity"]),
-        "fisher": jnp.asarray(np.asarray(fit_values["fisher"], dtype=dtype)),
-        "cholesky": jnp.asarray(np.asarray(fit_values["cholesky"], dtype=dtype)),
-        "gradient_norm": float(fit_values["gradient_norm"]),
-        "iterations": 0,
-        "evaluations": 0,
-        "converged": True,
-        "names": names,
-        "fisher_source": str(fit_values.get("fisher_source", "hessian")),
-        "modes": ((mode, float(fit_values["logdensity"])),),
-        "warnings": (),
-        "seconds": {},
-    }
-    fit = LaplaceFit(**{field: known.get(field) for field in LaplaceFit._fields})
+    mode_flat = np.asarray(fit_values["mode"], dtype=dtype)
+    mode = unravel(jnp.asarray(mode_flat))
+    fit = LaplaceFit(
+        mode=mode,
+        mode_flat=jnp.asarray(mode_flat),
+        logdensity=float(fit_values["logdensity"]),
+        fisher=np.asarray(fit_values["fisher"], dtype=dtype),
+        cholesky=np.asarray(fit_values["cholesky"], dtype=dtype),
+        gradient_norm=float(fit_values["gradient_norm"]),
+        iterations=0,
+        evaluations=0,
+        names=names,
+        fisher_source=str(fit_values.get("fisher_source", "hessian")),
+        modes=((mode, float(fit_values["logdensity"])),),
+        warnings=(),
+        seconds={},
+    )
     notes = tuple(str(n) for n in record.get("notes", ())) + (
         "Walker rebuilt from a saved record: the tuning and the Laplace fit were not "
         "recomputed.",)
-    report = {"laplace": fit, "check": _laplace_check(record.get("check")), "notes": notes}
-    parts = {
-        "algorithm": proposal.blackjax_algorithm(logdensity_fn, tuning.factor),
-        "states": RWState(jax.vmap(unravel)(flat), logdensity),
-        "tuning": tuning,
-        "report": StartReport(**{f: report.get(f) for f in StartReport._fields}),
-        "logdensity_fn": logdensity_fn,
-        "names": names,
-        "unravel": unravel,
-        "engine": make_engine(flat_logdensity, chains),
-        "evaluate": evaluate,
-    }
-    return Walker(**{field: parts[field] for field in Walker._fields})
+    report = StartReport(fit, _laplace_check(record.get("check")), notes)
+    if logdensity is not None:
+        logdensity = np.asarray(logdensity).astype(dtype, copy=False)
+    walker = assemble(logdensity_fn, report, tuning, flat, logdensity)
+    values = np.asarray(walker.state.logdensity)
+    if values.shape != (flat.shape[0],) or not np.isfinite(values).all():
+        raise InputError(explain(
+            f"The log densities at the positions have shape {values.shape} or are not "
+            "finite.", "walker_from_record(logdensity=...)",
+            "pass positions inside the model's support (one finite value per chain)."))
+    return walker

@@ -34,7 +34,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .errors import InputError, explain
+from ..errors import InputError, explain
 
 __all__ = ["Scenario", "logistic", "poisson", "SCENARIOS", "scenario"]
 
@@ -274,7 +274,7 @@ def scenario(name: str, **options) -> Scenario:
     """The demo scenario called ``name`` (``"logistic"`` or ``"poisson"``)."""
     if name not in SCENARIOS:
         raise InputError(explain(f"There is no demo scenario called {name!r}.",
-                                 "fisherwalk.scenarios.scenario(name)",
+                                 "fisherwalk.cli.scenarios.scenario(name)",
                                  f"use one of {', '.join(map(repr, SCENARIOS))}."))
     return SCENARIOS[name](**options)
 
@@ -282,6 +282,6 @@ def scenario(name: str, **options) -> Scenario:
 def _check_n(n, where: str) -> int:
     if isinstance(n, bool) or not isinstance(n, int | np.integer) or n < 50:
         raise InputError(explain(f"n={n!r} is not a whole number of at least 50 records.",
-                                 f"fisherwalk.scenarios.{where}(n=...)",
+                                 f"fisherwalk.cli.scenarios.{where}(n=...)",
                                  "pass a larger n (the default is the demo's size)."))
     return int(n)

@@ -3,15 +3,15 @@
 Subcommands
 -----------
 ``demo``   fit, tune, warm up, sample and diagnose an invented demo scenario
-           (:mod:`fisherwalk.scenarios`), and write plots, data, draws and a record.
+           (:mod:`fisherwalk.cli.scenarios`), and write plots, data, draws and a record.
 ``scale``  the optimal scale l and target acceptance for given dimensions.
 ``run``    the same workflow as ``demo`` on a model file of the user's.
 
 The command is an application, so it switches JAX to float64 for itself (the library
 never changes JAX's configuration). :func:`workflow` runs the steps (start, refine,
-walk, summary) and tells the user what each found; :func:`fisherwalk.runrecord.write_outputs`
+walk, summary) and tells the user what each found; :func:`fisherwalk.cli.runrecord.write_outputs`
 writes ``draws.npz`` (plain arrays, no pickle), the plots and ``record.json``;
-:func:`fisherwalk.modelfile.load_model` imports and checks a model file.
+:func:`fisherwalk.cli.modelfile.load_model` imports and checks a model file.
 """
 
 from __future__ import annotations
@@ -24,13 +24,12 @@ import textwrap
 import time
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, NamedTuple
 
 import numpy as np
 
-from .errors import FisherwalkError, InputError, ModelFileError
+from ..errors import FisherwalkError, InputError, ModelFileError
 from .modelfile import load_model
-from .runrecord import _sha256, build_record, write_outputs
+from .runrecord import RunResult, build_record, sha256_file, write_outputs
 
 __all__ = ["main", "workflow", "RunResult"]
 
@@ -48,15 +47,6 @@ _TRUST = ("'run' executes the Python code in MODEL_FILE with your own rights (th
 
 
 # --------------------------------------------------------------------------------- workflow
-
-
-class RunResult(NamedTuple):
-    """Everything one workflow run produced."""
-
-    trace: Any  # fisherwalk.Trace
-    summary: Any  # fisherwalk.report.Summary
-    seconds: dict[str, float]  # wall time of each step
-    keys: dict[str, list[int]]  # key data of each step's key
 
 
 class _Say:
@@ -196,7 +186,7 @@ _nonnegative = _whole(0)
 def _options(args) -> dict:
     import inspect
 
-    from .laplace import laplace
+    from ..fit.laplace import laplace
 
     defaults = {k: v.default for k, v in inspect.signature(laplace).parameters.items()
                 if v.default is not inspect.Parameter.empty}
@@ -242,7 +232,7 @@ def _demo(args, argv) -> int:
     extra = {"scenario": {"name": scene.name, "records": n, "family": scene.family,
                           "data_seed": scene.seed, "prior_sd": scene.prior_sd,
                           "labels": list(scene.names), "true_beta": scene.true_beta,
-                          "data_file": data_path.name, "data_sha256": _sha256(data_path)},
+                          "data_file": data_path.name, "data_sha256": sha256_file(data_path)},
              "truth": truth["rows"]}
     t = time.perf_counter()
     say.busy("writing the figures and the record")
@@ -284,7 +274,7 @@ def _max_z_range(count: int) -> tuple[float, float]:
 
 
 def _scale(args) -> int:
-    from .scaling import optimal_scale
+    from ..theory.randomwalk import optimal_scale
 
     choices = [optimal_scale(d) for d in args.dims]
     if args.json:
@@ -316,7 +306,7 @@ def _run(args, argv) -> int:
                       fisher=model.fisher, say=say)
     print()
     print(str(result.summary))
-    extra = {"model_file": {"path": str(model.path.resolve()), "sha256": _sha256(model.path),
+    extra = {"model_file": {"path": str(model.path.resolve()), "sha256": sha256_file(model.path),
                             "labels": list(model.labels) if model.labels else None,
                             "fisher": "from the model file" if model.fisher is not None
                             else "autodiff Hessian"}}

@@ -70,11 +70,11 @@ def _labels(trace, labels: Sequence[str] | None) -> list[str]:
         return names
     labels = list(labels)
     if len(labels) != len(names):
-        from .errors import InputError, explain
+        from ..errors import InputError, explain
 
         raise InputError(explain(
             f"{len(labels)} labels were given for {len(names)} parameters.",
-            "fisherwalk.plots (labels=...)",
+            "fisherwalk.results.plots (labels=...)",
             f"pass one label per parameter, in the order {', '.join(names[:6])}"
             f"{', ...' if len(names) > 6 else ''}."))
     return [f"{name}  ({label})" if label != name else name
@@ -192,7 +192,7 @@ def plot_tuning(trace, path=None):
     picture holds; points off them say the posterior differs from N(mode, H⁻¹) (wider,
     narrower, skewed).
     """
-    from .scaling import acceptance_curve
+    from ..theory.randomwalk import acceptance_curve
 
     tuning = trace.walker.tuning
     warm = trace.walker.report.warmup

@@ -58,7 +58,7 @@ import numpy as np
 from numpy.polynomial.legendre import leggauss
 from scipy import optimize, special
 
-from .errors import FisherwalkError, InputError, explain
+from ..errors import FisherwalkError, InputError, explain
 
 __all__ = [
     "CRITERIA",
@@ -67,10 +67,12 @@ __all__ = [
     "acceptance_curve",
     "expected_acceptance",
     "expected_jump",
+    "is_matched",
     "optimal_scale",
 ]
 
 CRITERIA = ("slowest", "total")
+MATCHED_RTOL = 1e-6  # a spectrum within this of all ones is the matched proposal
 _SQRT2 = float(np.sqrt(2.0))
 
 
@@ -353,6 +355,12 @@ def _spectrum_optimum(dim: int, groups: _Groups, criterion: str) -> float:
 
 
 # ----------------------------------------------------------------------------- public
+
+
+def is_matched(spectrum: Any) -> bool:
+    """Whether a spectrum of A = Sᵀ H S is all ones within :data:`MATCHED_RTOL`: the
+    proposal matches the precision, and the exact chi-law computation applies."""
+    return bool(np.allclose(np.asarray(spectrum, dtype=float), 1.0, rtol=MATCHED_RTOL, atol=0.0))
 
 
 def optimal_scale(dim: int, spectrum: Any = None, *, criterion: str = "slowest") -> ScaleChoice:

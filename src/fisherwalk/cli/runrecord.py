@@ -16,14 +16,24 @@ import platform
 from collections.abc import Sequence
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
-if TYPE_CHECKING:
-    from .cli import RunResult
+from ..run import tuningfile
 
-__all__ = ["build_record", "write_outputs"]
+__all__ = ["RunResult", "build_record", "write_outputs", "sha256_file"]
+
+
+
+class RunResult(NamedTuple):
+    """Everything one workflow run produced."""
+
+    trace: Any  # fisherwalk.Trace
+    summary: Any  # fisherwalk.results.report.Summary
+    seconds: dict[str, float]  # wall time of each step
+    keys: dict[str, list[int]]  # key data of each step's key
+
 
 PACKAGES = ("fisherwalk", "jax", "jaxlib", "blackjax", "optax", "numpy", "scipy")
 
@@ -67,20 +77,18 @@ def _plain(value: Any) -> Any:
     return repr(value)
 
 
-def _sha256(path: Path) -> str:
+def sha256_file(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
 def build_record(command: str, argv: Sequence[str], options: dict, result: RunResult,
                  extra: dict) -> dict:
     """Every setting and result needed to reproduce and judge a run, JSON-ready."""
-    from . import record as _record
-
     trace = result.trace
     walker = trace.walker
     fit = walker.report.laplace
     laplace = {name: getattr(fit, name) for name in (
-        "logdensity", "gradient_norm", "iterations", "evaluations", "converged",
+        "logdensity", "gradient_norm", "iterations", "evaluations",
         "fisher_source", "warnings", "seconds")}
     laplace["mode"] = dict(zip(fit.names, np.asarray(fit.mode_flat).tolist(), strict=True))
     sd = np.sqrt(np.diag(np.linalg.inv(np.asarray(fit.fisher))))
@@ -99,7 +107,7 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
                                "seed), 3)", **result.keys},
         "options": options,
         "laplace": laplace,
-        "tuning": _record.tuning_record(walker),
+        "tuning": tuningfile.tuning_record(walker),
         "warmup": walker.report.warmup,
         "summary": result.summary.to_dict(),
         "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin},
@@ -110,7 +118,7 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
 
 def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[str, Path]:
     """draws.npz, the plots and record.json (written last, listing the other files)."""
-    from . import plots
+    from ..results import plots  # the optional extra 'plots' (matplotlib)
 
     trace = result.trace
     files = {}
@@ -120,7 +128,7 @@ def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[st
     files["draws"] = draws_path
     for path in plots.save_all(trace, out, labels=labels):
         files[path.stem] = path
-    record["files"] = {name: {"path": path.name, "sha256": _sha256(path)}
+    record["files"] = {name: {"path": path.name, "sha256": sha256_file(path)}
                        for name, path in files.items()}
     record_path = out / "record.json"
     record_path.write_text(json.dumps(record, indent=1, allow_nan=False) + "\n")

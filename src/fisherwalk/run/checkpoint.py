@@ -7,7 +7,7 @@
     chunk, chains, dimension, parameter names, float type, the tuning's scale and
     target acceptance, and SHA-256 digests of the proposal factor, the Laplace mode and
     the chains' starting states), its fingerprint (the SHA-256 of that identity), the
-    walker's tuning record (:mod:`fisherwalk.record`) and the starting states.
+    walker's tuning record (:mod:`fisherwalk.run.tuningfile`) and the starting states.
 ``state.json``
     Small and of fixed size, replaced at every save: draws done, the number of complete
     segments, and the chains' state (position, log density) after the last saved draw.
@@ -25,8 +25,8 @@ all the draws at every save would make it grow with draws x saves.
 
 Saves happen at most every ``checkpoint_every`` seconds (0: after every chunk), at the
 end of the run, and when Ctrl-C stops it. A resumed run is bit-identical to an
-uninterrupted one: the per-step keys are ``fold_in(key, global step)``
-(:mod:`fisherwalk.keys`) and the chains' state is restored exactly.
+uninterrupted one: step ``s`` reads the Philox counters that belong to ``s`` alone
+(:func:`fisherwalk.base.keys.step_noise`) and the chains' state is restored exactly.
 
 Only JSON and ``np.load(..., allow_pickle=False)`` are read back, so a checkpoint cannot
 execute code. A checkpoint of another run is refused, never overwritten.
@@ -51,13 +51,14 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..base.keys import key_data
+from ..base.pytrees import name_difference
+from ..errors import CheckpointError, InputError, explain
 from .engine import ChainState
-from .errors import CheckpointError, InputError, explain
-from .keys import key_data
-from .precision import x64_enabled
-from .record import _name_difference, tuning_record, walker_from_record
+from .tuningfile import tuning_record
 
-__all__ = ["Store", "resume", "DEFAULT_EVERY"]
+__all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_json", "decode",
+           "damaged"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 1
@@ -116,7 +117,7 @@ def _encode(array: Any) -> dict:
     return {"shape": list(values.shape), "values": flat}
 
 
-def _decode(content: Any, dtype, shape: tuple) -> np.ndarray:
+def decode(content: Any, dtype, shape: tuple) -> np.ndarray:
     """The inverse of :func:`_encode`; ValueError when malformed."""
     if not isinstance(content, dict) or content.get("shape") != list(shape):
         raise ValueError(f"an array of shape {shape} was expected")
@@ -138,7 +139,7 @@ def _digest(array: Any) -> str:
     return h.hexdigest()
 
 
-def _damaged(file: Path, reason: str) -> CheckpointError:
+def damaged(file: Path, reason: str) -> CheckpointError:
     directory = file.parent
     return CheckpointError(
         explain(
@@ -154,21 +155,21 @@ def _refuse_constant(name: str):
     raise ValueError(f"{name} is not allowed")
 
 
-def _read_json(file: Path) -> dict:
+def read_json(file: Path) -> dict:
     try:
         with open(file, "rb") as handle:
             content = json.loads(handle.read().decode("utf-8"), parse_constant=_refuse_constant)
     except OSError as err:
-        raise _damaged(file, f"it cannot be read ({err.strerror})") from err
+        raise damaged(file, f"it cannot be read ({err.strerror})") from err
     except (UnicodeDecodeError, ValueError) as err:
-        raise _damaged(file, f"it is not valid JSON ({err})") from err
+        raise damaged(file, f"it is not valid JSON ({err})") from err
     if not isinstance(content, dict) or content.get("format") != FORMAT:
-        raise _damaged(file, "it is not a fisherwalk checkpoint file")
+        raise damaged(file, "it is not a fisherwalk checkpoint file")
     if content.get("format_version") != FORMAT_VERSION:
-        raise _damaged(file, f"format version {content.get('format_version')!r}, this "
+        raise damaged(file, f"format version {content.get('format_version')!r}, this "
                              f"fisherwalk reads {FORMAT_VERSION}")
     if not isinstance(content.get("fingerprint"), str):
-        raise _damaged(file, "it has no fingerprint")
+        raise damaged(file, "it has no fingerprint")
     return content
 
 
@@ -181,7 +182,7 @@ def _whole(value: Any) -> bool:
 
 def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
     positions = np.asarray(walker.flat_positions())
-    logdensity = np.asarray(walker.states.logdensity)
+    logdensity = np.asarray(walker.state.logdensity)
     tuning = walker.tuning
     return {
         "draws": int(draws),
@@ -212,7 +213,7 @@ def _differences(there: dict, here: dict) -> list[str]:
     if there.get("dim") != here["dim"]:
         out.append(f"dimension {there.get('dim')} in the checkpoint, {here['dim']} here")
     elif there.get("names") != here["names"]:
-        out.append("other parameters: " + _name_difference(
+        out.append("other parameters: " + name_difference(
             tuple(there.get("names") or ()), tuple(here["names"]),
             there="the checkpoint", here="this walker"))
     if there.get("dtype") != here["dtype"]:
@@ -293,7 +294,7 @@ class Store:
                 "checkpoint of this run; the file is left untouched.")
         run_file = p / RUN_FILE
         if run_file.exists():
-            run = _read_json(run_file)
+            run = read_json(run_file)
             if run["fingerprint"] != self.fingerprint:
                 there = run.get("identity") if isinstance(run.get("identity"), dict) else {}
                 diffs = _differences(there, self.identity) or ["its fingerprint differs"]
@@ -325,7 +326,7 @@ class Store:
             "identity": self.identity,
             "record": tuning_record(walker),
             "start": {"position": _encode(walker.flat_positions()),
-                      "logdensity": _encode(walker.states.logdensity)},
+                      "logdensity": _encode(walker.state.logdensity)},
         }
         _write_json(run_file, run)
 
@@ -335,32 +336,32 @@ class Store:
         file = self.path / STATE_FILE
         if not file.exists():
             if any(_SEGMENT_RE.match(f) for f in os.listdir(self.path)):
-                raise _damaged(file, "it is missing while segment files exist")
+                raise damaged(file, "it is missing while segment files exist")
             return None  # the process stopped before its first save
-        state = _read_json(file)
+        state = read_json(file)
         if state["fingerprint"] != self.fingerprint:
-            raise _damaged(file, "it was written for another run than run.json")
+            raise damaged(file, "it was written for another run than run.json")
         done, segments = state.get("done"), state.get("segments")
         if not (_whole(done) and _whole(segments)) or done > self.draws:
-            raise _damaged(file, f"done={done!r} and segments={segments!r} are not valid")
+            raise damaged(file, f"done={done!r} and segments={segments!r} are not valid")
         if (done % self.chunk and done != self.draws) or (done == 0) != (segments == 0):
-            raise _damaged(file, f"done={done} is not a chunk boundary")
+            raise damaged(file, f"done={done} is not a chunk boundary")
         return state
 
     def _load_segment(self, index: int, start: int, collector) -> int:
         file = self.path / _SEGMENT.format(index)
         if not file.exists():
-            raise _damaged(file, "the segment file is missing")
+            raise damaged(file, "the segment file is missing")
         try:
             with np.load(file, allow_pickle=False) as data:
                 arrays = {name: data[name] for name in (*_ARRAYS, "start", "stop", "fingerprint")}
         except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
-            raise _damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
+            raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
         if str(arrays["fingerprint"]) != self.fingerprint:
-            raise _damaged(file, "the segment was written for another run")
+            raise damaged(file, "the segment was written for another run")
         first, stop = int(arrays["start"]), int(arrays["stop"])
         if first != start or not start < stop <= self.draws:
-            raise _damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
+            raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
         chains, _, dim = collector.flat.shape
         for name, target in zip(_ARRAYS, (collector.flat, collector.logdensity, collector.accepted,
                                           collector.acceptance_rate, collector.faults),
@@ -368,7 +369,7 @@ class Store:
             value = arrays[name]
             expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
             if value.shape != expected or value.dtype != target.dtype:
-                raise _damaged(file, f"'{name}' has shape {value.shape} and dtype {value.dtype}, "
+                raise damaged(file, f"'{name}' has shape {value.shape} and dtype {value.dtype}, "
                                      f"expected {expected} and {target.dtype}")
             target[:, start:stop] = value
         return stop
@@ -385,17 +386,17 @@ class Store:
             stop = self._load_segment(index, stop, collector)
         state_file = self.path / STATE_FILE
         if stop != done:
-            raise _damaged(state_file, f"it counts {done} draws, the segments hold {stop}")
+            raise damaged(state_file, f"it counts {done} draws, the segments hold {stop}")
         chains, _, dim = collector.flat.shape
         if done:
             try:
-                position = _decode(saved.get("position"), collector.flat.dtype, (chains, dim))
-                logdensity = _decode(saved.get("logdensity"), collector.flat.dtype, (chains,))
+                position = decode(saved.get("position"), collector.flat.dtype, (chains, dim))
+                logdensity = decode(saved.get("logdensity"), collector.flat.dtype, (chains,))
             except ValueError as err:
-                raise _damaged(state_file, f"the chains' state is malformed ({err})") from err
+                raise damaged(state_file, f"the chains' state is malformed ({err})") from err
             if not (np.array_equal(position, collector.flat[:, done - 1])
                     and np.array_equal(logdensity, collector.logdensity[:, done - 1])):
-                raise _damaged(state_file, "the chains' state is not the last saved draw")
+                raise damaged(state_file, "the chains' state is not the last saved draw")
         collector.done = done
         self._done, self._segments = done, segments
         self._tidy()
@@ -444,107 +445,3 @@ class Store:
             "logdensity": _encode(collector.logdensity[:, done - 1]),
         })
         self._done, self._segments, self._last = done, index + 1, now
-
-
-# ----------------------------------------------------------------------------- resume
-
-
-def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: bool | None = None,
-           checkpoint_every: float = DEFAULT_EVERY):
-    """Finish a checkpointed run from its directory alone and the model's log density.
-
-    The walker is rebuilt from the tuning record stored in the checkpoint
-    (:func:`fisherwalk.record.walker_from_record`); the log density cannot be stored,
-    so it is checked: recomputed at the saved chain states, it must give the saved
-    values. The run then continues as ``walk(..., checkpoint=path)`` would, with the
-    saved key, draws, thin and chunk, and gives the same draws as an uninterrupted run.
-
-    Parameters
-    ----------
-    path
-        The checkpoint directory.
-    logdensity_fn
-        The log density of the original run.
-    position
-        A position of the model; needed only if the model's position is a pytree that
-        JSON cannot describe (e.g. a NamedTuple).
-    progress
-        Progress bar, as in :func:`fisherwalk.walk`.
-    checkpoint_every
-        Seconds between saves (0: after every chunk).
-
-    Returns
-    -------
-    Trace
-
-    Raises
-    ------
-    CheckpointError
-        No checkpoint at ``path``, a damaged one, or a log density that does not
-        match the one the checkpoint was written with.
-    """
-    from .sampling import walk
-
-    directory = Path(path)
-    run_file = directory / RUN_FILE
-    where = f"resume({os.fspath(directory)!r})"
-    if not run_file.is_file():
-        raise CheckpointError(explain(f"There is no checkpoint at {directory} (no {RUN_FILE}).",
-                                      where, "pass the directory given to walk(checkpoint=...)."))
-    run = _read_json(run_file)
-    identity, start = run.get("identity"), run.get("start")
-    try:
-        chains, dim = identity["chains"], identity["dim"]
-        dtype = np.dtype(identity["dtype"])
-        positions0 = _decode(start["position"], dtype, (chains, dim))
-        logdensity0 = _decode(start["logdensity"], dtype, (chains,))
-        key = jax.random.wrap_key_data(np.asarray(identity["key"]["data"], dtype=np.uint32),
-                                       impl=identity["key"]["impl"])
-        draws, thin, chunk = identity["draws"], identity["thin"], identity["chunk"]
-    except (KeyError, TypeError, ValueError) as err:
-        raise _damaged(run_file, f"its identity or starting states are malformed ({err})") from err
-    if dtype == np.float64 and not x64_enabled():
-        raise CheckpointError(explain(
-            "The checkpoint was written in float64 and JAX now computes in float32.", where,
-            'run jax.config.update("jax_enable_x64", True) before resuming, as in the '
-            "original run."))
-    try:
-        walker = walker_from_record(run.get("record"), logdensity_fn, positions0, logdensity0,
-                                    position=position)
-    except InputError as err:
-        raise CheckpointError(explain(
-            f"The walker cannot be rebuilt from {run_file}: {str(err).splitlines()[0]}",
-            where, "pass position=<a position of the model> if the message asks for it; "
-                   "otherwise the file is damaged: delete the checkpoint to start afresh.",
-        )) from err
-    _check_logdensity(directory, walker, positions0, logdensity0, where)
-    return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
-                checkpoint_every=checkpoint_every)
-
-
-def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str) -> None:
-    """The user's log density must reproduce the saved one at the saved chain states."""
-    positions, stored = positions0, logdensity0
-    state_file = directory / STATE_FILE
-    if state_file.exists():
-        saved = _read_json(state_file)
-        if saved.get("done"):
-            try:
-                positions = _decode(saved.get("position"), positions0.dtype, positions0.shape)
-                stored = _decode(saved.get("logdensity"), positions0.dtype, logdensity0.shape)
-            except ValueError as err:
-                raise _damaged(state_file, f"the chains' state is malformed ({err})") from err
-    values = np.asarray(walker.evaluate(jnp.asarray(positions)))
-    # Same model, same data: equal up to rounding of the sum (a different compilation
-    # may order it differently), so allow sqrt(machine epsilon) relative to |log density|.
-    tol = math.sqrt(np.finfo(positions0.dtype).eps) * (1.0 + np.abs(stored))
-    bad = np.flatnonzero(~(np.abs(values - stored) <= tol))
-    if bad.size:
-        c = int(bad[0])
-        raise CheckpointError(explain(
-            f"The log density given to resume() is not the one this checkpoint was written "
-            f"with: at the saved state of chain {c} it gives {values[c]!r}, the run had "
-            f"{stored[c]!r}.",
-            f"{where}, chain {c}",
-            "pass the log density of the original run (same model, same data); for a new "
-            "model or data set start a new run with another checkpoint path."))

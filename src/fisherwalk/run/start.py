@@ -11,82 +11,23 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Callable
-from typing import Any, NamedTuple
+from typing import Any
 
 import jax
-import jax.numpy as jnp
 import numpy as np
-from blackjax.mcmc.random_walk import RWState
 
-from . import proposal, pytrees
-from .engine import make_engine
-from .errors import FisherwalkWarning, InputError, explain
-from .keys import as_key, normals, stream
-from .laplace import LaplaceFit, laplace
-from .scaling import ScaleChoice, optimal_scale
+from ..base.keys import as_key, normals, stream
+from ..errors import FisherwalkWarning, InputError, explain
+from ..fit.laplace import LaplaceFit, laplace
+from ..results.diagnostics import khat_threshold, pareto_khat
+from . import proposal
+from .tuningfile import SavedTuning, check_tuning
+from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
+
+__all__ = ["start", "proposal_shape", "tuning_for", "SHAPES", "LAPLACE_DRAWS"]
 
 SHAPES = ("fisher", "diagonal", "identity")
-
-
-class Tuning(NamedTuple):
-    """The proposal a walker uses: theta' = theta + factor @ z, z ~ N(0, I)."""
-
-    scale: float  # l, the dimension-free scale
-    target_acceptance: float  # acceptance the theory predicts at this scale and shape
-    factor: np.ndarray  # (d, d) (l / sqrt(d)) * shape, handed to BlackJAX as sigma
-    shape: np.ndarray  # (d, d) S; S Sᵀ is the proposal's covariance up to l²/d
-    dim: int  # d
-    shape_kind: str  # "fisher", "diagonal", "identity", "user", "saved" or "warm-up"
-    spectrum: np.ndarray  # (d,) eigenvalues of A = Sᵀ P S, P the precision the walker believes
-    predicted_jump: float  # expected squared jump per step in whitened units at this scale
-    choice: ScaleChoice  # the full scale computation behind scale and target_acceptance
-    whitening: np.ndarray  # (d, d) lower L with L Lᵀ = P: whitened position = Lᵀ (theta - mode)
-
-
-class StartReport(NamedTuple):
-    """How a walker was obtained."""
-
-    laplace: LaplaceFit  # the mode and Fisher information
-    check: Any  # LaplaceCheck: PSIS k̂ of the Laplace approximation, before any step
-    notes: tuple[str, ...]  # what start() did that a user should know
-    warmup: Any = None  # set by refine(): a warmup.WarmupReport
-
-
-class Walker(NamedTuple):
-    """Everything needed to run tuned random-walk Metropolis chains.
-
-    ``algorithm`` is BlackJAX's additive-step random walk with this walker's proposal;
-    ``states`` holds one BlackJAX ``RWState`` per chain, batched along a leading axis,
-    ready for ``jax.vmap(algorithm.step)``.
-    """
-
-    algorithm: Any  # blackjax SamplingAlgorithm(init, step)
-    states: RWState  # position (user's pytree, leading chain axis), logdensity (chains,)
-    tuning: Tuning  # scale, target acceptance, factor, shape, spectrum
-    report: StartReport  # the Laplace fit and notes
-    logdensity_fn: Callable  # the user's log density, position pytree -> scalar
-    names: tuple[str, ...]  # one name per scalar parameter, ravelled order
-    unravel: Callable  # (d,) vector -> the user's pytree
-    engine: Callable  # the multi-chain loop (engine.make_engine), compiled once per walker
-    evaluate: Callable  # jitted batched log density, (m, d) -> (m,)
-
-    @property
-    def chains(self) -> int:
-        return int(np.shape(self.states.logdensity)[0])
-
-    @property
-    def flat_logdensity(self) -> Callable:
-        """The log density on the ravelled position."""
-        unravel, fn = self.unravel, self.logdensity_fn
-        return lambda vector: fn(unravel(vector))
-
-    def flat_positions(self) -> np.ndarray:
-        """Chain positions ravelled: (chains, d), on the host."""
-        return pytrees.ravel_batch(self.states.position)
-
-    def unravel_many(self, flat) -> Any:
-        """(..., d) ravelled positions -> the user's pytree with the same leading axes."""
-        return pytrees.unravel_batch(flat, self.report.laplace.mode)
+LAPLACE_DRAWS = 500  # draws of N(mode, H⁻¹): chains start at some; all feed PSIS k̂
 
 
 def _validate_chains(chains) -> int:
@@ -169,56 +110,24 @@ def proposal_shape(shape, fit: LaplaceFit) -> tuple[jax.Array, str]:
                 f"use one of {', '.join(map(repr, SHAPES))}, or pass a (d, d) covariance matrix.",
             )
         )
-    if isinstance(shape, Tuning):
-        from .record import check_tuning
-
+    if isinstance(shape, SavedTuning):
         check_tuning(shape, fit.names)
+        return np.asarray(shape.tuning.shape, dtype=dtype), "saved"
+    if isinstance(shape, Tuning):
+        check_tuning(SavedTuning(shape, None, None), fit.names)
         return np.asarray(shape.shape, dtype=dtype), "saved"
     return _user_shape(shape, fit), "user"
 
 
-def spectrum_of(shape: jax.Array, cholesky: jax.Array) -> np.ndarray:
-    """Eigenvalues of A = Sᵀ H S with H = L Lᵀ: the squared singular values of Lᵀ S."""
-    m = np.asarray(cholesky).T @ np.asarray(shape)
-    return np.sort(np.linalg.svd(m, compute_uv=False) ** 2)
-
-
-def tune(shape, shape_kind: str, cholesky, *, criterion: str = "slowest",
-         scale: float | None = None) -> Tuning:
-    """Scale and target acceptance for a proposal shape against the precision L Lᵀ.
+def tuning_for(shape, shape_kind: str, cholesky, *, criterion: str = "slowest") -> Tuning:
+    """The tuning of a proposal shape against the precision L Lᵀ, at the optimal scale.
 
     The matched shape uses the exact chi-law computation; any other shape uses the
     spectrum of A = Sᵀ H S (see :func:`fisherwalk.optimal_scale`).
     """
-    shape = np.asarray(shape)
-    cholesky = np.asarray(cholesky)
-    dim = int(shape.shape[0])
-    spectrum = spectrum_of(shape, cholesky)
-    matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6, atol=0.0))
-    choice = optimal_scale(dim) if matched else optimal_scale(dim, spectrum, criterion=criterion)
-    if scale is None:
-        scale, target, jump = choice.scale, choice.acceptance, choice.jump_distance
-    else:
-        from .scaling import expected_acceptance, expected_jump
-
-        sp = None if matched else spectrum
-        target = float(expected_acceptance(scale, dim, sp))
-        jump = float(expected_jump(scale, dim, sp))
-    factor = proposal.proposal_factor(shape, scale)
-    return Tuning(float(scale), float(target), factor, shape, dim, shape_kind, spectrum,
-                  float(jump), choice, cholesky)
-
-
-LAPLACE_DRAWS = 500  # draws of N(mode, H⁻¹): chains start at some; all feed PSIS k̂
-
-
-class LaplaceCheck(NamedTuple):
-    """PSIS check of the Laplace approximation against the posterior, before any step."""
-
-    khat: float  # Pareto k̂ of the importance ratios posterior / Laplace
-    threshold: float  # min(1 - 1/log10 S, 0.7) (Vehtari et al. 2024, JMLR 25(72))
-    draws: int  # S, the number of Laplace draws
-    outside_support: int  # draws where the log density was not finite
+    shape, cholesky = np.asarray(shape), np.asarray(cholesky)
+    draft = Tuning(shape, 1.0, cholesky, shape_kind, criterion)
+    return draft._replace(scale=float(draft.choice.scale))
 
 
 def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
@@ -228,8 +137,6 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
     approximation (Vehtari, Simpson, Gelman, Yao & Gabry 2024, "Pareto smoothed
     importance sampling", JMLR 25(72)): log weights log π(θ) − log q(θ).
     """
-    from .diagnostics import khat_threshold, pareto_khat
-
     mode = np.asarray(fit.mode_flat)
     fisher_shape = proposal.shape_from_cholesky(fit.cholesky).astype(mode.dtype)
     size = max(LAPLACE_DRAWS, chains)
@@ -335,13 +242,8 @@ def start(
     elif not isinstance(fit, LaplaceFit):
         raise InputError(explain(f"fit={type(fit).__name__} is not a LaplaceFit.",
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
-    flat, unravel = jax.flatten_util.ravel_pytree(fit.mode)
-
-    def flat_logdensity(vector):
-        return logdensity_fn(unravel(vector))
-
     shape_matrix, kind = proposal_shape(shape, fit)
-    tuning = tune(shape_matrix, kind, fit.cholesky, criterion=criterion)
+    tuning = tuning_for(shape_matrix, kind, fit.cholesky, criterion=criterion)
     notes = list(fit.warnings)
     for message in fit.warnings:  # other modes, a better restart: say it out loud
         warnings.warn(message, FisherwalkWarning, stacklevel=2)
@@ -352,23 +254,8 @@ def start(
             f"and target acceptance {tuning.target_acceptance:.3f} are chosen for it; relative "
             f"efficiency {tuning.choice.efficiency:.3f} of the matched proposal."
         )
-    evaluate = jax.jit(jax.vmap(flat_logdensity))
-    positions, logdens, check, state_notes = _laplace_sample(evaluate, fit, key, chains)
+    model = make_model(logdensity_fn, fit.mode, chains)
+    positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
     notes.extend(state_notes)
-    states = RWState(jax.tree.map(jnp.asarray, pytrees.unravel_batch(positions, fit.mode)),
-                     jnp.asarray(logdens))
-    algorithm = proposal.blackjax_algorithm(logdensity_fn, tuning.factor)
-    engine = make_engine(flat_logdensity, chains)
-    return Walker(algorithm, states, tuning, StartReport(fit, check, tuple(notes)),
-                  logdensity_fn, tuple(fit.names), unravel, engine, evaluate)
-
-
-def with_tuning(walker: Walker, tuning: Tuning, *, states: RWState | None = None,
-                report: StartReport | None = None) -> Walker:
-    """A new walker with another tuning (nothing mutated)."""
-    return walker._replace(
-        algorithm=proposal.blackjax_algorithm(walker.logdensity_fn, tuning.factor),
-        tuning=tuning,
-        states=walker.states if states is None else states,
-        report=walker.report if report is None else report,
-    )
+    report = StartReport(fit, check, tuple(notes))
+    return assemble(logdensity_fn, report, tuning, positions, logdens, model=model)

@@ -43,18 +43,18 @@ import math
 from typing import NamedTuple
 
 import jax
-import jax.numpy as jnp
 import numpy as np
-from blackjax.mcmc.random_walk import RWState
 from scipy.stats import chi2
 
-from . import engine as _engine
-from .diagnostics import ess_mean
-from .errors import InputError, explain
-from .keys import as_key, stream
-from .proposal import proposal_factor, shape_from_cholesky
-from .sampling import DEFAULT_CHUNK, _progress_bar, check_states
-from .walker import Walker, tune, with_tuning
+from ..base.checks import whole_number
+from ..base.keys import as_key, stream
+from ..results.diagnostics import ess_mean
+from . import engine
+from .engine import DEFAULT_CHUNK, ChainState, run_chunks
+from .progress import progress_bar
+from .proposal import shape_from_cholesky
+from .start import tuning_for
+from .walker import Walker, continuable_state
 
 ADAPTATION_RATE = 1.0  # Robbins-Monro gain constant: gain_t = rate * (t + 1)^-0.6
 SCALE_TOLERANCE = 0.10  # |log(adapted / predicted scale)| beyond this says the picture is off
@@ -85,23 +85,20 @@ class WarmupReport(NamedTuple):
     notes: tuple[str, ...]  # plain-language account for the report
 
 
-def _run_phase(walker, noise_key, state, tuning, steps, adapt_from, target, bar,
+def _run_phase(walker, noise_key, state, factor, steps, adapt_from, target, bar,
                rate_constant=ADAPTATION_RATE):
     """Adapt the scale multiplier for ``steps`` steps; return draws and the path."""
     dtype = np.asarray(state.logdensity).dtype
     pieces, rates, paths = [], [], []
-    log_m = 0.0
-    for k in range(steps // DEFAULT_CHUNK):
-        ctrl = _engine.control(log_multiplier=log_m, target=target, rate=rate_constant,
-                               adapt_step=adapt_from + k * DEFAULT_CHUNK, dtype=dtype)
-        out = walker.engine(noise_key, k * DEFAULT_CHUNK, state, tuning.factor, ctrl,
-                            DEFAULT_CHUNK)
-        state, log_m = out.state, float(out.log_multiplier)
+    ctrl = engine.control(log_multiplier=0.0, target=target, rate=rate_constant,
+                          adapt_step=adapt_from, dtype=dtype)
+    for keep, out in run_chunks(walker.engine, noise_key, state, factor, ctrl, steps):
+        state = out.state
         pieces.append(np.asarray(out.position))
         rates.append(np.asarray(out.acceptance_rate))
         paths.append(np.asarray(out.log_multiplier_path))
         if bar is not None:
-            bar.update(DEFAULT_CHUNK)
+            bar.update(keep)
     draws = np.swapaxes(np.concatenate(pieces), 0, 1)  # (chains, steps, d)
     rate = np.concatenate(rates)  # (steps, chains)
     path = np.concatenate(paths)  # (steps,)
@@ -164,7 +161,7 @@ def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
     else:
         shape = np.linalg.cholesky(blend)
     precision_chol = np.linalg.cholesky(np.linalg.inv(blend))
-    tuning = tune(shape.astype(dtype), "warm-up", precision_chol.astype(dtype))
+    tuning = tuning_for(shape.astype(dtype), "warm-up", precision_chol.astype(dtype))
     return tuning, weight
 
 
@@ -199,23 +196,21 @@ def refine(
         A new walker (nothing mutated): refined tuning, chains at their warm-up end,
         and ``report.warmup`` (:class:`WarmupReport`) saying what was done and why.
     """
-    if isinstance(steps, bool) or not isinstance(steps, int | np.integer) or steps < 1:
-        raise InputError(explain(f"steps={steps!r} is not a positive whole number.",
-                                 "refine(steps=...)", "pass steps as an int, e.g. 400."))
+    steps = whole_number(steps, "steps", "refine(steps=...)")
     block = 2 * DEFAULT_CHUNK
     steps = int(math.ceil(steps / block) * block)
     key = as_key(rng_key, where="refine(rng_key=...)")
-    state = check_states(walker, "refine()")
+    state = continuable_state(walker, "refine()")
     tuning0 = walker.tuning
     fit = walker.report.laplace
     check = walker.report.check
     khat, k_limit, outside = check.khat, check.threshold, check.outside_support
-    bar = _progress_bar(steps, progress, "warm-up")
+    bar = progress_bar(steps, progress, "warm-up")
     half = steps // 2
     try:
         state, draws, acc1, log_m1, _ = _run_phase(
-            walker, stream(key, 1), state, tuning0, half, 0,
-            tuning0.target_acceptance, bar)
+            walker, stream(key, 1), state, tuning0.factor, half, 0,
+            tuning0.choice.acceptance, bar)
         cov, spectrum, bounds, n_eff, p_value = _covariance_check(draws,
                                                                   np.asarray(fit.cholesky))
         reasons = []
@@ -253,15 +248,14 @@ def refine(
             # Every check agrees with the Gaussian picture, where the theoretical scale is
             # exact: keep it (the adapted one differs from it only by Monte Carlo noise)
             # and let phase 2 measure the acceptance at that scale.
-            tuning1 = tuning0._replace(
-                scale=float(theory), factor=proposal_factor(tuning0.shape, theory))
+            tuning1 = tuning0._replace(scale=float(theory))
             log_m_start, rate = 0.0, 0.0
             notes.append("Every check agreed with the Gaussian picture: kept the proposal "
                          f"shape and the theoretical scale {theory:.3f}.")
-        target = tuning1.target_acceptance
+        target = tuning1.choice.acceptance  # the optimum for this shape
         state2, _, acc2, log_m2, mcse2 = _run_phase(
             walker, stream(key, 2), state,
-            tuning1._replace(factor=tuning1.factor * math.exp(log_m_start)),
+            tuning1.factor * math.exp(log_m_start),
             half, half, target, bar, rate)
         if rate == 0.0 and abs(acc2 - target) > 3.0 * mcse2:
             # At the theoretical scale the chains accept more or less often than the
@@ -272,14 +266,14 @@ def refine(
             notes[-1] = ("Kept the proposal shape; adapted the scale in a third phase of "
                          f"{half} steps because " + reasons[-1] + ".")
             state2, _, acc2, log_m2, _ = _run_phase(
-                walker, stream(key, 3), state2, tuning1, half, LATE_ADAPTATION, target, bar)
+                walker, stream(key, 3), state2, tuning1.factor, half, LATE_ADAPTATION, target,
+                bar)
             steps += half
     finally:
         if bar is not None:
             bar.close()
     scale_final = tuning1.scale * math.exp(log_m_start + log_m2)
-    final = tuning1._replace(scale=float(scale_final),
-                             factor=tuning1.factor * math.exp(log_m_start + log_m2))
+    final = tuning1._replace(scale=float(scale_final))
     fisher_spectrum = np.sort(
         np.linalg.svd(np.asarray(fit.cholesky).T @ np.asarray(final.shape), compute_uv=False) ** 2
     )
@@ -291,7 +285,5 @@ def refine(
         float(scale_final), float(target), acc1, acc2, spectrum, bounds, p_value, n_eff,
         do_reshape,
         tuple(reasons), fisher_spectrum, tuple(notes))
-    positions = jax.tree.map(jnp.asarray, walker.unravel_many(np.asarray(state2.position)))
-    states = RWState(positions, jnp.asarray(state2.logdensity))
-    report = walker.report._replace(warmup=warm)
-    return with_tuning(walker, final, states=states, report=report)
+    state2 = ChainState(np.asarray(state2.position), np.asarray(state2.logdensity))
+    return walker._replace(state=state2, tuning=final, report=walker.report._replace(warmup=warm))

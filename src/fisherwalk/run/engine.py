@@ -6,7 +6,7 @@ random numbers are all data, not constants. Only the shapes are static: kept dra
 call (the chunk), steps per kept draw (the thinning), chains and dimension.
 
 The random numbers of step ``s`` come from a counter-based generator on the host
-(:func:`fisherwalk.keys.step_noise`), so a run gives the same draws however it is
+(:func:`fisherwalk.base.keys.step_noise`), so a run gives the same draws however it is
 chunked or resumed.
 
 Scale adaptation (warm-up only; ``rate = 0`` switches it off) is a Robbins-Monro
@@ -20,16 +20,17 @@ Statistics and Computing 18, section 4):
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..base.keys import step_noise
 from . import proposal
-from .keys import step_noise
 
+DEFAULT_CHUNK = 100  # kept draws per compiled call; warm-up uses the same, so one compile
 GAIN_EXPONENT = 0.6  # in (1/2, 1]: the Robbins-Monro conditions sum gain = inf, sum gain² < inf
 
 
@@ -112,7 +113,7 @@ def _compiled(logdensity_flat: Callable) -> Callable:
 def make_engine(logdensity_flat: Callable, chains: int) -> Callable:
     """Build ``engine(stream, first_step, state, factor, control, draws, thin=1) -> Chunk``.
 
-    ``stream`` is a Philox key (:func:`fisherwalk.keys.stream`); ``first_step`` the global
+    ``stream`` is a Philox key (:func:`fisherwalk.base.keys.stream`); ``first_step`` the global
     index of the first step this call takes. Compiles once per (draws, thin) pair.
     """
     compiled = _compiled(logdensity_flat)
@@ -138,3 +139,21 @@ def control(*, log_multiplier=0.0, target=0.0, rate=0.0, adapt_step=0, dtype=np.
         np.asarray(rate, dtype=dtype),
         np.asarray(adapt_step, dtype=np.int32),
     )
+
+
+def run_chunks(engine: Callable, noise_key, state: ChainState, factor, ctrl: Control,
+               draws: int, *, chunk: int = DEFAULT_CHUNK, thin: int = 1,
+               done: int = 0) -> Iterator[tuple[int, Chunk]]:
+    """The one chunk loop: advance kept draws ``done .. draws`` in calls of ``chunk``.
+
+    Yields ``(keep, chunk_output)`` per call, ``keep`` being how many of the call's
+    draws belong to the run (the last call may overshoot). Between calls the chains
+    continue from the call's end and the adaptation continues from its multiplier and
+    step count, all on the device. ``done`` must be a multiple of ``chunk``.
+    """
+    for k in range(-(-done // chunk), -(-draws // chunk)):
+        out = engine(noise_key, k * chunk * thin, state, factor, ctrl, chunk, thin)
+        yield min(chunk, draws - k * chunk), out
+        state = out.state
+        ctrl = ctrl._replace(log_multiplier=out.log_multiplier,
+                             adapt_step=ctrl.adapt_step + chunk * thin)

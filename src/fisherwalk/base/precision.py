@@ -6,7 +6,7 @@ import warnings
 
 import jax
 
-from .errors import Float32Warning
+from ..errors import Float32Warning
 
 _ENABLE_LINE = 'jax.config.update("jax_enable_x64", True)'
 _warned = False

@@ -16,7 +16,7 @@ import jax
 import numpy as np
 from scipy.special import ndtri
 
-from .errors import InputError, explain
+from ..errors import InputError, explain
 
 _TWO_POW_53 = 2.0**-53
 

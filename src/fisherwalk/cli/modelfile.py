@@ -17,7 +17,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from .errors import ModelFileError, explain
+from ..errors import ModelFileError, explain
 
 __all__ = ["ModelSpec", "load_model"]
 

@@ -44,7 +44,7 @@ import numpy as np
 from scipy import special, stats
 from scipy.fft import next_fast_len
 
-from .errors import InputError, explain
+from ..errors import InputError, explain
 
 __all__ = [
     "rhat",

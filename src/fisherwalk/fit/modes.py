@@ -9,7 +9,7 @@ tell the user about other modes, a higher mode, and restarts that failed.
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -17,16 +17,14 @@ import numpy as np
 from jax.flatten_util import ravel_pytree
 from jax.scipy.linalg import solve_triangular
 
-from .errors import InputError, explain
-from .fitchecks import _converged, _definiteness_problem, _information, _list, _runaway
-
-if TYPE_CHECKING:
-    from .laplace import _Search
+from ..errors import InputError, explain
+from .checks import converged, definiteness_problem, information, name_list, runaway
+from .search import Search
 
 _SAME_MODE_SD = 3.0  # restarts closer than this many posterior sd are the same mode
 
 
-def _restart_points(key, mode: np.ndarray, info: np.ndarray, restarts: int, spread: float,
+def restart_points(key, mode: np.ndarray, info: np.ndarray, restarts: int, spread: float,
                     bounds: tuple[np.ndarray, np.ndarray] | None, dtype) -> jax.Array:
     """(restarts, d) starting points: N(mode, spread² H⁻¹), or uniform in the bounds."""
     if bounds is None:
@@ -37,7 +35,7 @@ def _restart_points(key, mode: np.ndarray, info: np.ndarray, restarts: int, spre
     return jax.random.uniform(key, (restarts, mode.size), dtype, lower, upper)
 
 
-def _check_box(box: Any, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
+def check_box(box: Any, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
     """(lower, upper) as two (d,) vectors: pytrees like the position, d values, or scalars."""
     d = len(names)
     try:
@@ -52,17 +50,17 @@ def _check_box(box: Any, names: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray
         raise InputError(explain(
             f"box must be (lower, upper), each a pytree like the position, {d} values or a "
             f"scalar ({err}).", "laplace(box=...)",
-            f"give the bounds in the parameter order {_list(range(d), names)}.")) from err
+            f"give the bounds in the parameter order {name_list(range(d), names)}.")) from err
     lower, upper = sides
     if not (np.isfinite(lower).all() and np.isfinite(upper).all() and (lower < upper).all()):
         bad = np.flatnonzero(~(np.isfinite(lower) & np.isfinite(upper) & (lower < upper)))
         raise InputError(explain(
             "box needs finite bounds with lower < upper.",
-            f"laplace(box=...), parameters {_list(bad, names)}", "fix these bounds."))
+            f"laplace(box=...), parameters {name_list(bad, names)}", "fix these bounds."))
     return lower, upper
 
 
-def _collect_modes(modes: list, batch: _Search, fisher: Any, unravel: Callable,
+def collect_modes(modes: list, batch: Search, fisher: Any, unravel: Callable,
                    names: tuple[str, ...], tol: float) -> tuple[list, list[str]]:
     """Merge converged restarts into the list of distinct modes; notes for the user."""
     main = modes[0][0]
@@ -76,17 +74,17 @@ def _collect_modes(modes: list, batch: _Search, fisher: Any, unravel: Callable,
             failed["non-finite"] += 1
             continue
         try:
-            info = _information(s, fisher, unravel, names)
+            info = information(s, fisher, unravel, names)
         except InputError:
             failed["invalid Fisher information"] += 1
             continue
-        if _runaway(s, info) is not None:
+        if runaway(s, info) is not None:
             failed["runaway"] += 1
             continue
-        if not _converged(s, info, tol):
+        if not converged(s, info, tol):
             failed["not converged"] += 1
             continue
-        if fisher is None and _definiteness_problem(info, names):
+        if fisher is None and definiteness_problem(info, names):
             failed["saddle or flat"] += 1
             continue
         for k, (m, m_info) in enumerate(modes):

@@ -16,7 +16,7 @@ import jax.numpy as jnp
 import numpy as np
 from jax.flatten_util import ravel_pytree
 
-from .errors import InputError, explain
+from ..errors import InputError, explain
 
 
 class Flat(NamedTuple):
@@ -148,3 +148,20 @@ def unravel_batch(flat: np.ndarray, like: Any) -> Any:
         out.append(flat[..., start:start + size].reshape(*batch, *shape))
         start += size
     return jax.tree_util.tree_unflatten(treedef, out)
+
+
+def name_difference(saved: tuple[str, ...], names: tuple[str, ...], *,
+                     there: str = "the record", here: str = "this model") -> str:
+    """The difference between two lists of parameter names, in words."""
+    missing = [n for n in saved if n not in names]
+    extra = [n for n in names if n not in saved]
+    if missing or extra:
+        parts = []
+        if missing:
+            parts.append(f"{there} has {', '.join(missing[:6])} which {here} lacks")
+        if extra:
+            parts.append(f"{here} has {', '.join(extra[:6])} which {there} lacks")
+        return "; ".join(parts)
+    k = next(i for i, (a, b) in enumerate(zip(saved, names, strict=True)) if a != b)
+    return (f"same names in another order: position {k} is {saved[k]!r} in {there} and "
+            f"{names[k]!r} in {here}")

@@ -1,0 +1,1 @@
+"""Shared ground: float precision, pytrees, random keys, validators and safe files."""

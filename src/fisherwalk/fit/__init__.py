@@ -1,0 +1,1 @@
+"""The Laplace fit: mode, observed Fisher information, its checks, other modes."""

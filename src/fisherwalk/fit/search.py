@@ -1,0 +1,137 @@
+"""The mode search: L-BFGS, the Hessian and a Newton polish in one compiled loop.
+
+L-BFGS (Liu & Nocedal 1989, "On the limited memory BFGS method for large scale
+optimization", Math. Programming 45) with optax's zoom line search (Nocedal & Wright 2006,
+Numerical Optimization, 2nd ed., Alg. 3.5-3.6), all inside one jitted ``lax.while_loop``,
+then at most two safeguarded Newton steps (optax's L-BFGS can stall short of a tight
+gradient tolerance on an ill-conditioned posterior; the Hessian is computed anyway), then
+probes along rays that detect a runaway mode. :class:`Search` is what one search returns;
+:mod:`fisherwalk.fit.checks` reads it.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from typing import Any, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import optax
+from jax.scipy.linalg import cho_solve
+
+NEWTON_STEPS = 2  # safeguarded Newton steps after L-BFGS
+
+
+class Search(NamedTuple):
+    """One mode search (batched along a leading axis for restarts)."""
+
+    x: jax.Array  # (d,) end point
+    logdensity: jax.Array  # () log density there
+    gradient: jax.Array  # (d,) gradient of the log density there
+    fisher: jax.Array  # (d, d) -Hessian there (zeros when a user Fisher is used)
+    lbfgs_iterations: jax.Array  # ()
+    newton_steps: jax.Array  # () accepted Newton steps
+    evaluations: jax.Array  # () value-and-gradient evaluations
+    stalled: jax.Array  # () the line search stopped moving
+    start_logdensity: jax.Array  # () log density at the start
+    start_gradient: jax.Array  # (d,) gradient at the start
+    probe_directions: jax.Array  # (k, d) unit directions probed for a runaway mode
+    probe_values: jax.Array  # (k, 3) log density at x + (1, 10, 100) * radius * direction
+    probe_radius: jax.Array  # () max(distance travelled, |x|, 1)
+
+
+
+def make_search(logp: Callable, use_hessian: bool) -> Callable:
+    """``search(x0, max_iterations, tol) -> Search``: L-BFGS in one while loop, then
+    (with ``use_hessian``) the Hessian and the Newton polish, then the runaway probes.
+    Pure, one compilation, vmappable over ``x0``."""
+
+    def objective(x):
+        return -logp(x)
+
+    solver = optax.lbfgs()
+    value_and_grad = optax.value_and_grad_from_state(objective)
+
+    def information(x):
+        h = jax.hessian(logp)(x)
+        return -0.5 * (h + h.T)
+
+    def search(x0, max_iterations, tol):
+        value0, grad0 = jax.value_and_grad(objective)(x0)
+        state = optax.tree.set(solver.init(x0), value=value0, grad=grad0)
+        zero = jnp.zeros((), jnp.int32)
+
+        def keep_going(carry):
+            _, state, it, _, stalled = carry
+            value, grad = optax.tree.get(state, "value"), optax.tree.get(state, "grad")
+            small = jnp.max(jnp.abs(grad)) <= tol * jnp.maximum(1.0, jnp.abs(value))
+            return (it < max_iterations) & ~small & ~stalled & jnp.isfinite(value)
+
+        def iterate(carry):
+            x, state, it, evals, _ = carry
+            stored = optax.tree.get(state, "value")
+            evals = evals + jnp.where(jnp.isfinite(stored), 0, 1)  # recomputed if not stored
+            value, grad = value_and_grad(x, state=state)
+            updates, state = solver.update(grad, state, x, value=value, grad=grad,
+                                           value_fn=objective)
+            evals = evals + optax.tree.get(state, "num_linesearch_steps").astype(jnp.int32)
+            x_new = optax.apply_updates(x, updates)
+            return x_new, state, it + 1, evals, jnp.all(x_new == x)
+
+        x, state, iterations, evals, stalled = jax.lax.while_loop(
+            keep_going, iterate, (x0, state, zero, zero + 1, jnp.asarray(False)))
+        f, g = -optax.tree.get(state, "value"), -optax.tree.get(state, "grad")
+        fisher, steps = jnp.zeros((x.size, x.size), x.dtype), zero
+
+        def polish(carry):
+            x, f, g, _, k, _, evals = carry
+            h = information(x)
+            step = cho_solve((jnp.linalg.cholesky(h), True), g)
+            trying = (k < NEWTON_STEPS) & jnp.all(jnp.isfinite(step))
+            x_new = jnp.where(trying, x + step, x)
+            f_new, g_new = jax.lax.cond(trying, jax.value_and_grad(logp),
+                                        lambda x: (f, g), x_new)
+            slack = 8 * jnp.finfo(x.dtype).eps * jnp.maximum(1.0, jnp.abs(f))
+            better = (f_new > f + slack) | (
+                (f_new >= f - slack) & (jnp.max(jnp.abs(g_new)) < jnp.max(jnp.abs(g))))
+            accept = trying & better & jnp.isfinite(f_new) & jnp.all(jnp.isfinite(g_new))
+            x, f, g = (jnp.where(accept, new, old)
+                       for new, old in ((x_new, x), (f_new, f), (g_new, g)))
+            return x, f, g, h, k + accept, accept, evals + trying
+
+        if use_hessian:
+            x, f, g, fisher, steps, _, evals = jax.lax.while_loop(
+                lambda carry: carry[5], polish, (x, f, g, fisher, steps, jnp.asarray(True),
+                                                 evals))
+        directions, values, radius = probe(logp, x0, x, fisher if use_hessian else None)
+        return Search(x, f, g, fisher, iterations, steps, evals, stalled, -value0, -grad0,
+                       directions, values, radius)
+
+    return search
+
+
+def probe(logp: Callable, x0: jax.Array, x: jax.Array, fisher: jax.Array | None):
+    """Log density along rays from the end point x, to detect a runaway mode: along the
+    direction travelled and (given a Hessian) both ways along its weakest eigenvector, at
+    distances (1, 10, 100) x radius, radius = max(|x - x0|, |x|, 1). Traced."""
+    travel = x - x0
+    length = jnp.linalg.norm(travel)
+    directions = [jnp.where(length > 0, travel / jnp.where(length > 0, length, 1.0), 0.0)]
+    if fisher is not None:
+        weakest = jnp.linalg.eigh(fisher)[1][:, 0]
+        directions += [weakest, -weakest]
+    directions = jnp.stack(directions)
+    radius = jnp.maximum(jnp.maximum(length, jnp.linalg.norm(x)), 1.0)
+    distances = jnp.asarray([1.0, 10.0, 100.0], x.dtype) * radius
+    values = jax.vmap(jax.vmap(logp))(x + distances[None, :, None] * directions[:, None, :])
+    return directions, jnp.where(jnp.isnan(values), -jnp.inf, values), radius
+
+
+def timed(fn: Callable, *args) -> tuple[Any, float, float]:
+    """Compile ahead of time, then run: (result, compile seconds, run seconds)."""
+    t0 = time.perf_counter()
+    compiled = fn.lower(*args).compile()
+    t1 = time.perf_counter()
+    out = jax.block_until_ready(compiled(*args))
+    return out, t1 - t0, time.perf_counter() - t1

@@ -1,0 +1,1 @@
+"""Reading a run: diagnostics, the summary report, plots."""

@@ -1,0 +1,1 @@
+"""Running chains: proposal, the compiled engine, the walker, warm-up, sampling, checkpoints."""
