@@ -61,6 +61,7 @@ DEFAULT_MAX_DEPTH = 64
 _FLOAT_DTYPES = ("float32", "float64")
 _MAX_NDIM = 32
 _TOKENS = re.compile(r'["\\\[\]{}]')
+_TODO = "use a file written by fisherwalk, unedited."
 
 
 def _number(x: float) -> float | str:
@@ -167,12 +168,11 @@ def loads(text: str, *, max_depth: int = DEFAULT_MAX_DEPTH,
     bare NaN/Infinity tokens, duplicate keys and syntax errors raise ``error``."""
     if _too_deep(text, max_depth):
         raise error(explain(f"The JSON nests arrays or objects deeper than {max_depth} levels.",
-                            where, "use a file written by fisherwalk, unedited."))
+                            where, _TODO))
     try:
         return json.loads(text, parse_constant=_refuse_constant, object_pairs_hook=_object)
     except (ValueError, RecursionError) as err:
-        raise error(explain(f"The content is not valid JSON: {err}.", where,
-                            "use a file written by fisherwalk, unedited.")) from err
+        raise error(explain(f"The content is not valid JSON: {err}.", where, _TODO)) from err
 
 
 def read_json(path: str | os.PathLike, *, max_bytes: int, max_depth: int = DEFAULT_MAX_DEPTH,
@@ -188,7 +188,7 @@ def read_json(path: str | os.PathLike, *, max_bytes: int, max_depth: int = DEFAU
         text = data.decode("utf-8")
     except UnicodeDecodeError as err:
         raise error(explain(f"{path} is not UTF-8 text ({err.reason} at byte {err.start}).",
-                            where, "use a file written by fisherwalk, unedited.")) from err
+                            where, _TODO)) from err
     return loads(text, max_depth=max_depth, error=error, where=where)
 
 
@@ -230,8 +230,7 @@ def decode_number(value: Any, name: str, where: str, *, finite: bool = False,
         if math.isfinite(number):
             return number
     kind = "a finite number" if finite else 'a number, "NaN", "Infinity" or "-Infinity"'
-    raise error(explain(f"Field '{name}' is {value!r:.40}, not {kind}.", where,
-                        "use a file written by fisherwalk, unedited."))
+    raise error(explain(f"Field '{name}' is {value!r:.40}, not {kind}.", where, _TODO))
 
 
 def _flatten(value: Any, shape: tuple[int, ...], name: str, where: str,
@@ -241,8 +240,7 @@ def _flatten(value: Any, shape: tuple[int, ...], name: str, where: str,
     for depth, length in enumerate(shape):
         if not all(isinstance(v, list) and len(v) == length for v in level):
             raise error(explain(f"Field '{name}' is not nested lists of shape {shape} "
-                                f"(level {depth}).", where,
-                                "use a file written by fisherwalk, unedited."))
+                                f"(level {depth}).", where, _TODO))
         level = [item for v in level for item in v]
     return level
 
@@ -258,8 +256,7 @@ def decode_array(content: Any, name: str, where: str, *, max_size: int,
     ``shape``. Non-finite values follow the convention and are refused when ``finite``.
     """
     def bad(what: str) -> FisherwalkError:
-        return error(explain(f"Field '{name}' {what}.", where,
-                             "use a file written by fisherwalk, unedited."))
+        return error(explain(f"Field '{name}' {what}.", where, _TODO))
 
     if isinstance(content, dict):
         if set(content) != {"dtype", "shape", "values"}:
