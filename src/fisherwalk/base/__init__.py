@@ -1,1 +1,1 @@
-"""Shared ground: float precision, pytrees, random keys, validators and safe files."""
+"""Shared ground: float precision, pytrees, random keys, validators, safe files and JSON."""
