@@ -69,7 +69,13 @@ against 3 at d = 1, 2. Below d ≈ 20 the model is a rough guide.
 as (1 − ρ)/(1 + ρ), the AR(1) value (Geyer 1992, "Practical Markov chain Monte Carlo",
 Statistical Science 7(4)); the statistic is the slower of x_i and x_i². The ρ's are exact;
 the geometric decay of the autocorrelation is exact only as d → ∞ (where x_i and x_i² − 1
-are eigenfunctions of the kernel) and a guide at small d.
+are eigenfunctions of the kernel) and a guide at small d. Measured against arviz's ESS
+(method "mean", averaged over coordinates) of BlackJAX chains on N(0, I_d) at the theory
+steps, the AR(1) values are 9 % high for MALA and HMC at d = 20 (x_i: 0.216 vs 0.198 and
+0.621 vs 0.570 per step), right for the random walk (0.0162 vs 0.0160), and within 10 %
+for NUTS at d = 25 and 50. The slower statistic matters for NUTS: its x_i moves
+antithetically (ESS ≈ 2.6 per step on N(0, I_d)) while its x_i² has ≈ 0.35 per step; the
+fields ``jump_distance`` and ``square_jump`` give ρ₁ and ρ₂ for other choices.
 """
 
 from __future__ import annotations
