@@ -352,7 +352,12 @@ def test_choice_fields_and_conventions():
     assert prob @ values == pytest.approx(hmc.gradients_per_step, rel=1e-12)
     assert step_acceptance("hmc", hmc.step_size, 7) == pytest.approx(hmc.acceptance,
                                                                      abs=1e-12)
-    assert optimal_gradient_step("nuts", 7).integration_steps is None
+    nuts = optimal_gradient_step("nuts", 7)
+    assert nuts.integration_steps is None
+    assert step_acceptance("nuts", nuts.step_size, 7) == pytest.approx(NUTS_TARGET_ACCEPTANCE,
+                                                                       abs=1e-9)
+    curve = step_acceptance("hmc", np.array([[0.2, 0.5], [0.9, 1.4]]), 7)
+    assert curve.shape == (2, 2) and np.all(np.diff(curve.ravel()) < 0)
 
 
 def test_random_walk_ess_prediction():

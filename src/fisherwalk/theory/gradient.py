@@ -488,9 +488,9 @@ def hmc_steps_law(step_size: float) -> tuple[np.ndarray, np.ndarray]:
 def step_acceptance(sampler: str, step_size: Any, dim: int) -> float | np.ndarray:
     """Predicted acceptance against BlackJAX's ``step_size`` (for the tuning picture).
 
-    ``"mala"``: h = 2·step_size; ``"hmc"`` and ``"nuts"``: ε = step_size with the
-    jittered time of :func:`hmc_steps_law` (for NUTS this is the quantity its start
-    step is tuned on, not NUTS's own acceptance statistic).
+    ``"mala"``: h = 2·step_size, exact; ``"hmc"``: ε = step_size with the jittered
+    number of steps of :func:`hmc_steps_law`, exact; ``"nuts"``: BlackJAX's acceptance
+    statistic in the circle model (module docstring), the quantity dual averaging steers.
     """
     sampler = _check_sampler(sampler, GRADIENT_SAMPLERS, "step_acceptance(sampler=...)")
     d = _check_dim(dim)
@@ -498,8 +498,11 @@ def step_acceptance(sampler: str, step_size: Any, dim: int) -> float | np.ndarra
     rule = _chi_square_rule(d)
     if sampler == "mala":
         return _as_output(_moments(_mala_form(2.0 * steps), d, rule)[0], steps.ndim == 0)
-    out = np.array([_hmc_mixture(float(e), d, rule)[0] for e in steps.ravel()])
-    return _as_output(out.reshape(steps.shape), steps.ndim == 0)
+    if sampler == "hmc":
+        out = [_hmc_mixture(float(e), d, rule)[0] for e in steps.ravel()]
+    else:
+        out = [_circle_tree(float(e), d, rule).acceptance for e in steps.ravel()]
+    return _as_output(np.reshape(out, steps.shape), steps.ndim == 0)
 
 
 def optimal_gradient_step(sampler: str, dim: int) -> GradientChoice:
