@@ -13,7 +13,6 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
-from fisherwalk.scaling import optimal_scale
 from scipy import integrate, optimize, stats
 
 from fisherwalk.errors import InputError
@@ -30,6 +29,7 @@ from fisherwalk.theory.gradient import (
     predicted_ess_per_evaluation,
     step_acceptance,
 )
+from fisherwalk.theory.randomwalk import optimal_scale
 
 
 def _within(value, reference, error, what):
