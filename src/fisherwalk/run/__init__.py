@@ -1,0 +1,1 @@
+"""Running chains: walkers, the compiled loops, warm-up, sampling and checkpoints."""
