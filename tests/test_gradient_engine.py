@@ -107,6 +107,22 @@ def test_chunking_does_not_change_the_draws(engines, sampler):
     assert not np.array_equal(one["position"][0], one["position"][-1])  # the chains moved
 
 
+def test_thinning_keeps_every_thin_th_state(engines):
+    # Thinning runs the same steps and keeps the last of each group: 4 kept draws of 5
+    # steps are steps 4, 9, 14, 19 of a run that keeps all 20 (same key, same start).
+    engine, choice = engines["mala"], _choice("mala")
+    state = check_gradients(engine, _starts(5))
+    ctrl = gradient.control(choice.step_size, adapt=True)
+    every = engine.run(jax.random.key(3), 0, state, ctrl, 20)
+    thinned = engine.run(jax.random.key(3), 0, state, ctrl, 4, thin=5)
+    kept = np.arange(4, 20, 5)
+    assert np.array_equal(np.asarray(thinned.position), np.asarray(every.position)[kept])
+    assert np.array_equal(np.asarray(thinned.logdensity), np.asarray(every.logdensity)[kept])
+    assert np.array_equal(np.asarray(thinned.gradients), np.full((4, CHAINS), 5))
+    assert np.allclose(np.asarray(thinned.acceptance_rate),
+                       np.asarray(every.acceptance_rate).reshape(4, 5, CHAINS).mean(axis=1))
+
+
 @pytest.mark.parametrize("sampler", gradient.SAMPLERS)
 def test_acceptance_after_warm_up_matches_the_target(runs, sampler):
     # The realised acceptance at the warmed-up step size against the target dual averaging

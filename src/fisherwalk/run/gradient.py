@@ -279,12 +279,16 @@ def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: floa
             zeros = jnp.zeros(chains, dtype=chain.logdensity.dtype)
             counts = jnp.zeros(chains, dtype=jnp.int32)
             inner = (chain, ctrl, zeros, counts, counts, counts)
-            steps = first_step + index * thin + jnp.arange(thin)
-            inner, eps = jax.lax.scan(one_step, inner, steps)
+            if thin == 1:  # no inner loop: one step per kept draw
+                inner, eps = one_step(inner, first_step + index)
+            else:
+                steps = first_step + index * thin + jnp.arange(thin)
+                inner, eps = jax.lax.scan(one_step, inner, steps)
+                eps = eps[-1]
             chain, ctrl, acc, div, grads, faults = inner
             theta = mode + jnp.dot(chain.position, whitening.T, precision=_HIGHEST)
             return (chain, ctrl), (theta, chain.logdensity, acc / thin, div, grads, faults,
-                                   eps[-1])
+                                   eps)
 
         (final, ctrl), outs = jax.lax.scan(kept, (state, control), jnp.arange(draws))
         return GradientChunk(final, ctrl, *outs)
