@@ -1,1 +1,1 @@
-"""Running chains: proposal, the compiled engine, the walker, warm-up, sampling, checkpoints."""
+"""Running chains: proposal, the compiled engines, the walker, warm-up, sampling, checkpoints."""

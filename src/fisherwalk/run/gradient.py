@@ -1,0 +1,366 @@
+"""The gradient samplers' compiled loop: BlackJAX's MALA, HMC and NUTS on the whitened posterior.
+
+The chains run BlackJAX's own kernels (``blackjax.mala``, ``blackjax.hmc``,
+``blackjax.nuts``; nothing here re-implements a transition) on the whitened log density
+
+    z -> log pi(mode + W z),    W lower triangular, W Wᵀ = H⁻¹,
+
+so that in the Gaussian picture the target is N(0, I_d) and each sampler's tuning from
+the Gaussian limit applies with unit scales. W is the lower Cholesky factor of H⁻¹, the
+factor BlackJAX itself takes of a dense ``inverse_mass_matrix``: HMC and NUTS run here
+on z with an identity metric follow, for the same key, the same trajectory as BlackJAX's
+kernels on the original coordinates with ``inverse_mass_matrix = H⁻¹`` (up to rounding;
+tested), so the step size means the same in both and the hand-off to a user's own loop
+(:func:`blackjax_parameters`) is exact. MALA has no mass matrix in BlackJAX; whitening is
+how it gets the Fisher metric.
+
+One jitted ``lax.scan`` serves warm-up and sampling: the step size, a flag that switches
+adaptation on, the state of dual averaging (Nesterov 2009, "Primal-dual subgradient
+methods for convex problems", Math. Program. 120; Hoffman & Gelman 2014, "The No-U-Turn
+sampler", JMLR 15, section 3.2; BlackJAX's ``dual_averaging_adaptation``) and HMC's
+integration-time range are data in the carry. Step ``s`` draws its randomness only from
+the run key and ``s``: ``fold_in(rng_key, s)`` is split into a key for HMC's jitter and
+a key folded with each chain's index for the kernels, so chunking and resuming cannot
+change the draws.
+
+Faults. The log density is guarded: where its value is NaN or +inf, or its gradient is
+not finite, both become NaN, which BlackJAX rejects (a +inf would otherwise be accepted
+and trap the chain). A step is flagged when HMC's trajectory end or either end of NUTS's
+trajectory is NaN (a NaN gradient spreads along the leapfrog path; NUTS stops at the
+first NaN), and for MALA, whose kernel does not return its proposal, when the acceptance
+probability is exactly 0 (a superset: it also flags a proposal outside the support or an
+extreme rejection; :func:`fisherwalk.run.gradient_checks.replay_step` tells them
+apart).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import NamedTuple
+
+import blackjax
+import jax
+import jax.numpy as jnp
+import numpy as np
+from blackjax.adaptation.step_size import DualAveragingAdaptationState
+from blackjax.mcmc.hmc import HMCState
+from blackjax.mcmc.mala import MALAState
+from scipy.linalg import cholesky as _host_cholesky
+from scipy.linalg import solve_triangular
+
+from ..errors import InputError, explain
+
+SAMPLERS = ("mala", "hmc", "nuts")
+MAX_INTEGRATION_STEPS = 1024  # HMC: cap on leapfrog steps per transition (NUTS's 2^10)
+# Dual averaging's gamma: Hoffman & Gelman (2014) use 0.05 with a step size from a doubling
+# heuristic; started at the theory value, 0.2 explores less (measured: see the warm-up).
+DUAL_AVERAGING_GAMMA = 0.2
+_HIGHEST = jax.lax.Precision.HIGHEST
+
+
+# --- STAND-IN for fisherwalk.theory.gradient.optimal_gradient_step (another branch) ------
+class StandInChoice(NamedTuple):
+    """STAND-IN: the fields of theory.gradient.GradientChoice that the run code reads."""
+
+    sampler: str
+    dim: int
+    step_size: float  # in BlackJAX's convention for the sampler
+    acceptance: float  # the acceptance to aim for
+    integration_steps: tuple[int, int] | None  # HMC's jitter range of leapfrog steps
+
+
+def optimal_gradient_step(sampler: str, dim: int) -> StandInChoice:
+    """STAND-IN, to be replaced by ``theory.gradient.optimal_gradient_step`` (same call).
+
+    Published limits only: MALA h = 1.65² d^(-1/3) (Roberts & Rosenthal 1998, JRSS B 60(1);
+    l = 1.65 recalled from memory), i.e. BlackJAX step size h / 2 (BlackJAX proposes
+    x + ε ∇ log π + sqrt(2 ε) ξ), acceptance 0.574; HMC ε = d^(-1/4) (Beskos et al. 2013,
+    Bernoulli 19(5A)), acceptance 0.651, leapfrog steps jittered so that the time ε·L
+    covers [π/4, 3π/4] around the π/2 that decorrelates a unit Gaussian; NUTS
+    ε = d^(-1/4), BlackJAX's target 0.8.
+    """
+    if sampler == "mala":
+        return StandInChoice(sampler, dim, 0.5 * 1.65**2 * dim ** (-1.0 / 3.0), 0.574, None)
+    eps = min(dim ** (-0.25), 1.2)
+    if sampler == "hmc":
+        low = max(1, int(np.floor(0.25 * np.pi / eps)))
+        high = max(low, int(np.ceil(0.75 * np.pi / eps)))
+        return StandInChoice(sampler, dim, eps, 0.651, (low, high))
+    return StandInChoice(sampler, dim, eps, 0.8, None)
+# --- end of stand-in ----------------------------------------------------------------------
+
+
+class ChainState(NamedTuple):
+    """All chains' states in whitened coordinates: the carry between calls."""
+
+    position: jax.Array  # (chains, d) z, with theta = mode + W z
+    logdensity: jax.Array  # (chains,) log density (finite at every kept state)
+    logdensity_grad: jax.Array  # (chains, d) gradient with respect to z (= Wᵀ ∇_theta)
+
+
+class StepControl(NamedTuple):
+    """What a call does besides stepping; all traced data, so every call shares a program."""
+
+    step_size: jax.Array  # () step size used when adapt is False
+    adapt: jax.Array  # () bool: run dual averaging and step with its current iterate
+    dual: DualAveragingAdaptationState  # BlackJAX's dual-averaging state (scalar fields)
+    integration_steps: jax.Array  # (2,) int: HMC's jitter range of leapfrog steps; unused otherwise
+
+
+class GradientChunk(NamedTuple):
+    """What one call returns (draw axis first, chains second)."""
+
+    state: ChainState  # after the last step
+    control: StepControl  # after the last step (dual averaging advanced when adapting)
+    position: jax.Array  # (draws, chains, d) kept positions, ORIGINAL coordinates
+    logdensity: jax.Array  # (draws, chains)
+    acceptance_rate: jax.Array  # (draws, chains) mean acceptance probability over thin steps
+    divergent: jax.Array  # (draws, chains) int: divergent transitions (HMC, NUTS)
+    gradients: jax.Array  # (draws, chains) int: gradient evaluations over the thin steps
+    faults: jax.Array  # (draws, chains) int: flagged transitions (module docstring)
+    step_size: jax.Array  # (draws,) step size used at the last step of each kept draw
+
+
+class GradientEngine(NamedTuple):
+    """A sampler's compiled loop and what it needs (build with :func:`make_gradient_engine`)."""
+
+    sampler: str  # "mala", "hmc" or "nuts"
+    chains: int
+    mode: np.ndarray  # (d,)
+    whitening: np.ndarray  # (d, d) W, lower, W Wᵀ = H⁻¹
+    target_acceptance: float  # what dual averaging aims for
+    max_num_doublings: int  # NUTS tree depth cap
+    logdensity_flat: Callable  # the user's log density on the ravelled position
+    run: Callable  # (rng_key, first_step, state, control, draws, thin=1) -> GradientChunk
+    evaluate: Callable  # (m, d) original positions -> (log density (m,), gradient (m, d))
+
+
+def whitening_factor(cholesky) -> np.ndarray:
+    """W = lower Cholesky factor of H⁻¹ from L (L Lᵀ = H), computed on the host.
+
+    H⁻¹ = L⁻ᵀ L⁻¹ is formed by one triangular solve; W is what BlackJAX computes from a
+    dense ``inverse_mass_matrix`` (``metrics.gaussian_euclidean``), which makes the
+    whitened chains match BlackJAX's original-coordinate ones key for key.
+    """
+    chol = np.asarray(cholesky)
+    shape = solve_triangular(chol, np.eye(chol.shape[0], dtype=chol.dtype), lower=True).T
+    inverse = shape @ shape.T
+    return _host_cholesky(0.5 * (inverse + inverse.T), lower=True)
+
+
+def to_whitened(positions, mode, whitening) -> np.ndarray:
+    """(..., d) original positions -> whitened z = W⁻¹ (theta - mode), on the host."""
+    centred = np.asarray(positions) - np.asarray(mode)
+    flat = centred.reshape(-1, centred.shape[-1])
+    z = solve_triangular(np.asarray(whitening), flat.T, lower=True).T
+    return z.reshape(centred.shape)
+
+
+def whitened_logdensity(logdensity_flat: Callable, *, record: Callable | None = None):
+    """``logp(z, mode, whitening)``: the guarded log density in whitened coordinates.
+
+    Where the value is NaN or +inf, or the gradient is not finite, value and gradient
+    are NaN (BlackJAX rejects the move; HMC and NUTS report it as divergent). The
+    gradient is the chain rule Wᵀ ∇ log π, computed with one reverse pass of the user's
+    function (a custom JVP). ``record(theta, value, gradient)``, if given, is called (a
+    debug callback) at every evaluation: :func:`fisherwalk.run.gradient_checks.replay_step`
+    uses it.
+    """
+    value_and_grad = jax.value_and_grad(logdensity_flat)
+
+    def evaluate(z, mode, whitening):
+        theta = mode + jnp.dot(whitening, z, precision=_HIGHEST)
+        value, grad = value_and_grad(theta)
+        if record is not None:
+            jax.debug.callback(record, theta, value, grad)
+        fault = jnp.isnan(value) | (value == jnp.inf) | ~jnp.all(jnp.isfinite(grad))
+        grad_z = jnp.dot(grad, whitening, precision=_HIGHEST)  # Wᵀ ∇, as a row vector
+        return jnp.where(fault, jnp.nan, value), jnp.where(fault, jnp.nan, grad_z)
+
+    @jax.custom_jvp
+    def logp(z, mode, whitening):
+        return evaluate(z, mode, whitening)[0]
+
+    @logp.defjvp
+    def _logp_jvp(primals, tangents):
+        # mode and whitening are constants of a run: only z is ever differentiated
+        value, grad_z = evaluate(*primals)
+        return value, jnp.dot(grad_z, tangents[0], precision=_HIGHEST)
+
+    return logp
+
+
+def step_keys(rng_key: jax.Array, step, chains: int):
+    """The keys of global step ``step``: (HMC's jitter key, one kernel key per chain)."""
+    key_step = jax.random.fold_in(rng_key, step)
+    key_jitter, key_chains = jax.random.split(key_step)
+    return key_jitter, jax.vmap(lambda c: jax.random.fold_in(key_chains, c))(jnp.arange(chains))
+
+
+def integration_steps(key_jitter, steps_range):
+    """HMC's leapfrog count, uniform on the integers ``steps_range[0] .. steps_range[1]``.
+
+    One count for all chains: vmapped chains advance in lockstep, so per-chain counts
+    would make every step cost the longest. The chains stay independent given the counts,
+    which do not depend on the states. The range is in steps, not time, so the
+    acceptance falls smoothly as the step size grows and dual averaging can follow it.
+    """
+    low, high = steps_range[0], steps_range[1]
+    return jax.random.randint(key_jitter, (), low, high + 1, dtype=jnp.int32)
+
+
+def make_transition(sampler: str, max_num_doublings: int) -> Callable:
+    """One chain's step with BlackJAX's kernel.
+
+    Returns ``step(key, state, logp, step_size, n_steps) -> (new state fields,
+    (acceptance rate, divergent, gradient evaluations, fault))``; ``n_steps`` is HMC's
+    leapfrog count (ignored by MALA and NUTS).
+    """
+    if sampler == "mala":
+        kernel = blackjax.mala.build_kernel()
+
+        def step(key, state, logp, step_size, n_steps):
+            new, info = kernel(key, MALAState(*state), logp, step_size)
+            fault = info.acceptance_rate == 0
+            return tuple(new), (info.acceptance_rate, jnp.zeros((), bool), jnp.int32(1), fault)
+
+    elif sampler == "hmc":
+        kernel = blackjax.hmc.build_kernel()
+
+        def step(key, state, logp, step_size, n_steps):
+            metric = jnp.ones_like(state[0])
+            new, info = kernel(key, HMCState(*state), logp, step_size, metric, n_steps)
+            fault = jnp.isnan(info.proposal.logdensity)
+            return tuple(new), (info.acceptance_rate, info.is_divergent, n_steps, fault)
+
+    else:
+        kernel = blackjax.nuts.build_kernel()
+
+        def step(key, state, logp, step_size, n_steps):
+            metric = jnp.ones_like(state[0])
+            new, info = kernel(key, HMCState(*state), logp, step_size, metric,
+                               max_num_doublings)
+            fault = (jnp.isnan(info.trajectory_leftmost_state.logdensity)
+                     | jnp.isnan(info.trajectory_rightmost_state.logdensity))
+            return tuple(new), (info.acceptance_rate, info.is_divergent,
+                                info.num_integration_steps.astype(jnp.int32), fault)
+
+    return step
+
+
+def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: float,
+              max_num_doublings: int, gamma: float) -> Callable:
+    whitened = whitened_logdensity(logdensity_flat)
+    transition = make_transition(sampler, max_num_doublings)
+    _, dual_update, _ = blackjax.adaptation.step_size.dual_averaging_adaptation(target, gamma=gamma)
+
+    def run(rng_key, first_step, state, control, mode, whitening, draws, thin):
+        def logp(z):
+            return whitened(z, mode, whitening)
+
+        vstep = jax.vmap(transition, in_axes=(0, 0, None, None, None))
+
+        def one_step(carry, step):
+            chain, ctrl, acc, div, grads, faults = carry
+            eps = jnp.where(ctrl.adapt, jnp.exp(ctrl.dual.log_step_size), ctrl.step_size)
+            key_jitter, keys = step_keys(rng_key, step, chains)
+            n_steps = integration_steps(key_jitter, ctrl.integration_steps)
+            new, (rate, divergent, n_grad, fault) = vstep(keys, tuple(chain), logp, eps, n_steps)
+            updated = dual_update(ctrl.dual, jnp.mean(rate))
+            dual = jax.tree.map(lambda a, b: jnp.where(ctrl.adapt, a, b).astype(b.dtype),
+                                updated, ctrl.dual)
+            carry = (ChainState(*new), ctrl._replace(dual=dual), acc + rate,
+                     div + divergent.astype(jnp.int32), grads + n_grad,
+                     faults + fault.astype(jnp.int32))
+            return carry, eps
+
+        def kept(carry, index):
+            chain, ctrl = carry
+            zeros = jnp.zeros(chains, dtype=chain.logdensity.dtype)
+            counts = jnp.zeros(chains, dtype=jnp.int32)
+            inner = (chain, ctrl, zeros, counts, counts, counts)
+            if thin == 1:  # no inner loop: one step per kept draw
+                inner, eps = one_step(inner, first_step + index)
+            else:
+                steps = first_step + index * thin + jnp.arange(thin)
+                inner, eps = jax.lax.scan(one_step, inner, steps)
+                eps = eps[-1]
+            chain, ctrl, acc, div, grads, faults = inner
+            theta = mode + jnp.dot(chain.position, whitening.T, precision=_HIGHEST)
+            return (chain, ctrl), (theta, chain.logdensity, acc / thin, div, grads, faults,
+                                   eps)
+
+        (final, ctrl), outs = jax.lax.scan(kept, (state, control), jnp.arange(draws))
+        return GradientChunk(final, ctrl, *outs)
+
+    return jax.jit(run, static_argnames=("draws", "thin"))
+
+
+def make_gradient_engine(sampler: str, logdensity_flat: Callable, mode, cholesky,
+                         chains: int, *, target_acceptance: float | None = None,
+                         max_num_doublings: int = 10,
+                         gamma: float = DUAL_AVERAGING_GAMMA) -> GradientEngine:
+    """Build a gradient sampler's compiled loop (compiles once per (draws, thin) pair).
+
+    Parameters
+    ----------
+    sampler
+        ``"mala"``, ``"hmc"`` or ``"nuts"``.
+    logdensity_flat
+        The log posterior on the ravelled position, ``(d,) -> scalar``; pure JAX.
+    mode, cholesky
+        The Laplace fit: mode (d,) and lower L with L Lᵀ = H.
+    chains
+        Number of chains.
+    target_acceptance
+        What dual averaging aims for; default: the Gaussian-limit value of the sampler
+        (MALA 0.574, Roberts & Rosenthal 1998; HMC 0.651, Beskos et al. 2013) and
+        BlackJAX's NUTS default 0.8.
+    max_num_doublings
+        NUTS's cap on tree doublings (BlackJAX's default, 10).
+
+    Returns
+    -------
+    GradientEngine
+        ``engine.run(rng_key, first_step, state, control, draws, thin=1)`` advances every
+        chain ``draws * thin`` steps in one call, starting at global step ``first_step``
+        (``rng_key`` a typed JAX key), and returns a :class:`GradientChunk`.
+    """
+    if sampler not in SAMPLERS:
+        raise InputError(explain(f"sampler={sampler!r} is not a gradient sampler.",
+                                 "make_gradient_engine(sampler=...)",
+                                 f"use one of {', '.join(map(repr, SAMPLERS))}."))
+    mode = np.asarray(mode)
+    whitening = whitening_factor(cholesky).astype(mode.dtype)
+    if target_acceptance is None:
+        target_acceptance = optimal_gradient_step(sampler, mode.shape[0]).acceptance
+    compiled = _compiled(sampler, logdensity_flat, chains, float(target_acceptance),
+                         int(max_num_doublings), float(gamma))
+    mode_device, whitening_device = jax.device_put(mode), jax.device_put(whitening)
+
+    def run(rng_key, first_step, state, control, draws: int, thin: int = 1) -> GradientChunk:
+        return compiled(rng_key, np.int64(first_step), state, control, mode_device,
+                        whitening_device, draws=int(draws), thin=int(thin))
+
+    evaluate = jax.jit(jax.vmap(jax.value_and_grad(logdensity_flat)))
+    return GradientEngine(sampler, int(chains), mode, whitening, float(target_acceptance),
+                          int(max_num_doublings), logdensity_flat, run, evaluate)
+
+
+def control(step_size: float, *, adapt: bool = False, integration_steps=(1, 1),
+            dual: DualAveragingAdaptationState | None = None, dtype=np.float64) -> StepControl:
+    """A :class:`StepControl` built on the host with fixed dtypes (one compilation).
+
+    With no ``dual``, dual averaging starts as BlackJAX's
+    ``dual_averaging_adaptation(target).init(step_size)`` does, except that it shrinks
+    toward log ``step_size`` itself, not log(10 ``step_size``): Hoffman & Gelman (2014,
+    section 3.2.1) shrink toward ten times a step found by a doubling heuristic, which
+    errs small; a step from the Gaussian limit is the best guess already.
+    """
+    if dual is None:
+        dual = DualAveragingAdaptationState(np.log(step_size), 0.0, 1.0, 0.0,
+                                            np.log(step_size))
+    dual = DualAveragingAdaptationState(*(np.asarray(v, dtype=dtype) for v in dual))
+    return StepControl(np.asarray(step_size, dtype=dtype), np.asarray(bool(adapt)), dual,
+                       np.clip(np.asarray(integration_steps, dtype=np.int32), 1,
+                               MAX_INTEGRATION_STEPS))

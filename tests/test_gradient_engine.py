@@ -1,0 +1,286 @@
+"""The gradient samplers' compiled loop, warm-up, refused input and BlackJAX hand-off.
+
+Targets are exact Gaussians, whose mean and Fisher information are known in closed form
+(mode = mean, H = covariance⁻¹), so the checks compare with exact values; the
+tolerances come from the Monte Carlo error of the same draws (ESS-based), 4 standard
+errors unless said otherwise. Fixed keys throughout.
+"""
+
+import blackjax
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+
+from fisherwalk.errors import ModelError
+from fisherwalk.results.diagnostics import mcse_mean
+from fisherwalk.run import gradient, handoff, stepsize
+from fisherwalk.run.gradient_checks import check_gradients
+
+CHAINS = 4
+DIM = 5
+# HMC aims at 0.8 here, not the stand-in's large-d limit 0.651: at d = 5 HMC's acceptance
+# falls off a cliff just there (measured on N(0, I_5): 0.70 at step 1.34, 0.61 at 1.48,
+# 0.39 at 1.64), so no 200-step warm-up can pin it; at 0.8 the curve is smooth.
+TARGETS = {"mala": None, "hmc": 0.8, "nuts": None}
+
+
+def _gaussian():
+    """An invented correlated Gaussian N(mean, cov) in d = 5 (condition number ~ 20)."""
+    rng = np.random.default_rng(20240611)
+    a = rng.standard_normal((DIM, DIM))
+    cov = a @ a.T / DIM + 0.3 * np.eye(DIM)
+    mean = np.linspace(-2.0, 3.0, DIM)
+    precision = np.linalg.inv(cov)
+    p, m = jnp.asarray(precision), jnp.asarray(mean)
+
+    def logdensity(x):
+        r = x - m
+        return -0.5 * r @ (p @ r)
+
+    return mean, cov, np.linalg.cholesky(precision), logdensity
+
+
+MEAN, COV, CHOLESKY, LOGDENSITY = _gaussian()
+
+
+def _starts(seed):
+    z = np.random.default_rng(seed).standard_normal((CHAINS, DIM))
+    return MEAN + z @ np.linalg.cholesky(COV).T
+
+
+def _choice(sampler):
+    return gradient.optimal_gradient_step(sampler, DIM)
+
+
+@pytest.fixture(scope="module")
+def engines():
+    return {s: gradient.make_gradient_engine(s, LOGDENSITY, MEAN, CHOLESKY, CHAINS,
+                                             target_acceptance=TARGETS[s])
+            for s in gradient.SAMPLERS}
+
+
+@pytest.fixture(scope="module")
+def runs(engines):
+    """Warm-up (200 steps) then 1000 sampling steps per chain, for every sampler."""
+    out = {}
+    for k, sampler in enumerate(gradient.SAMPLERS):
+        engine, choice = engines[sampler], _choice(sampler)
+        state = check_gradients(engine, _starts(k))
+        warm = stepsize.warm_up(engine, jax.random.key(10 + k), state, choice.step_size,
+                                integration_steps=choice.integration_steps or (1, 1))
+        state, ctrl, chunks = warm.state, warm.control, []
+        for c in range(10):
+            chunk = engine.run(jax.random.key(20 + k), 100 * c, state, ctrl, 100)
+            state = chunk.state
+            chunks.append(jax.device_get(chunk))
+        cat = {f: np.swapaxes(np.concatenate([getattr(c, f) for c in chunks]), 0, 1)
+               for f in ("position", "acceptance_rate", "divergent", "faults", "gradients")}
+        out[sampler] = warm, cat, state
+    return out
+
+
+def _chunk_fields(chunks):
+    fields = ("position", "logdensity", "acceptance_rate", "divergent", "gradients", "faults",
+              "step_size")
+    return {f: np.concatenate([np.asarray(getattr(c, f)) for c in chunks]) for f in fields}
+
+
+@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+def test_chunking_does_not_change_the_draws(engines, sampler):
+    # Step s draws only from fold_in(key, s): one call of 20 kept draws must equal calls
+    # of 7 and 13, bit for bit, adaptation included (its state is carried as data).
+    engine, choice = engines[sampler], _choice(sampler)
+    state = check_gradients(engine, _starts(5))
+    ctrl = gradient.control(choice.step_size, adapt=True,
+                            integration_steps=choice.integration_steps or (1, 1))
+    key = jax.random.key(3)
+    whole = engine.run(key, 0, state, ctrl, 20)
+    first = engine.run(key, 0, state, ctrl, 7)
+    second = engine.run(key, 7, first.state, first.control, 13)
+    one, two = _chunk_fields([whole]), _chunk_fields([first, second])
+    for field in one:
+        assert np.array_equal(one[field], two[field]), field
+    for a, b in zip(jax.tree.leaves((whole.state, whole.control)),
+                    jax.tree.leaves((second.state, second.control)), strict=True):
+        assert np.array_equal(np.asarray(a), np.asarray(b))
+    assert not np.array_equal(one["position"][0], one["position"][-1])  # the chains moved
+
+
+def test_thinning_keeps_every_thin_th_state(engines):
+    # Thinning runs the same steps and keeps the last of each group: 4 kept draws of 5
+    # steps are steps 4, 9, 14, 19 of a run that keeps all 20 (same key, same start).
+    engine, choice = engines["mala"], _choice("mala")
+    state = check_gradients(engine, _starts(5))
+    ctrl = gradient.control(choice.step_size, adapt=True)
+    every = engine.run(jax.random.key(3), 0, state, ctrl, 20)
+    thinned = engine.run(jax.random.key(3), 0, state, ctrl, 4, thin=5)
+    kept = np.arange(4, 20, 5)
+    assert np.array_equal(np.asarray(thinned.position), np.asarray(every.position)[kept])
+    assert np.array_equal(np.asarray(thinned.logdensity), np.asarray(every.logdensity)[kept])
+    assert np.array_equal(np.asarray(thinned.gradients), np.full((4, CHAINS), 5))
+    assert np.allclose(np.asarray(thinned.acceptance_rate),
+                       np.asarray(every.acceptance_rate).reshape(4, 5, CHAINS).mean(axis=1))
+
+
+@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+def test_acceptance_after_warm_up_matches_the_target(runs, sampler):
+    # The realised acceptance at the warmed-up step size against the target dual averaging
+    # aimed for. Tolerance: 4 x the combined Monte Carlo error of the sampling phase's mean
+    # acceptance probability and of the warm-up's (second half), each sd / sqrt(ESS) of the
+    # per-step probabilities: the step size cannot pin the acceptance more precisely than
+    # the 200 warm-up steps measured it.
+    warm, cat, _ = runs[sampler]
+    rates = cat["acceptance_rate"]
+    tolerance = 4.0 * np.hypot(stepsize.pooled_mcse(rates), warm.acceptance_mcse)
+    assert abs(rates.mean() - warm.target_acceptance) < tolerance, (
+        rates.mean(), warm.target_acceptance, tolerance)
+
+
+@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+def test_dual_averaging_recovers_from_a_poor_start(engines, sampler):
+    # Started at a third of the theory step (acceptance near 1), the warm-up's pooled
+    # acceptance over its second half must reach the target within 4 of its Monte Carlo
+    # standard errors (ESS of the per-step probabilities).
+    engine, choice = engines[sampler], _choice(sampler)
+    state = check_gradients(engine, _starts(8))
+    warm = stepsize.warm_up(engine, jax.random.key(12), state, choice.step_size / 3.0,
+                            integration_steps=choice.integration_steps or (1, 1))
+    assert warm.acceptance_rate[:, :10].mean() > warm.target_acceptance + 0.1  # off at first
+    assert abs(warm.acceptance - warm.target_acceptance) < 4.0 * warm.acceptance_mcse
+    assert warm.step_size > 2.0 * warm.start_step_size
+
+
+@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+def test_posterior_means_within_four_mcse(runs, sampler):
+    # Exact mean of the Gaussian; MCSE of each coordinate's mean from the draws' ESS.
+    _, cat, _ = runs[sampler]
+    draws = cat["position"]  # (chains, draws, d), original coordinates
+    error = draws.reshape(-1, DIM).mean(axis=0) - MEAN
+    mcse = np.asarray(mcse_mean(draws))
+    assert np.all(np.abs(error) < 4.0 * mcse), (error, mcse)
+    assert cat["faults"].sum() == 0 and cat["divergent"].sum() == 0
+    if sampler == "mala":
+        assert np.all(cat["gradients"] == 1)
+    else:
+        assert cat["gradients"].min() >= 1
+
+
+@pytest.mark.parametrize("sampler", ["hmc", "nuts"])
+def test_divergences_are_counted(engines, sampler):
+    # A step forced past the leapfrog's stability limit. On the whitened target N(0, I)
+    # the leapfrog map of one coordinate is [[1 - e²/2, e], [-e(1 - e²/4), 1 - e²/2]]
+    # (theory.md, section 5; Neal 2011, "MCMC using Hamiltonian dynamics", Handbook of
+    # MCMC, ch. 5): for e = 3 its eigenvalues are -3.5 ± sqrt(11.25), so HMC's 4 steps
+    # multiply the energy by about 6.85^8 ~ 5e6, far past BlackJAX's divergence threshold
+    # (1000): (nearly) every HMC transition diverges. NUTS mostly stops at a U-turn first
+    # (the momentum flips sign each step) and diverges sometimes. Either way the counts
+    # must be BlackJAX's own, transition by transition.
+    engine = engines[sampler]
+    state = check_gradients(engine, _starts(6))
+    out = engine.run(jax.random.key(4), 0, state,
+                     gradient.control(3.0, integration_steps=(4, 4)), 20)
+    _, infos = _blackjax_path(sampler, 3.0, (4, 4), jax.random.key(4), _starts(6), 20)
+    divergent = np.asarray(out.divergent)
+    assert np.array_equal(divergent, infos.is_divergent.astype(int))
+    assert divergent.sum() > 0
+    if sampler == "hmc":
+        assert divergent.mean() > 0.9
+    assert np.asarray(out.faults).sum() == 0  # a divergence is not a model fault
+
+
+def test_nonfinite_gradient_at_the_mode_is_refused():
+    def logdensity(x):  # |b| = sqrt(b²): finite value, gradient 0/0 = NaN at b = 0
+        return -0.5 * jnp.sum(x**2) + jnp.sqrt(x[1] ** 2)
+
+    engine = gradient.make_gradient_engine("nuts", logdensity, np.zeros(3), np.eye(3), CHAINS)
+    with pytest.raises(ModelError) as info:
+        check_gradients(engine, np.full((CHAINS, 3), 0.5), names=("a", "b", "c"))
+    message = str(info.value)
+    assert "b (nan)" in message and "a (" not in message and "c (" not in message
+    assert "the mode" in message and 'sampler="rwm"' in message
+
+
+@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+def test_nonfinite_gradient_along_the_warm_up_is_refused(sampler):
+    def logdensity(x):  # finite value everywhere; gradient NaN in c wherever c >= 1
+        return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[2], 0.0))
+
+    engine = gradient.make_gradient_engine(sampler, logdensity, np.zeros(3), np.eye(3),
+                                           CHAINS)
+    starts = np.random.default_rng(7).standard_normal((CHAINS, 3))
+    starts[:, 2] = -np.abs(starts[:, 2])  # finite gradients at the starts
+    state = check_gradients(engine, starts, names=("a", "b", "c"))
+    choice = gradient.optimal_gradient_step(sampler, 3)
+    with pytest.raises(ModelError) as info:  # N(0, 1) puts 16% of c's mass above 1
+        stepsize.warm_up(engine, jax.random.key(8), state, choice.step_size, steps=100,
+                         integration_steps=choice.integration_steps or (1, 1),
+                         names=("a", "b", "c"))
+    message = str(info.value)
+    assert "c (nan)" in message and "warm-up step" in message and 'sampler="rwm"' in message
+
+
+def _plain_loop(algorithm, positions, keys):
+    """A user's loop: vmapped BlackJAX step in a lax.scan."""
+    states = jax.vmap(algorithm.init)(positions)
+
+    def body(states, key):
+        states, _ = jax.vmap(algorithm.step)(jax.random.split(key, CHAINS), states)
+        return states, states.position
+
+    return np.swapaxes(np.asarray(jax.lax.scan(body, states, keys)[1]), 0, 1)
+
+
+@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+def test_blackjax_parameters_run_in_a_plain_loop(runs, sampler):
+    # The returned dict in BlackJAX's own call, from the warmed-up chains; the exact mean
+    # within 4 MCSE. MALA runs on the whitened density (BlackJAX's MALA has no metric).
+    warm, _, state = runs[sampler]
+    choice = _choice(sampler)
+    parameters = handoff.blackjax_parameters(
+        sampler, warm.step_size, CHOLESKY,
+        integration_steps=choice.integration_steps or (1, 1))
+    keys = jax.random.split(jax.random.key(30), 1000)
+    if sampler == "mala":
+        logdensity_z, to_original = handoff.whitened_problem(LOGDENSITY, MEAN, CHOLESKY)
+        draws = np.asarray(to_original(_plain_loop(
+            blackjax.mala(logdensity_z, **parameters), jnp.asarray(state.position), keys)))
+    else:
+        algorithm = getattr(blackjax, sampler)(LOGDENSITY, **parameters)
+        start = MEAN + np.asarray(state.position) @ gradient.whitening_factor(CHOLESKY).T
+        draws = _plain_loop(algorithm, jnp.asarray(start), keys)
+    error = draws.reshape(-1, DIM).mean(axis=0) - MEAN
+    assert np.all(np.abs(error) < 4.0 * np.asarray(mcse_mean(draws))), error
+
+
+def _blackjax_path(sampler, step_size, steps, key, starts, draws):
+    """BlackJAX's own kernel on the ORIGINAL coordinates, inverse_mass_matrix = H⁻¹, fed
+    the engine's per-step keys: positions (draws, chains, d) and the infos."""
+    parameters = handoff.blackjax_parameters(sampler, step_size, CHOLESKY,
+                                             integration_steps=steps)
+    algorithm = getattr(blackjax, sampler)(LOGDENSITY, **parameters)
+    states = jax.vmap(algorithm.init)(jnp.asarray(starts))
+    step = jax.jit(jax.vmap(algorithm.step))
+    path, infos = [], []
+    for s in range(draws):
+        _, keys = gradient.step_keys(key, s, CHAINS)
+        states, info = step(keys, states)
+        path.append(np.asarray(states.position))
+        infos.append(jax.device_get(info))
+    return np.stack(path), jax.tree.map(lambda *a: np.stack(a), *infos)
+
+
+@pytest.mark.parametrize("sampler", ["hmc", "nuts"])
+def test_whitened_run_follows_blackjax_on_original_coordinates(engines, runs, sampler):
+    # Whitened chains with an identity metric and BlackJAX's kernel on the original
+    # coordinates with inverse_mass_matrix = H⁻¹, fed the same per-step keys, take the same
+    # path up to rounding (theta = mode + W z, momentum p_theta = W⁻ᵀ p_z; W = chol(H⁻¹) is
+    # the factor BlackJAX takes itself). So the step size means the same in both.
+    engine, warm = engines[sampler], runs[sampler][0]
+    state = check_gradients(engine, _starts(9))
+    ours = engine.run(jax.random.key(11), 0, state,
+                      gradient.control(warm.step_size, integration_steps=(3, 3)), 20)
+    path, _ = _blackjax_path(sampler, warm.step_size, (3, 3), jax.random.key(11),
+                             _starts(9), 20)
+    assert np.allclose(np.asarray(ours.position), path, rtol=0.0, atol=1e-9)
+    assert not np.allclose(path[0], path[-1])
