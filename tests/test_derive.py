@@ -122,6 +122,14 @@ def test_bad_functions_are_refused_before_sampling(lognormal_run):
         fisherwalk.walk(walker, key, 10, progress=False, derived=lambda p: {"log_k": p["log_k"]})
 
 
+def test_derived_leaf_named_like_a_parameter_leaf_is_refused():
+    walker = fisherwalk.start(lambda p: -0.5 * jnp.sum(p["beta"] ** 2),
+                              {"beta": jnp.zeros(2)}, jax.random.key(8), chains=2)
+    with pytest.raises(InputError, match="beta"):  # summary rows beta[0] vs beta, same leaf
+        fisherwalk.walk(walker, jax.random.key(9), 20, progress=False,
+                        derived=lambda p: {"beta": jnp.sum(p["beta"])})
+
+
 def test_non_finite_derived_value_names_chain_and_draw(lognormal_run):
     with pytest.raises(ModelError, match=r"chain \d+, draw \d+"):
         derive.attach(lognormal_run, derived=lambda p: {"bad": jnp.log(p["log_k"])})

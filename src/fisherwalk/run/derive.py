@@ -25,6 +25,7 @@ import jax
 import numpy as np
 
 from ..errors import InputError, ModelError, explain
+from ..results.export import leaf_variables
 from ..results.trace import derived_names
 
 __all__ = ["check_functions", "evaluate_draws", "evaluate_pointwise", "evaluate_derived",
@@ -136,9 +137,12 @@ def evaluate_pointwise(fn: Callable, flat: np.ndarray, unravel: Callable) -> np.
 def evaluate_derived(fn: Callable, flat: np.ndarray, unravel: Callable,
                      names: tuple[str, ...]) -> Any:
     """The derived quantities (a pytree, leaves with leading (chains, draws) axes); their
-    names must differ from the parameters' ``names``."""
+    names must differ from the parameters' ``names``, and their leaves' names from the
+    position's leaves (ArviZ keeps both as variables of one posterior)."""
     values = evaluate_draws(fn, flat, unravel, where="walk(derived=...)")
-    clash = sorted(set(derived_names(values)) & set(names))
+    leaves = set(leaf_variables(unravel(np.asarray(flat)[0, 0]), bare="x"))
+    clash = sorted((set(derived_names(values)) & set(names))
+                   | (set(leaf_variables(values, bare="derived")) & leaves))
     if clash:
         raise InputError(explain(
             f"Derived quantities {', '.join(clash[:6])} have the names of parameters.",
