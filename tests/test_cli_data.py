@@ -174,3 +174,16 @@ def test_compile_cache_is_on_by_default_and_recorded(tmp_path):
     folder = tmp_path / "cache" / "fisherwalk" / "jax"
     assert cache["used"] is True and cache["folder"] == str(folder)
     assert cache["entries_before"] == 0 and cache["entries_after"] == len(os.listdir(folder)) > 0
+
+
+@pytest.mark.parametrize("command", ["run", "resume"])
+def test_help_describes_data_and_resume(command, capsys):
+    with pytest.raises(SystemExit) as stop:
+        cli.main([command, "--help"])
+    assert stop.value.code == 0
+    out = capsys.readouterr().out
+    assert "--no-compile-cache" in out and "run only model files you trust" in out
+    if command == "run":
+        assert "make(data)" in out and "--pointwise" in out and "--checkpoint" in out
+    else:
+        assert "fisherwalk resume results --model model.py" in out
