@@ -1,5 +1,21 @@
-"""Test configuration: the suite runs in float64, as the README tells users to."""
+"""Test configuration: the suite runs in float64, as the README tells users to; the
+command line's persistent compilation cache goes to a temporary folder, not the user's."""
+
+import os
 
 import jax
+import pytest
 
 jax.config.update("jax_enable_x64", True)
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _compile_cache_in_a_temporary_folder(tmp_path_factory):
+    # `fisherwalk demo/run` turn on JAX's cache in $XDG_CACHE_HOME/fisherwalk/jax
+    before = os.environ.get("XDG_CACHE_HOME")
+    os.environ["XDG_CACHE_HOME"] = str(tmp_path_factory.mktemp("xdg-cache"))
+    yield
+    if before is None:
+        os.environ.pop("XDG_CACHE_HOME", None)
+    else:
+        os.environ["XDG_CACHE_HOME"] = before

@@ -5,7 +5,9 @@ Subcommands
 ``demo``   fit, tune, warm up, sample and diagnose an invented demo scenario
            (:mod:`fisherwalk.cli.scenarios`), and write plots, data, draws and a record.
 ``scale``  the optimal scale l and target acceptance for given dimensions.
-``run``    the same workflow as ``demo`` on a model file of the user's.
+``run``    the same workflow as ``demo`` on a model file of the user's (and a CSV data
+           file with ``--data``, :mod:`fisherwalk.cli.datafile`).
+``resume`` finish a ``run --checkpoint`` that was interrupted (:mod:`fisherwalk.cli.resumable`).
 
 The command is an application, so it switches JAX to float64 for itself (the library
 never changes JAX's configuration). :func:`workflow` runs the steps (start, refine,
@@ -27,9 +29,10 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import FisherwalkError, InputError, ModelFileError
+from ..errors import FisherwalkError, InputError, ModelFileError, explain
+from . import compilecache, resumable
 from .modelfile import load_model
-from .runrecord import RunResult, build_record, sha256_file, write_outputs
+from .runrecord import RunResult, build_record, run_keys, sha256_file, write_outputs
 
 __all__ = ["main", "workflow", "RunResult"]
 
@@ -66,23 +69,25 @@ class _Say:
 
 
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int,
-             warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None) -> RunResult:
-    """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary."""
-    import jax
+             warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
+             thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
+             checkpoint=None) -> RunResult:
+    """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
 
+    ``thin``, ``pointwise``, ``derived`` and ``checkpoint`` go to :func:`fisherwalk.walk`,
+    ``restarts`` (mode searches from dispersed points) to :func:`fisherwalk.start`.
+    """
     import fisherwalk
 
     say = say or _Say(quiet=True)
     progress = None if not say.quiet else False
-    key = jax.random.key(seed)
-    k_start, k_warm, k_walk = jax.random.split(key, 3)
-    keys = {name: np.asarray(jax.random.key_data(k)).tolist()
-            for name, k in (("start", k_start), ("warmup", k_warm), ("sampling", k_walk))}
+    (k_start, k_warm, k_walk), keys = run_keys(seed)
     seconds: dict[str, float] = {}
 
     say.busy("Laplace fit: mode search and Fisher information (includes compilation)")
     t = time.perf_counter()
-    walker = fisherwalk.start(logdensity, position, k_start, chains, fisher=fisher)
+    walker = fisherwalk.start(logdensity, position, k_start, chains, fisher=fisher,
+                              restarts=restarts)
     seconds["start"] = time.perf_counter() - t
     _say_fit(say, walker, seconds["start"])
 
@@ -92,7 +97,8 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int,
     _say_warmup(say, walker, seconds["warmup"], chains)
 
     t = time.perf_counter()
-    trace = fisherwalk.walk(walker, k_walk, draws, progress=progress)
+    trace = fisherwalk.walk(walker, k_walk, draws, thin, progress=progress,
+                            pointwise=pointwise, derived=derived, checkpoint=checkpoint)
     seconds["sampling"] = time.perf_counter() - t
 
     t = time.perf_counter()
@@ -193,10 +199,11 @@ def _options(args) -> dict:
     eps = float(np.finfo(np.float64).eps)
     return {
         "seed": args.seed, "chains": args.chains, "draws": args.draws,
-        "warmup_steps": args.warmup, "thin": 1, "shape": "fisher", "criterion": "slowest",
+        "warmup_steps": args.warmup, "thin": args.thin, "shape": "fisher",
+        "criterion": "slowest",
         "laplace": {"max_iterations": defaults.get("max_iterations"),
                     "gradient_tolerance": defaults.get("gradient_tolerance") or math.sqrt(eps),
-                    "restarts": defaults.get("restarts", 0)},
+                    "restarts": args.restarts},
     }
 
 
@@ -223,7 +230,8 @@ def _demo(args, argv) -> int:
     say(f"  {args.chains} chains x {args.draws} draws after {args.warmup} warm-up steps, "
         f"seed {args.seed}\n")
     result = workflow(scene.logdensity, scene.initial_position, seed=args.seed,
-                      chains=args.chains, draws=args.draws, warmup=args.warmup, say=say)
+                      chains=args.chains, draws=args.draws, warmup=args.warmup, say=say,
+                      thin=args.thin, restarts=args.restarts)
     print()
     print(str(result.summary))
     truth = _truth_table(scene, result.summary)
@@ -233,7 +241,7 @@ def _demo(args, argv) -> int:
                           "data_seed": scene.seed, "prior_sd": scene.prior_sd,
                           "labels": list(scene.names), "true_beta": scene.true_beta,
                           "data_file": data_path.name, "data_sha256": sha256_file(data_path)},
-             "truth": truth["rows"]}
+             "truth": truth["rows"], "compile_cache": _cache_facts(args)}
     t = time.perf_counter()
     say.busy("writing the figures and the record")
     record = build_record("demo", argv, _options(args), result, extra)
@@ -294,22 +302,32 @@ def _scale(args) -> int:
 def _run(args, argv) -> int:
     say = _Say(args.quiet)
     began = time.perf_counter()
-    model = load_model(args.model_file)
+    model = load_model(args.model_file, data=args.data)  # before anything is written
+    if args.pointwise and model.pointwise is None:
+        raise ModelFileError(explain(
+            "--pointwise was given but the model defines no pointwise(position).",
+            f"model file {model.path}", "define pointwise(position) -> one log likelihood "
+            "per observation (the terms of the log density's sum), or leave out --pointwise."))
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    say(f"fisherwalk run: {model.path} ({model.dim} parameters)")
+    checkpoint = None
+    if args.checkpoint:
+        checkpoint = out / resumable.CHECKPOINT_FOLDER
+        resumable.write_plan(out, argv=argv, options=_options(args), keys=run_keys(args.seed)[1],
+                             model=model, pointwise=args.pointwise)
+    data = f", {model.data.rows:,} rows of {model.data.path.name}" if model.data else ""
+    say(f"fisherwalk run: {model.path} ({model.dim} parameters{data})")
     say("=" * 72)
     say(f"  {args.chains} chains x {args.draws} draws after {args.warmup} warm-up steps, "
         f"seed {args.seed}\n")
     result = workflow(model.logdensity, model.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup,
-                      fisher=model.fisher, say=say)
+                      fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
+                      pointwise=model.pointwise if args.pointwise else None,
+                      derived=model.derived, checkpoint=checkpoint)
     print()
     print(str(result.summary))
-    extra = {"model_file": {"path": str(model.path.resolve()), "sha256": sha256_file(model.path),
-                            "labels": list(model.labels) if model.labels else None,
-                            "fisher": "from the model file" if model.fisher is not None
-                            else "autodiff Hessian"}}
+    extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
     say.busy("writing the figures and the record")
     record = build_record("run", argv, _options(args), result, extra)
     files = write_outputs(out, result, record, model.labels)
@@ -317,6 +335,55 @@ def _run(args, argv) -> int:
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
     return 0
+
+
+def _resume(args, argv) -> int:
+    import fisherwalk
+
+    say = _Say(args.quiet)
+    began = time.perf_counter()
+    folder = Path(args.folder)
+    plan = resumable.read_plan(folder)
+    data = args.data or (plan.get("data_file") or {}).get("path")
+    model = load_model(args.model, data=data)
+    pointwise = None
+    if plan.get("pointwise"):
+        if model.pointwise is None:
+            raise ModelFileError(explain(
+                "The run was started with --pointwise but the model defines no "
+                "pointwise(position).", f"model file {model.path}",
+                "give the model file of the original run."))
+        pointwise = model.pointwise
+    say(f"fisherwalk resume: {folder} with {model.path}")
+    t = time.perf_counter()
+    trace = fisherwalk.resume(folder / resumable.CHECKPOINT_FOLDER, model.logdensity,
+                              position=model.initial_position,
+                              progress=None if not args.quiet else False,
+                              pointwise=pointwise, derived=model.derived)
+    seconds = {"sampling": time.perf_counter() - t}
+    t = time.perf_counter()
+    summary = trace.summary()
+    seconds["diagnostics"] = time.perf_counter() - t
+    print()
+    print(str(summary))
+    result = RunResult(trace, summary, seconds, plan["keys"])
+    extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args),
+             "resumed": {"original_argv": plan.get("argv"),
+                         "note": "start and warm-up ran in the original command; seconds "
+                                 "cover the resumed sampling only"}}
+    record = build_record("resume", argv, plan["options"], result, extra)
+    files = write_outputs(folder, result, record, model.labels)
+    say()
+    _say_files(say, folder, files)
+    say(f"wall time {time.perf_counter() - began:.1f} s")
+    return 0
+
+
+def _cache_facts(args) -> dict:
+    facts = dict(getattr(args, "compile_cache", None) or {"used": False})
+    if facts.get("used"):
+        facts["entries_after"] = compilecache.entries(Path(facts["folder"]))
+    return facts
 
 
 # ---------------------------------------------------------------------------------- parser
@@ -335,6 +402,18 @@ def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
                      help=f"seed of the JAX random key (default {DEFAULT_SEED})")
     sub.add_argument("--quiet", action="store_true",
                      help="no progress bars and no step-by-step account; print the tables")
+    sub.add_argument("--thin", type=_positive, default=1, metavar="N",
+                     help="steps per kept draw (default 1: keep every step)")
+    sub.add_argument("--restarts", type=_nonnegative, default=0, metavar="N",
+                     help="extra mode searches from dispersed points before the Laplace fit "
+                          "(default 0)")
+    _cache_option(sub)
+
+
+def _cache_option(sub: argparse.ArgumentParser) -> None:
+    sub.add_argument("--no-compile-cache", dest="compile_cache_on", action="store_false",
+                     help="do not use JAX's persistent compilation cache (default: on, in "
+                          f"{compilecache.cache_folder()})")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -381,10 +460,21 @@ def build_parser() -> argparse.ArgumentParser:
                     "  initial_position                 a pytree of floats to start from\n"
                     "and optionally\n"
                     "  fisher(mode) -> (d, d)           your Fisher information (else autodiff)\n"
-                    "  names                            one label per scalar parameter\n\n"
+                    "  names                            one label per scalar parameter\n"
+                    "  pointwise(position) -> (n_obs,)  log likelihood per observation "
+                    "(--pointwise)\n"
+                    "  derived(position) -> pytree      quantities summarised with the "
+                    "parameters\n"
+                    "With --data table.csv it defines instead\n"
+                    "  make(data) -> (logdensity, initial_position), or a dict of the names "
+                    "above,\n"
+                    "  data being {column name: float array}, and optionally\n"
+                    "  columns = (\"count\", \"hours\")   the columns it needs (checked "
+                    "first)\n\n"
                     "Warning: " + _TRUST,
         epilog="examples:\n  fisherwalk run model.py\n"
-               "  fisherwalk run model.py --out results --chains 6 --draws 4000 --seed 3\n\n"
+               "  fisherwalk run model.py --out results --chains 6 --draws 4000 --seed 3\n"
+               "  fisherwalk run counts.py --data counts.csv --pointwise --checkpoint\n\n"
                "A minimal model.py:\n"
                "  import jax.numpy as jnp\n"
                "  y = jnp.array([2.1, 1.7, 2.6, 2.2])\n"
@@ -393,6 +483,31 @@ def build_parser() -> argparse.ArgumentParser:
                "  initial_position = {'mu': jnp.asarray(0.0)}")
     run.add_argument("model_file", metavar="MODEL_FILE", help="path of the model file (.py)")
     _common(run, "fisherwalk-run")
+    run.add_argument("--data", metavar="CSV", default=None,
+                     help="a CSV table (header row of column names) handed to the model "
+                          "file's make(data) as {column: float array}")
+    run.add_argument("--pointwise", action="store_true",
+                     help="store the model file's pointwise(position) log likelihood at every "
+                          "kept draw (draws.npz 'pointwise'; for LOO with ArviZ)")
+    run.add_argument("--checkpoint", action="store_true",
+                     help="keep the sampling's progress in OUT/checkpoint/ so that "
+                          "'fisherwalk resume OUT --model MODEL_FILE' can finish it")
+
+    again = subs.add_parser(
+        "resume", formatter_class=fmt, help="finish an interrupted 'run --checkpoint'",
+        description="Finish the sampling of a 'fisherwalk run ... --checkpoint' that was "
+                    "interrupted,\nwith the same draws an uninterrupted run gives, and write "
+                    "the usual files into DIR.\nThe model file must be the original one "
+                    "(its log density is checked).\n\nWarning: " + _TRUST,
+        epilog="example:\n  fisherwalk run model.py --data counts.csv --out results --checkpoint"
+               "\n  (interrupted)\n  fisherwalk resume results --model model.py")
+    again.add_argument("folder", metavar="DIR", help="the --out folder of the interrupted run")
+    again.add_argument("--model", required=True, metavar="MODEL_FILE",
+                       help="the model file of the run")
+    again.add_argument("--data", metavar="CSV", default=None,
+                       help="the data file (default: the path the run recorded)")
+    again.add_argument("--quiet", action="store_true", help="no progress bar")
+    _cache_option(again)
     return parser
 
 
@@ -407,18 +522,44 @@ def main(argv: Sequence[str] | None = None) -> int:
     import jax
 
     jax.config.update("jax_enable_x64", True)  # the application's choice, not the library's
+    if args.command != "scale":
+        args.compile_cache = compilecache.switch(args.compile_cache_on)
     try:
         if args.command == "scale":
             return _scale(args)
         if args.command == "demo":
             return _demo(args, argv)
+        if args.command == "resume":
+            return _resume(args, argv)
         return _run(args, argv)
     except (ModelFileError, InputError) as err:
-        print(f"fisherwalk {args.command}: {err}", file=sys.stderr)
+        _error_note(args, err)
         return 2
     except FisherwalkError as err:
-        print(f"fisherwalk {args.command}: {err}", file=sys.stderr)
+        _error_note(args, err)
         return 1
+    except KeyboardInterrupt:
+        if args.command == "run" and args.checkpoint:
+            print(f"fisherwalk run: interrupted; the sampling's progress is saved. Finish it "
+                  f"with: fisherwalk resume {args.out} --model {args.model_file}",
+                  file=sys.stderr)
+            return 130
+        raise
+
+
+def _error_note(args, err: Exception) -> None:
+    """The message on standard error and, for run and resume, as error.txt in the output
+    folder (the only file a failed run leaves there)."""
+    text = f"fisherwalk {args.command}: {err}"
+    print(text, file=sys.stderr)
+    folder = {"run": getattr(args, "out", None), "resume": getattr(args, "folder", None)}.get(
+        args.command)
+    if folder is not None:
+        try:
+            Path(folder).mkdir(parents=True, exist_ok=True)
+            (Path(folder) / "error.txt").write_text(text + "\n", encoding="utf-8")
+        except OSError:
+            pass  # the message is on standard error already
 
 
 if __name__ == "__main__":  # pragma: no cover

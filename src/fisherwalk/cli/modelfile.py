@@ -1,8 +1,14 @@
 """Model files for the ``fisherwalk run`` command: import one and check what it defines.
 
 A model file is a Python file defining ``logdensity(position)`` and
-``initial_position``, and optionally ``fisher`` and ``names``. :func:`load_model`
-imports it (running its code) and checks these eagerly, raising
+``initial_position``, and optionally ``fisher``, ``names``, ``pointwise(position)``
+(the log likelihood per observation) and ``derived(position)`` (quantities to summarise).
+A model of a data file (``--data table.csv``) instead defines ``make(data)``, which
+receives the table as a mapping column name -> float array and returns
+``(logdensity, initial_position)``, or a dict or object with those names (and any of the
+optional ones); it may declare the columns it needs, ``columns = ("y", "x")``, so that
+only these are read and a missing one is named before ``make`` runs.
+:func:`load_model` imports the file (running its code) and checks these eagerly, raising
 :class:`~fisherwalk.errors.ModelFileError` with the file and, for a failure inside the
 user's code, the line.
 """
@@ -18,6 +24,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ..errors import ModelFileError, explain
+from .datafile import Table, read_table
 
 __all__ = ["ModelSpec", "load_model"]
 
@@ -31,25 +38,37 @@ class ModelSpec(NamedTuple):
     fisher: Any  # None, a (d, d) matrix, or mode -> (d, d)
     labels: tuple[str, ...] | None  # readable names, one per scalar parameter
     dim: int
+    pointwise: Any = None  # None or position -> (n_obs,) log likelihood per observation
+    derived: Any = None  # None or position -> pytree of derived quantities
+    data: Table | None = None  # the data file given to make(data)
 
 
 def _file_problem(path: Path, what: str, todo: str) -> ModelFileError:
     return ModelFileError(explain(what, f"model file {path}", todo))
 
 
-def load_model(path) -> ModelSpec:
+_OPTIONAL = ("fisher", "names", "pointwise", "derived")
+
+
+def load_model(path, data=None) -> ModelSpec:
     """Import a model file and check what it defines.
 
     The file must define ``logdensity(position)`` (a JAX function returning a scalar)
-    and ``initial_position`` (a pytree of floating arrays); it may define
-    ``fisher(mode)`` (or a matrix) and ``names`` (one label per scalar parameter).
-    Importing the file runs its code.
+    and ``initial_position`` (a pytree of floating arrays), or, when ``data`` (the path
+    of a CSV file) is given, ``make(data)`` returning them; it may define
+    ``fisher(mode)`` (or a matrix), ``names`` (one label per scalar parameter),
+    ``pointwise(position)``, ``derived(position)`` and ``columns``. Importing the file
+    runs its code.
 
     Raises
     ------
     ModelFileError
-        The file is missing, fails to import, lacks a name, or its log density does
-        not return a finite-shaped scalar at ``initial_position``.
+        The file is missing, fails to import, lacks a name, has ``make`` without data
+        or data without ``make``, or its log density does not return a finite-shaped
+        scalar at ``initial_position``.
+    InputError
+        The data file lacks a declared column or holds a cell that is not a number
+        (:func:`fisherwalk.cli.datafile.read_table`).
     """
     import jax
 
@@ -72,16 +91,25 @@ def load_model(path) -> ModelSpec:
         raise _file_problem(path, f"Importing it raised {_describe(err, path)}",
                             "fix the file so that `python MODEL_FILE` runs without error."
                             ) from None
-    missing = [n for n in ("logdensity", "initial_position") if not hasattr(module, n)]
+    table = None
+    parts = {name: getattr(module, name) for name in ("logdensity", "initial_position",
+                                                         *_OPTIONAL) if hasattr(module, name)}
+    if data is not None:
+        table = read_table(data, _declared_columns(module, path))
+        parts = {**parts, **_made(module, table, path)}
+    elif hasattr(module, "make"):
+        raise _file_problem(path, "It defines make(data), so it needs a data file.",
+                            "pass the table: fisherwalk run MODEL_FILE --data table.csv.")
+    missing = [n for n in ("logdensity", "initial_position") if n not in parts]
     if missing:
         raise _file_problem(path, f"It does not define {' or '.join(missing)}.",
                             "define logdensity(position) -> scalar and initial_position "
                             "(e.g. {'beta': jnp.zeros(3)}) at the top level of the file.")
-    logdensity = module.logdensity
+    logdensity = parts["logdensity"]
     if not callable(logdensity):
         raise _file_problem(path, f"logdensity is a {type(logdensity).__name__}, not a function.",
                             "define logdensity as a function of the position.")
-    position = module.initial_position
+    position = parts["initial_position"]
     try:
         value = logdensity(position)
         shape = np.shape(value)
@@ -95,8 +123,8 @@ def load_model(path) -> ModelSpec:
                             "that it returns one number.")
     leaves = jax.tree_util.tree_leaves(position)
     dim = int(sum(np.size(leaf) for leaf in leaves))
-    fisher = getattr(module, "fisher", None)
-    labels = getattr(module, "names", None)
+    fisher = parts.get("fisher")
+    labels = parts.get("names")
     if labels is not None:
         labels = tuple(str(label) for label in labels)
         if len(labels) != dim:
@@ -104,7 +132,54 @@ def load_model(path) -> ModelSpec:
                                 f"{dim} scalar parameters.",
                                 "give one name per scalar parameter, in ravelled order "
                                 "(dict keys sorted, arrays row-major), or leave names out.")
-    return ModelSpec(path, logdensity, position, fisher, labels, dim)
+    for name in ("pointwise", "derived"):
+        if parts.get(name) is not None and not callable(parts[name]):
+            raise _file_problem(path, f"{name} is a {type(parts[name]).__name__}, not a "
+                                "function.", f"define {name}(position) as a function.")
+    return ModelSpec(path, logdensity, position, fisher, labels, dim,
+                     parts.get("pointwise"), parts.get("derived"), table)
+
+
+def _declared_columns(module, path: Path) -> tuple[str, ...] | None:
+    """The model file's ``columns`` (names of the data columns it needs), or None."""
+    if not hasattr(module, "make"):
+        raise _file_problem(path, "A data file was given but the model file defines no "
+                            "make(data).",
+                            "define make(data) -> (logdensity, initial_position), with data a "
+                            "mapping column name -> array; or leave out --data.")
+    columns = getattr(module, "columns", None)
+    if columns is None:
+        return None
+    if isinstance(columns, str) or not all(isinstance(c, str) for c in columns):
+        raise _file_problem(path, f"columns is {columns!r}, not a sequence of column names.",
+                            "write e.g. columns = (\"count\", \"exposure\").")
+    return tuple(columns)
+
+
+def _made(module, table: Table, path: Path) -> dict:
+    """What make(data) returns, as a dict of the model's parts."""
+    make = module.make
+    if not callable(make):
+        raise _file_problem(path, f"make is a {type(make).__name__}, not a function.",
+                            "define make(data) as a function.")
+    try:
+        made = make(dict(table.columns))
+    except Exception as err:  # noqa: BLE001 - any failure of the user's code is reported
+        raise _file_problem(path, f"make(data) raised {_describe(err, path)}",
+                            "data maps each column name of the table to a float array; "
+                            "fix make so that it accepts it.") from None
+    if isinstance(made, tuple) and len(made) == 2:
+        return {"logdensity": made[0], "initial_position": made[1]}
+    if isinstance(made, dict):
+        return {k: v for k, v in made.items() if k in ("logdensity", "initial_position",
+                                                        *_OPTIONAL)}
+    found = {k: getattr(made, k) for k in ("logdensity", "initial_position", *_OPTIONAL)
+             if hasattr(made, k)}
+    if found:
+        return found
+    raise _file_problem(path, f"make(data) returned a {type(made).__name__}.",
+                        "return (logdensity, initial_position), or a dict with those keys "
+                        "(and optionally fisher, names, pointwise, derived).")
 
 
 def _describe(err: BaseException, path: Path) -> str:

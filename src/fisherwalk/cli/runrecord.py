@@ -22,8 +22,7 @@ import numpy as np
 
 from ..run import tuningfile
 
-__all__ = ["RunResult", "build_record", "write_outputs", "sha256_file"]
-
+__all__ = ["RunResult", "build_record", "write_outputs", "sha256_file", "run_keys"]
 
 
 class RunResult(NamedTuple):
@@ -33,6 +32,17 @@ class RunResult(NamedTuple):
     summary: Any  # fisherwalk.results.report.Summary
     seconds: dict[str, float]  # wall time of each step
     keys: dict[str, list[int]]  # key data of each step's key
+
+
+def run_keys(seed: int) -> tuple[tuple, dict[str, list[int]]]:
+    """The keys of a command run, ``start, warmup, sampling = jax.random.split(
+    jax.random.key(seed), 3)``, and their key data for the record."""
+    import jax
+
+    parts = tuple(jax.random.split(jax.random.key(seed), 3))
+    data = {name: np.asarray(jax.random.key_data(k)).tolist()
+            for name, k in zip(("start", "warmup", "sampling"), parts, strict=True)}
+    return parts, data
 
 
 PACKAGES = ("fisherwalk", "jax", "jaxlib", "blackjax", "optax", "numpy", "scipy")
@@ -110,7 +120,10 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "tuning": tuningfile.tuning_record(walker),
         "warmup": walker.report.warmup,
         "summary": result.summary.to_dict(),
-        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin},
+        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin,
+                     "derived": list(trace.columns()[1][len(trace.names):]),
+                     "pointwise_observations": None if trace.pointwise is None
+                     else int(trace.pointwise.shape[-1])},
         "seconds": result.seconds,
         **extra,
     })
@@ -123,8 +136,15 @@ def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[st
     trace = result.trace
     files = {}
     draws_path = out / "draws.npz"
-    np.savez(draws_path, draws=np.asarray(trace.flat), names=np.asarray(trace.names),
-             logdensity=np.asarray(trace.logdensity), accepted=np.asarray(trace.accepted))
+    arrays = {"draws": np.asarray(trace.flat), "names": np.asarray(trace.names),
+              "logdensity": np.asarray(trace.logdensity), "accepted": np.asarray(trace.accepted)}
+    if trace.derived is not None:  # walk(derived=...): ravelled after the parameters
+        flat, names = trace.columns()
+        arrays["derived"] = flat[..., len(trace.names):]
+        arrays["derived_names"] = np.asarray(names[len(trace.names):])
+    if trace.pointwise is not None:  # walk(pointwise=...): (chains, draws, n_obs)
+        arrays["pointwise"] = np.asarray(trace.pointwise)
+    np.savez(draws_path, **arrays)
     files["draws"] = draws_path
     for path in plots.save_all(trace, out, labels=labels):
         files[path.stem] = path

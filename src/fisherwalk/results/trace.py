@@ -9,12 +9,14 @@ from __future__ import annotations
 
 from typing import Any, NamedTuple
 
+import jax
 import numpy as np
 
+from ..base.pytrees import parameter_names, ravel_batch
 from .diagnostics import ess_mean, whitened_jump
 from .report import summarize
 
-__all__ = ["Trace"]
+__all__ = ["Trace", "derived_names"]
 
 
 class Trace(NamedTuple):
@@ -34,20 +36,40 @@ class Trace(NamedTuple):
     rng_key: np.ndarray  # key data of the run's key (uint32)
     seconds: float  # wall time of the run, compilation included
     complete: bool  # False when the run was interrupted (the trace holds what finished)
+    pointwise: np.ndarray | None = None  # (chains, draws, n_obs) walk(pointwise=...) values
+    derived: Any = None  # walk(derived=...) pytree, each leaf with leading (chains, draws)
 
     @property
     def names(self) -> tuple[str, ...]:
         return self.walker.names
 
+    def columns(self) -> tuple[np.ndarray, tuple[str, ...]]:
+        """The draws ravelled with the derived quantities after the parameters:
+        ``(chains, draws, d + k)`` and their names (``walk(derived=...)`` adds k)."""
+        if self.derived is None:
+            return self.flat, self.names
+        extra = ravel_batch(self.derived, 2)
+        return (np.concatenate([self.flat, extra.astype(self.flat.dtype)], axis=-1),
+                self.names + derived_names(self.derived))
+
+    def to_arviz(self):
+        """The run as ArviZ ``InferenceData`` (:func:`fisherwalk.results.export.to_arviz`;
+        needs the optional extra ``arviz``)."""
+        from .export import to_arviz
+
+        return to_arviz(self)
+
     def summary(self):
-        """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it)."""
+        """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it).
+        Derived quantities (``walk(derived=...)``) get rows after the parameters."""
         tuning = self.walker.tuning
         realised = None
         if self.thin == 1 and self.flat.shape[1] > 1:
             realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).mean
+        flat, names = self.columns()
         summary = summarize(
-            self.flat,
-            self.names,
+            flat,
+            names,
             target_acceptance=tuning.target_acceptance,
             acceptance=self.accepted.mean(axis=1),
             predicted_jump=tuning.predicted_jump,
@@ -58,6 +80,16 @@ class Trace(NamedTuple):
         if mismatch:
             summary = summary._replace(warnings=summary.warnings + (mismatch,))
         return summary
+
+
+def derived_names(derived: Any) -> tuple[str, ...]:
+    """One name per scalar derived quantity, in ravelled order (``k``, ``ratio[0]``), as
+    :func:`fisherwalk.base.pytrees.parameter_names` names parameters. ``derived`` has
+    leading axes (chains, draws); a bare array is named ``derived``."""
+    single = jax.tree.map(lambda leaf: np.empty(np.shape(leaf)[2:]), derived)
+    if not jax.tree_util.tree_flatten_with_path(derived)[0][0][0]:  # a bare array
+        return parameter_names({"derived": single})
+    return parameter_names(single)
 
 
 def _acceptance_mismatch(rates: np.ndarray, tuning) -> str | None:

@@ -23,7 +23,8 @@ __all__ = ["resume"]
 
 
 def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: bool | None = None,
-           checkpoint_every: float = DEFAULT_EVERY) -> Trace:
+           checkpoint_every: float = DEFAULT_EVERY, pointwise: Callable | None = None,
+           derived: Callable | None = None) -> Trace:
     """Finish a checkpointed run from its directory alone and the model's log density.
 
     The walker is rebuilt from the tuning record stored in the checkpoint
@@ -45,6 +46,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         Progress bar, as in :func:`fisherwalk.walk`.
     checkpoint_every
         Seconds between saves (0: after every chunk).
+    pointwise, derived
+        As in :func:`fisherwalk.walk`; evaluated on all the kept draws at the end (they
+        are not stored in the checkpoint).
 
     Returns
     -------
@@ -90,7 +94,7 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         )) from err
     _check_logdensity(directory, walker, positions0, logdensity0, where)
     return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
-                checkpoint_every=checkpoint_every)
+                checkpoint_every=checkpoint_every, pointwise=pointwise, derived=derived)
 
 
 def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str) -> None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import time
 import warnings
+from collections.abc import Callable
 
 import jax
 import numpy as np
@@ -18,7 +19,7 @@ from ..base.checks import whole_number
 from ..base.keys import as_key, key_data, stream
 from ..errors import FisherwalkWarning
 from ..results.trace import Trace
-from . import engine
+from . import derive, engine
 from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
 from .progress import progress_bar
@@ -62,6 +63,8 @@ def walk(
     progress: bool | None = None,
     checkpoint=None,
     checkpoint_every: float = 10.0,
+    pointwise: Callable | None = None,
+    derived: Callable | None = None,
 ) -> Trace:
     """Run every chain of a walker for ``draws`` kept draws.
 
@@ -89,6 +92,16 @@ def walk(
     checkpoint_every
         Seconds between checkpoint saves (0: after every chunk); the end of the run and
         Ctrl-C always save.
+    pointwise
+        ``pointwise(position) -> (n_obs,)``, the log likelihood of each observation;
+        evaluated after sampling at the kept draws (in chunks, :mod:`fisherwalk.run.derive`)
+        and stored as ``trace.pointwise`` (chains, draws, n_obs), for leave-one-out
+        cross-validation (``trace.to_arviz()``, then ``arviz.loo``).
+    derived
+        ``derived(position) -> pytree`` of quantities computed from the parameters (e.g.
+        ``{"k": jnp.exp(p["log_k"])}``); evaluated like ``pointwise``, stored as
+        ``trace.derived`` and summarised with the parameters. Neither is checkpointed:
+        both are recomputed at the end of a resumed run.
 
     Returns
     -------
@@ -104,6 +117,7 @@ def walk(
     chunk = whole_number(chunk, "chunk", "walk(chunk=...)")
     key = as_key(rng_key, where="walk(rng_key=...)")
     state = continuable_state(walker, "walk()")
+    derive.check_functions(walker, pointwise=pointwise, derived=derived)
     chains, dim = state.position.shape
     dtype = np.asarray(state.logdensity).dtype
     collector = _Collector(chains, draws, dim, dtype)
@@ -149,7 +163,8 @@ def walk(
         if bar is not None:
             bar.close()
     seconds = time.perf_counter() - began
-    return _trace(walker, collector, state, thin, key, seconds, complete=collector.done == draws)
+    trace = _trace(walker, collector, state, thin, key, seconds, complete=collector.done == draws)
+    return derive.attach(trace, pointwise=pointwise, derived=derived)
 
 
 def _trace(walker, collector, state, thin, key, seconds, *, complete) -> Trace:

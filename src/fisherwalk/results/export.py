@@ -1,0 +1,140 @@
+"""A run handed to ArviZ: :func:`to_arviz` builds ``arviz.InferenceData`` from a Trace.
+
+ArviZ (Kumar, Carroll, Hartikainen & Martin 2019, "ArviZ a unified library for
+exploratory analysis of Bayesian models in Python", Journal of Open Source Software 4)
+is the field's open library of diagnostics and plots; its ``InferenceData`` keeps draws
+in groups of labelled arrays with chain and draw dimensions first. The groups filled here:
+
+``posterior``
+    One variable per leaf of the user's position, named after its path (``beta``,
+    ``sigma``, ``layer.w``), with the leaf's own shape after (chain, draw); derived
+    quantities (``walk(derived=...)``) are added as further variables.
+``sample_stats``
+    ``lp`` (log density), ``acceptance_rate`` (Metropolis acceptance probability),
+    ``accepted`` (fraction of the thinned steps accepted), ``faults`` (proposals rejected
+    for a NaN/+inf log density), and ``diverging`` when the trace carries divergences.
+``log_likelihood``
+    ``observations`` with dimension ``observation``, when the trace holds a pointwise log
+    likelihood (``walk(pointwise=...)``): what ``arviz.loo`` and ``arviz.waic`` read.
+
+The run's settings (scale, target acceptance, shape kind, thin, seconds, version) are
+the attributes of the InferenceData and of its posterior and sample_stats groups.
+ArviZ is an optional extra: ``pip install fisherwalk[arviz]``.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import jax
+import numpy as np
+
+from ..errors import InputError, explain
+
+__all__ = ["to_arviz", "leaf_variables", "settings"]
+
+
+def _import_arviz():
+    try:
+        import arviz
+    except ImportError as err:
+        raise InputError(explain(
+            "ArviZ is not installed; handing a run to ArviZ needs it.",
+            "Trace.to_arviz()",
+            "install the optional extra: pip install fisherwalk[arviz]")) from err
+    return arviz
+
+
+def _path_label(path) -> str:
+    parts = []
+    for entry in path:
+        if isinstance(entry, jax.tree_util.DictKey):
+            parts.append(str(entry.key))
+        elif isinstance(entry, jax.tree_util.GetAttrKey):
+            parts.append(str(entry.name))
+        elif isinstance(entry, jax.tree_util.SequenceKey):
+            parts.append(str(entry.idx))
+        else:  # pragma: no cover - other key types
+            parts.append(str(entry))
+    return ".".join(parts)
+
+
+def leaf_variables(tree: Any, *, bare: str) -> dict[str, np.ndarray]:
+    """One named host array per leaf of ``tree``: ``{"beta": ..., "sigma": ...}``; a
+    tuple position gives ``"0"``, ``"1"``; a bare array is named ``bare``."""
+    out: dict[str, np.ndarray] = {}
+    for path, leaf in jax.tree_util.tree_flatten_with_path(tree)[0]:
+        out[_path_label(path) or bare] = np.asarray(leaf)
+    return out
+
+
+def settings(trace) -> dict[str, Any]:
+    """The run's settings as plain attributes (numbers and strings only)."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    tuning = trace.walker.tuning
+    try:
+        release = version("fisherwalk")
+    except PackageNotFoundError:  # pragma: no cover - a source checkout
+        release = "unknown"
+    return {
+        "created_by": "fisherwalk",
+        "fisherwalk_version": release,
+        "sampler": "random-walk Metropolis",
+        "scale": float(tuning.scale),
+        "target_acceptance": float(tuning.target_acceptance),
+        "shape_kind": str(tuning.shape_kind),
+        "thin": int(trace.thin),
+        "seconds": float(trace.seconds),
+        "complete": int(bool(trace.complete)),
+    }
+
+
+def to_arviz(trace):
+    """The run as ``arviz.InferenceData`` (groups described in the module docstring).
+
+    Parameters
+    ----------
+    trace
+        A :class:`fisherwalk.Trace` with at least one kept draw.
+
+    Returns
+    -------
+    arviz.InferenceData
+
+    Raises
+    ------
+    InputError
+        ArviZ is not installed (the message names the extra), the trace holds no draws,
+        or a derived quantity has the name of a parameter.
+    """
+    arviz = _import_arviz()
+    if trace.draws is None or trace.flat.shape[1] == 0:
+        raise InputError(explain("The trace holds no draws.", "Trace.to_arviz()",
+                                 "hand over a trace with at least one kept draw."))
+    posterior = leaf_variables(trace.draws, bare="x")
+    if trace.derived is not None:
+        extra = leaf_variables(trace.derived, bare="derived")
+        clash = sorted(set(extra) & set(posterior))
+        if clash:
+            raise InputError(explain(
+                f"Derived quantities {', '.join(clash)} have the names of parameters.",
+                "Trace.to_arviz()", "name the derived quantities differently."))
+        posterior.update(extra)
+    stats = {
+        "lp": np.asarray(trace.logdensity),
+        "acceptance_rate": np.asarray(trace.acceptance_rate),
+        "accepted": np.asarray(trace.accepted),
+        "faults": np.asarray(trace.faults),
+    }
+    divergent = getattr(trace, "divergent", None)  # gradient samplers will carry it
+    if divergent is not None:
+        stats["diverging"] = np.asarray(divergent, dtype=bool)
+    groups: dict[str, Any] = {"posterior": posterior, "sample_stats": stats}
+    dims = {}
+    if trace.pointwise is not None:
+        groups["log_likelihood"] = {"observations": np.asarray(trace.pointwise)}
+        dims["observations"] = ["observation"]
+    attrs = settings(trace)
+    return arviz.from_dict(**groups, dims=dims, attrs=dict(attrs),
+                           posterior_attrs=dict(attrs), sample_stats_attrs=dict(attrs))
