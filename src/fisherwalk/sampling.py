@@ -49,54 +49,40 @@ class Trace(NamedTuple):
     def names(self) -> tuple[str, ...]:
         return self.walker.names
 
-    def summary(self):
-        """The diagnostics table (:class:`fisherwalk.report.Summary`; print it)."""
-        from .diagnostics import whitened_jump
+    def summary(self, interval: float = 0.9):
+        """The diagnostics table (:class:`fisherwalk.report.Summary`; print it).
+
+        ``interval`` is the probability of the central interval shown beside the median
+        (0.9: the 5% and 95% quantiles). The acceptance target, the predicted jump and
+        the Gaussian picture's acceptance are those of the scale actually used.
+        """
         from .report import summarize
+        from .scaling import expected_acceptance, expected_jump
 
         tuning = self.walker.tuning
-        realised = None
-        if self.thin == 1 and self.flat.shape[1] > 1:
-            realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).mean
-        summary = summarize(
+        spectrum = np.asarray(tuning.spectrum)
+        if np.allclose(spectrum, 1.0, rtol=1e-6, atol=0.0):
+            spectrum = None
+        notes = ()
+        if self.thin > 1:
+            notes = (f"realised jump not measured: the trace keeps one state in {self.thin} "
+                     "steps, and the jump is per step",)
+        return summarize(
             self.flat,
             self.names,
+            interval=interval,
             target_acceptance=tuning.target_acceptance,
-            acceptance=self.accepted.mean(axis=1),
-            predicted_jump=tuning.predicted_jump,
-            realised_jump=realised,
+            scale=tuning.scale,
+            gaussian_acceptance=float(expected_acceptance(tuning.scale, tuning.dim, spectrum)),
+            acceptance_steps=self.accepted,
+            predicted_jump=float(expected_jump(tuning.scale, tuning.dim, spectrum)),
+            cholesky=np.asarray(tuning.whitening)
+            if self.thin == 1 and self.flat.shape[1] > 1 else None,
             faults=self.faults.sum(axis=1),
+            header_notes=notes,
+            proposal_shape=np.asarray(tuning.shape),
+            seconds=self.seconds,
         )
-        mismatch = _acceptance_mismatch(self.acceptance_rate, tuning)
-        if mismatch:
-            summary = summary._replace(warnings=summary.warnings + (mismatch,))
-        return summary
-
-
-def _acceptance_mismatch(rates: np.ndarray, tuning) -> str | None:
-    """A warning when the realised acceptance departs from what the Gaussian picture
-    predicts at the walker's scale and shape, beyond 4 Monte Carlo standard errors (ESS of
-    the per-step acceptance probabilities) plus 0.005."""
-    from .diagnostics import ess_mean
-    from .scaling import expected_acceptance
-
-    if rates.shape[1] < 20:
-        return None
-    spectrum = np.asarray(tuning.spectrum)
-    matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6, atol=0.0))
-    predicted = float(expected_acceptance(tuning.scale, tuning.dim, None if matched else spectrum))
-    realised = float(rates.mean())
-    mcse = float(rates.std() / np.sqrt(max(float(ess_mean(rates)), 1.0)))
-    if abs(realised - predicted) <= 4.0 * mcse + 0.005:
-        return None
-    return (
-        f"The realised acceptance {realised:.3f} departs from the {predicted:.3f} that the "
-        f"Gaussian picture N(mode, H⁻¹) predicts at scale {tuning.scale:.3f} (Monte Carlo "
-        f"error {mcse:.3f}). Where: the whole run. What to do: the posterior is not shaped "
-        "like its Laplace approximation here, so the tuning is approximate; compare the "
-        "marginals with the Gaussian curves (plots.save_all), and draw more if the ESS is "
-        "short."
-    )
 
 
 def _positive_int(value, name: str, where: str) -> int:
