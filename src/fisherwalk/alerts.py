@@ -15,6 +15,7 @@ stuck-chain, separated-chain, acceptance and correlation rules are fisherwalk's 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import numpy as np
 
@@ -73,7 +74,7 @@ def ess_text(value: float) -> str:
     return str(value) if not math.isfinite(value) else str(math.floor(value))
 
 
-def excluded_warning(chains) -> str:
+def excluded_warning(chains: Sequence[int]) -> str:
     """Chains left out of every statistic because they hold NaN or inf draws."""
     return _warn(
         f"Chain(s) {_join(chains)} hold NaN or inf draws and were left out of every "
@@ -82,7 +83,7 @@ def excluded_warning(chains) -> str:
         "transforms and the starting points of those chains.")
 
 
-def rhat_warnings(names, rh, limit) -> list[str]:
+def rhat_warnings(names: Sequence[str], rh: np.ndarray, limit: float) -> list[str]:
     """R-hat undefined (every chain constant) or above ``limit``."""
     out = []
     undefined = [names[j] for j in np.nonzero(~np.isfinite(rh))[0]]
@@ -104,7 +105,8 @@ def rhat_warnings(names, rh, limit) -> list[str]:
     return out
 
 
-def ess_warnings(names, ess_b, ess_t, limit, chains, count) -> list[str]:
+def ess_warnings(names: Sequence[str], ess_b: np.ndarray, ess_t: np.ndarray, limit: float,
+                 chains: int, count: int) -> list[str]:
     """Bulk or tail ESS below ``limit``, with the draws per chain that would reach it."""
     worst = np.minimum(ess_b, ess_t)
     low = np.nonzero(worst < limit)[0]
@@ -141,7 +143,7 @@ def _median_of_others(values: np.ndarray) -> np.ndarray:
     return (first + second) / 2.0
 
 
-def stuck_warnings(chains: int, frozen, acceptance) -> list[str]:
+def stuck_warnings(chains: int, frozen: set[int], acceptance: np.ndarray | None) -> list[str]:
     """A chain is stuck when its acceptance is below 1%, or below a fifth of the median
     acceptance of the other chains, or its draws never change (``frozen``, a set)."""
     low, reference = set(), None
@@ -180,7 +182,9 @@ def _leave_one_out(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return finite.sum(axis=0) - finite, others_inf
 
 
-def separated_chains(names, used, chain_means, chain_sds, chain_mcse, frozen) -> list[str]:
+def separated_chains(names: Sequence[str], used: Sequence[int], chain_means: np.ndarray,
+                     chain_sds: np.ndarray, chain_mcse: np.ndarray,
+                     frozen: np.ndarray) -> list[str]:
     """A chain sits apart when, in some parameter, its mean differs from the mean of all
     the other chains by more than 5 Monte Carlo standard errors of that difference *and*
     by more than 2 within-chain standard deviations of the other chains.
@@ -230,7 +234,7 @@ def separated_chains(names, used, chain_means, chain_sds, chain_mcse, frozen) ->
     return out
 
 
-def fault_warnings(faults) -> list[str]:
+def fault_warnings(faults: np.ndarray | None) -> list[str]:
     """Proposals rejected for a NaN or +inf log density, per chain."""
     if faults is None or not np.any(faults > 0):
         return []
@@ -285,7 +289,7 @@ def acceptance_warning(realised: float, error: float, target: float, draws: int,
         "not see: refine() again with more steps, and check the traces.")
 
 
-def correlated_pairs(correlation, proposal_correlation, *,
+def correlated_pairs(correlation: np.ndarray, proposal_correlation: np.ndarray, *,
                      limit: float = CORRELATION_LIMIT,
                      residual_limit: float = RESIDUAL_LIMIT) -> list[tuple]:
     """Parameter pairs strongly correlated in the posterior that the proposal does not follow.
@@ -319,7 +323,7 @@ def correlated_pairs(correlation, proposal_correlation, *,
     return [(int(rows[k]), int(cols[k]), float(r[k]), float(c[k]), float(left[k])) for k in hit]
 
 
-def correlation_warning(names, pairs) -> str | None:
+def correlation_warning(names: Sequence[str], pairs: list[tuple]) -> str | None:
     """One warning naming the pairs of :func:`correlated_pairs`."""
     if not pairs:
         return None

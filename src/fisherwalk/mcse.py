@@ -32,7 +32,7 @@ The last two are computed as arviz 0.23 computes them (``arviz.mcse`` with metho
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import NamedTuple
 
 import numpy as np
@@ -319,7 +319,7 @@ def _rhat_from(col, bulk: _Moments, centre: float, chain: _Moments) -> float:
     return float("nan") if chain.highs.max() == chain.lows.min() else float(value)
 
 
-def split_rhat(col) -> float:
+def split_rhat(col: np.ndarray) -> float:
     """Rank-normalised split R-hat, the larger of the bulk and the folded value."""
     chain = _moments(col, split=False, autocov=False)
     values = _sorted_split(col)
@@ -329,12 +329,12 @@ def split_rhat(col) -> float:
     return _rhat_from(col, bulk, centre, chain)
 
 
-def bulk_ess(col) -> float:
+def bulk_ess(col: np.ndarray) -> float:
     """ESS of the rank-normalised split draws."""
     return _ess(_moments(col, _scores(_sorted_split(col))))
 
 
-def tail_ess(col) -> float:
+def tail_ess(col: np.ndarray) -> float:
     """The smaller ESS of the 5% and 95% quantile indicators."""
     values = _sorted_all(col)
     low, high = (_quantile(values, p) for p in _TAIL_PROBS)
@@ -342,17 +342,17 @@ def tail_ess(col) -> float:
     return min(_indicator_ess(col, low), _indicator_ess(col, high))
 
 
-def mean_ess(col) -> float:
+def mean_ess(col: np.ndarray) -> float:
     """ESS of the split draws, no rank normalisation (the ESS behind the mean's MCSE)."""
     return _ess(_moments(col))
 
 
-def autocorrelation_time(col) -> float:
+def autocorrelation_time(col: np.ndarray) -> float:
     """Integrated autocorrelation time of the chains as given (not split)."""
     return _tau(_moments(col, split=False))
 
 
-def mean_mcse(col) -> float:
+def mean_mcse(col: np.ndarray) -> float:
     """sd / sqrt(ESS); inf when the ESS is 0."""
     _, sd = _pooled(_moments(col, split=False, autocov=False), col.shape[1])
     ess = mean_ess(col)
@@ -373,13 +373,13 @@ def _sd_error(col, mean: float) -> float:
     return float(np.sqrt((fourth - second**2) / ess / second / 4.0))
 
 
-def sd_mcse(col) -> float:
+def sd_mcse(col: np.ndarray) -> float:
     """MCSE of the sd by the delta method (see the module notes); inf when the ESS is 0."""
     mean, _ = _pooled(_moments(col, split=False, autocov=False), col.shape[1])
     return _sd_error(col, mean)
 
 
-def quantile_mcse(col, prob: float) -> float:
+def quantile_mcse(col: np.ndarray, prob: float) -> float:
     """MCSE of the quantile at ``prob`` (see the module notes); inf when the ESS is 0."""
     values = _sorted_all(col)
     return _quantile_error(values, prob, _indicator_ess(col, _quantile(values, prob)))
@@ -390,7 +390,8 @@ def quantile_mcse(col, prob: float) -> float:
 # ---------------------------------------------------------------------------------------
 
 
-def column_statistics(col, probs=(0.05, 0.5, 0.95)) -> ColumnStatistics:
+def column_statistics(col: np.ndarray, probs: Sequence[float] = (0.05, 0.5, 0.95),
+                      ) -> ColumnStatistics:
     """Estimates, MCSEs, ESS and R-hat of one parameter, each computed as the single-statistic
     functions above compute it, with at most one sorted copy of the draws alive at a time."""
     chains, n = col.shape

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import textwrap
+from typing import Any
 
 import numpy as np
 
@@ -170,7 +171,7 @@ def _header(s) -> list[str]:
     return lines
 
 
-def render(s) -> str:
+def render(s: Any) -> str:
     """The summary as text: header, estimates, Monte Carlo errors, warnings."""
     low, high = (_percent(p) for p in interval_probabilities(s.interval))
     rate = s.ess_bulk_per_second is not None
