@@ -1,4 +1,6 @@
-"""walk(): reproducibility, compilation, thinning, faults."""
+"""walk(): reproducibility, compilation, thinning, faults; the summary of a Trace."""
+
+import re
 
 import jax
 import jax.numpy as jnp
@@ -90,3 +92,79 @@ def test_bad_arguments(walker):
     broken = walker._replace(state=walker.state._replace(logdensity=logdensity))
     with pytest.raises(fisherwalk.SamplingError, match="chain 2"):
         fisherwalk.walk(broken, jax.random.key(0), draws=10)
+
+
+def _student_t(nu=6.0):
+    """Student-t in 3-D: its Laplace approximation is too narrow by (nu + 3) / (nu - 2) in
+    variance (standard results for the multivariate t, e.g. Kotz & Nadarajah 2004,
+    Multivariate t Distributions, ch. 1), so the chains accept more often than the
+    Gaussian picture predicts."""
+    prec = jnp.linalg.inv(jnp.asarray([[1.0, 0.3, 0.0], [0.3, 2.0, 0.5], [0.0, 0.5, 0.5]]))
+    return lambda x: -0.5 * (nu + 3) * jnp.log1p(x @ prec @ x / nu)
+
+
+@pytest.mark.parametrize("model, warns", [(_model(), False), (_student_t(), True)])
+def test_summary_warnings_agree_with_the_header_after_the_scale_moved(model, warns):
+    # As after an adapting warm-up: the scale moved (here x 1.5) while the target stays
+    # the acceptance aimed for. The header shows that target at the scale used, and the
+    # Gaussian picture's prediction at that scale, and the predicted jump at that scale.
+    # On an exact Gaussian the chains accept as predicted at the scale used: no warning.
+    # On the Student-t they accept more often than both numbers: the warning must cite
+    # the header's target and scale (issue 12).
+    from types import SimpleNamespace
+
+    from fisherwalk.theory.randomwalk import expected_acceptance, expected_jump
+
+    walker = fisherwalk.start(model, jnp.ones(3), jax.random.key(0), chains=4)
+    tuning = walker.tuning
+    aimed = SimpleNamespace(target_acceptance=tuning.target_acceptance)  # a warm-up's aim
+    moved = walker._replace(tuning=tuning._replace(scale=tuning.scale * 1.5),
+                            report=walker.report._replace(warmup=aimed))
+    trace = fisherwalk.walk(moved, jax.random.key(6), draws=2000, progress=False)
+    summary = trace.summary()
+    header = str(summary).split("parameter")[0]
+    target = f"target {tuning.target_acceptance:.3f} at scale {tuning.scale * 1.5:.3f}"
+    gaussian = float(expected_acceptance(tuning.scale * 1.5, 3))
+    assert target in header and f"predicts {gaussian:.3f}" in header
+    assert summary.predicted_jump == pytest.approx(float(expected_jump(tuning.scale * 1.5, 3)))
+    assert f"predicted {summary.predicted_jump:.3g}" in header
+    assert f"realised {summary.acceptance_pooled:.3f}" in header
+    warned = [w for w in summary.warnings if "realised acceptance" in w]
+    assert len(warned) == warns
+    if warns:
+        assert target in warned[0] and f"{gaussian:.3f} that the Gaussian picture" in warned[0]
+        assert f"acceptance {summary.acceptance_pooled:.3f} " in warned[0]
+    else:  # the Gaussian chains do accept as the Gaussian picture says at that scale
+        assert abs(summary.acceptance_pooled - gaussian) < 4 * summary.acceptance_mcse + 0.005
+
+
+def test_summary_of_a_thinned_trace_says_why_there_is_no_realised_jump(walker):
+    trace = fisherwalk.walk(walker, jax.random.key(7), draws=40, thin=3, progress=False)
+    summary = trace.summary(interval=0.8)
+    assert summary.realised_jump is None
+    assert "realised jump not measured" in str(summary)
+    assert "10%" in str(summary) and "90%" in str(summary)
+    assert summary.seconds == trace.seconds and summary.ess_bulk_per_second is not None
+
+
+def _ridge(corr=-0.99):
+    cov = jnp.asarray([[1.0, corr * 0.5, 0.0], [corr * 0.5, 0.25, 0.0], [0.0, 0.0, 1.0]])
+    prec = jnp.linalg.inv(cov)
+    return lambda x: -0.5 * x @ prec @ x
+
+
+@pytest.mark.parametrize("shape, fires", [("diagonal", True), ("fisher", False)])
+def test_correlation_warning_fires_under_a_diagonal_proposal_only(shape, fires):
+    # posterior correlation -0.99 between the first two coordinates (issue 14's case);
+    # the chains start from the exact Gaussian, so the draws' correlation is near -0.99
+    # even when they mix slowly
+    w = fisherwalk.start(_ridge(), jnp.zeros(3), jax.random.key(0), chains=4, shape=shape)
+    trace = fisherwalk.walk(w, jax.random.key(1), draws=1000, progress=False)
+    warned = [x for x in trace.summary().warnings if "correlated beyond" in x]
+    assert bool(warned) == fires
+    if fires:
+        first, second = trace.names[:2]
+        found = re.search(re.escape(f"{first} and {second} (posterior ") + r"(-0\.\d+)",
+                          warned[0])
+        assert float(found.group(1)) < -0.95
+        assert trace.names[2] not in warned[0].split("What to do")[0]

@@ -34,6 +34,9 @@ Conventions (documented once, used everywhere below)
 * **Non-finite draws** (NaN or inf) raise :class:`~fisherwalk.errors.InputError`
   naming the chain, draw and parameter: no statistic is computed from them.
 * Fewer than 4 draws per chain raise :class:`~fisherwalk.errors.InputError`.
+* **Memory.** Each statistic is computed by :mod:`fisherwalk.results.mcse` one parameter at a
+  time, reading the chains in blocks: the extra memory is a small multiple of one
+  parameter's draws, never of all of them, whatever the floating dtype of the input.
 """
 
 from __future__ import annotations
@@ -41,10 +44,9 @@ from __future__ import annotations
 from typing import NamedTuple
 
 import numpy as np
-from scipy import special, stats
-from scipy.fft import next_fast_len
 
 from ..errors import InputError, explain
+from . import mcse
 
 __all__ = [
     "rhat",
@@ -54,6 +56,8 @@ __all__ = [
     "integrated_autocorrelation_time",
     "autocorrelation",
     "mcse_mean",
+    "mcse_sd",
+    "mcse_quantile",
     "pareto_khat",
     "khat_threshold",
     "whitened_jump",
@@ -61,7 +65,7 @@ __all__ = [
 ]
 
 _MIN_DRAWS = 4
-_BLOCK_ELEMENTS = 4_000_000  # FFT work arrays are processed in parameter blocks of this size
+_JUMP_BLOCK = 1 << 17  # numbers per block of steps in whitened_jump
 
 
 # ---------------------------------------------------------------------------------------
@@ -70,172 +74,63 @@ _BLOCK_ELEMENTS = 4_000_000  # FFT work arrays are processed in parameter blocks
 
 
 def _as_draws(x, where: str) -> tuple[np.ndarray, bool]:
-    """Validate draws; return a float array (chains, draws, d) and whether d was absent."""
+    """Validate draws; return a floating array (chains, draws, d) and whether d was absent.
+
+    Floating input of any width is kept as it is (no copy): the statistics convert one
+    block at a time."""
     try:
-        arr = np.asarray(x, dtype=float)
+        arr = np.asarray(x)
+        if arr.dtype.kind != "f":
+            arr = np.asarray(x, dtype=float)
     except (TypeError, ValueError) as err:
-        raise InputError(
-            explain(
-                f"draws cannot be read as a floating-point array ({err})",
-                where,
-                "pass a numpy array of shape (chains, draws) or (chains, draws, d)",
-            )
-        ) from None
+        raise InputError(explain(
+            f"draws cannot be read as a floating-point array ({err})", where,
+            "pass a numpy array of shape (chains, draws) or (chains, draws, d)")) from None
     if arr.ndim not in (2, 3):
-        raise InputError(
-            explain(
-                f"draws have {arr.ndim} dimension(s), shape {arr.shape}",
-                where,
-                "pass shape (chains, draws) for one parameter or (chains, draws, d)",
-            )
-        )
+        raise InputError(explain(
+            f"draws have {arr.ndim} dimension(s), shape {arr.shape}", where,
+            "pass shape (chains, draws) for one parameter or (chains, draws, d)"))
     scalar = arr.ndim == 2
     if scalar:
         arr = arr[:, :, None]
     chains, draws, dim = arr.shape
     if chains < 1 or dim < 1:
-        raise InputError(
-            explain(
-                f"draws of shape {arr.shape[:2] if scalar else arr.shape} hold no chain "
-                "or no parameter",
-                where,
-                "pass at least one chain and one parameter",
-            )
-        )
+        raise InputError(explain(
+            f"draws of shape {arr.shape[:2] if scalar else arr.shape} hold no chain or no "
+            "parameter", where, "pass at least one chain and one parameter"))
     if draws < _MIN_DRAWS:
-        raise InputError(
-            explain(
-                f"only {draws} draw(s) per chain; these diagnostics need at least "
-                f"{_MIN_DRAWS}",
-                where,
-                "run the chains longer (a few hundred draws per chain at the very least)",
-            )
-        )
-    bad = ~np.isfinite(arr)
-    if bad.any():
-        c, t, j = (int(i) for i in np.argwhere(bad)[0])
-        count = int(bad.sum())
-        chains_hit = sorted({int(i) for i in np.nonzero(bad.any(axis=(1, 2)))[0]})
-        raise InputError(
-            explain(
-                f"draws hold {count} non-finite value(s) (first: {arr[c, t, j]} at chain {c}, "
-                f"draw {t}, parameter index {j}); no diagnostic is computed from them",
-                f"{where}, chain(s) {chains_hit}",
-                "drop the affected chains, or find why the sampler produced a non-finite "
-                "position (a transform overflowing, an unconstrained parameter)",
-            )
-        )
+        raise InputError(explain(
+            f"only {draws} draw(s) per chain; these diagnostics need at least {_MIN_DRAWS}",
+            where, "run the chains longer (a few hundred draws per chain at the very least)"))
+    if not np.isfinite(arr.sum(dtype=float)):  # finite only if every term is; no temporary
+        _refuse_non_finite(arr, where)
     return arr, scalar
+
+
+def _refuse_non_finite(arr: np.ndarray, where: str) -> None:
+    bad = ~np.isfinite(arr)
+    if bad.any():  # (a finite array whose sum overflowed passes)
+        c, t, j = (int(i) for i in np.argwhere(bad)[0])
+        chains_hit = sorted({int(i) for i in np.nonzero(bad.any(axis=(1, 2)))[0]})
+        raise InputError(explain(
+            f"draws hold {int(bad.sum())} non-finite value(s) (first: {arr[c, t, j]} at chain "
+            f"{c}, draw {t}, parameter index {j}); no diagnostic is computed from them",
+            f"{where}, chain(s) {chains_hit}",
+            "drop the affected chains, or find why the sampler produced a non-finite "
+            "position (a transform overflowing, an unconstrained parameter)"))
 
 
 def _out(values: np.ndarray, scalar: bool):
     return float(values[0]) if scalar else values
 
 
-def _split(x: np.ndarray) -> np.ndarray:
-    """Cut every chain into its first and last halves: (2 chains, draws // 2, d)."""
-    half = x.shape[1] // 2
-    return np.concatenate([x[:, :half], x[:, x.shape[1] - half :]], axis=0)
-
-
-def _z_scale(x: np.ndarray) -> np.ndarray:
-    """Rank-normalise each parameter over all chains and draws (Vehtari et al. 2021, eq. 14)."""
-    chains, draws, dim = x.shape
-    rows = np.ascontiguousarray(x.reshape(chains * draws, dim).T)  # rank along a fast axis
-    ranks = stats.rankdata(rows, method="average", axis=1)
-    size = chains * draws
-    z = special.ndtri((ranks - 0.375) / (size + 0.25))
-    return z.T.reshape(chains, draws, dim)
-
-
-def _stuck(x: np.ndarray) -> np.ndarray:
-    """(d,) True where every chain is constant in that parameter."""
-    return np.all(np.ptp(x, axis=1) == 0, axis=0)
-
-
-def _blocks(x: np.ndarray):
-    chains, draws, dim = x.shape
-    width = max(1, _BLOCK_ELEMENTS // max(1, 2 * chains * draws))
-    for start in range(0, dim, width):
-        yield slice(start, min(dim, start + width))
-
-
-def _autocovariance(x: np.ndarray) -> np.ndarray:
-    """Biased autocovariance (divide by n) of each chain at every lag, by FFT."""
-    n = x.shape[1]
-    centred = x - x.mean(axis=1, keepdims=True)
-    size = next_fast_len(2 * n)
-    spectrum = np.fft.rfft(centred, n=size, axis=1)
-    acov = np.fft.irfft(spectrum * np.conjugate(spectrum), n=size, axis=1)[:, :n]
-    return acov / n
+def _each(arr: np.ndarray, statistic) -> np.ndarray:
+    """A per-parameter statistic of (chains, draws, d) draws, one parameter at a time."""
+    return np.array([statistic(arr[:, :, j]) for j in range(arr.shape[2])], dtype=float)
 
 
 # ---------------------------------------------------------------------------------------
-# the integrated autocorrelation time (the core of every ESS)
-# ---------------------------------------------------------------------------------------
-
-
-def _tau_block(x: np.ndarray) -> np.ndarray:
-    """Pooled Geyer initial-monotone-sequence estimate of tau for one parameter block."""
-    chains, n, dim = x.shape
-    acov = _autocovariance(x)
-    within = acov[:, 0, :].mean(axis=0) * n / (n - 1.0)  # W
-    var_plus = within * (n - 1.0) / n
-    if chains > 1:
-        var_plus = var_plus + np.var(x.mean(axis=1), axis=0, ddof=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rho = 1.0 - (within - acov.mean(axis=0)) / var_plus  # (n, dim)
-    rho[0] = 1.0
-    # pairs P_k = rho_{2k} + rho_{2k+1}, over the lags the reference code uses
-    last_odd = max(1, n - 3 + ((n - 3) % 2 == 0))  # smallest odd number >= n - 3
-    pairs_count = (last_odd - 1) // 2 + 1
-    even = rho[0 : 2 * pairs_count : 2]
-    odd = rho[1 : 2 * pairs_count : 2]
-    pairs = even + odd  # (K, dim)
-    nonpositive = pairs <= 0.0
-    found = nonpositive.any(axis=0)
-    first = np.where(found, np.argmax(nonpositive, axis=0), pairs_count)  # pairs kept
-    monotone = np.minimum.accumulate(pairs, axis=0)  # Geyer's initial monotone sequence
-    # without a nonpositive pair the sum stops at the last pair and adds the next even
-    # autocorrelation as the reference code does; with one pair only, keep that pair
-    first = np.where(found | (pairs_count == 1), first, pairs_count - 1)
-    kept = np.arange(pairs_count)[:, None] < first[None, :]
-    total = np.sum(np.where(kept, monotone, 0.0), axis=0)
-    tail_even = rho[np.minimum(2 * first, n - 1), np.arange(dim)]
-    extra = np.where(found, np.maximum(tail_even, 0.0), np.where(pairs_count == 1, 0.0, tail_even))
-    tau = -1.0 + 2.0 * total + extra
-    tau = np.maximum(tau, 1.0 / np.log10(chains * n))
-    return np.where(_stuck(x), np.inf, tau)
-
-
-def _tau(x: np.ndarray) -> np.ndarray:
-    out = np.empty(x.shape[2])
-    for block in _blocks(x):
-        out[block] = _tau_block(x[:, :, block])
-    return out
-
-
-def _ess(x: np.ndarray) -> np.ndarray:
-    """ESS = N / tau with N pooled draws; 0 where every chain is constant."""
-    size = x.shape[0] * x.shape[1]
-    with np.errstate(divide="ignore"):
-        return size / _tau(x)
-
-
-def _gelman_rubin(x: np.ndarray) -> np.ndarray:
-    """Potential scale reduction of (chains, n, d) draws (Vehtari et al. 2021, eq. 3-4)."""
-    n = x.shape[1]
-    within = np.var(x, axis=1, ddof=1).mean(axis=0)
-    between = n * np.var(x.mean(axis=1), axis=0, ddof=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        value = np.sqrt((between / within + n - 1.0) / n)
-    constant = _stuck(x)  # exact test: a float variance of equal values need not be 0
-    value = np.where(constant, np.where(between > 0, np.inf, np.nan), value)
-    return value
-
-
-# ---------------------------------------------------------------------------------------
-# public diagnostics
+# public diagnostics (each computed by fisherwalk.results.mcse, one parameter's slice at a time)
 # ---------------------------------------------------------------------------------------
 
 
@@ -258,13 +153,7 @@ def rhat(x) -> float | np.ndarray:
         all draws of a parameter are identical (see the module notes).
     """
     arr, scalar = _as_draws(x, "rhat(x)")
-    split = _split(arr)
-    bulk = _gelman_rubin(_z_scale(split))
-    folded_raw = np.abs(split - np.median(split.reshape(-1, split.shape[2]), axis=0))
-    folded = _gelman_rubin(_z_scale(folded_raw))
-    value = np.fmax(bulk, folded)  # a nan folded value (all folded draws equal) defers
-    value = np.where(np.ptp(arr, axis=(0, 1)) == 0, np.nan, value)
-    return _out(value, scalar)
+    return _out(_each(arr, mcse.split_rhat), scalar)
 
 
 def ess_bulk(x) -> float | np.ndarray:
@@ -274,13 +163,7 @@ def ess_bulk(x) -> float | np.ndarray:
     which every chain is constant; never above ``N log10 N`` for ``N`` pooled draws.
     """
     arr, scalar = _as_draws(x, "ess_bulk(x)")
-    return _out(_ess(_z_scale(_split(arr))), scalar)
-
-
-def _ess_quantile(arr: np.ndarray, prob: float) -> np.ndarray:
-    quantile = np.quantile(arr.reshape(-1, arr.shape[2]), prob, axis=0)
-    indicator = (arr <= quantile).astype(float)
-    return _ess(_split(indicator))
+    return _out(_each(arr, mcse.bulk_ess), scalar)
 
 
 def ess_tail(x) -> float | np.ndarray:
@@ -290,9 +173,7 @@ def ess_tail(x) -> float | np.ndarray:
     linear-interpolation (type 7) quantiles of all draws pooled.
     """
     arr, scalar = _as_draws(x, "ess_tail(x)")
-    low = _ess_quantile(arr, 0.05)
-    high = _ess_quantile(arr, 0.95)
-    return _out(np.minimum(low, high), scalar)
+    return _out(_each(arr, mcse.tail_ess), scalar)
 
 
 def ess_mean(x) -> float | np.ndarray:
@@ -302,7 +183,7 @@ def ess_mean(x) -> float | np.ndarray:
     Vehtari et al. (2021); this is the ESS behind :func:`mcse_mean`.
     """
     arr, scalar = _as_draws(x, "ess_mean(x)")
-    return _out(_ess(_split(arr)), scalar)
+    return _out(_each(arr, mcse.mean_ess), scalar)
 
 
 def integrated_autocorrelation_time(x) -> float | np.ndarray:
@@ -315,7 +196,7 @@ def integrated_autocorrelation_time(x) -> float | np.ndarray:
     Floored at ``1/log10 N`` like the ESS; ``inf`` when every chain is constant.
     """
     arr, scalar = _as_draws(x, "integrated_autocorrelation_time(x)")
-    return _out(_tau(arr), scalar)
+    return _out(_each(arr, mcse.autocorrelation_time), scalar)
 
 
 def autocorrelation(x, max_lag: int) -> np.ndarray:
@@ -331,22 +212,20 @@ def autocorrelation(x, max_lag: int) -> np.ndarray:
     arr, scalar = _as_draws(x, "autocorrelation(x, max_lag)")
     draws = arr.shape[1]
     if isinstance(max_lag, bool) or not isinstance(max_lag, int | np.integer):
-        raise InputError(
-            explain(f"max_lag is {max_lag!r}, not an integer", "autocorrelation(x, max_lag)",
-                    f"pass an integer from 0 to {draws - 1}")
-        )
+        raise InputError(explain(f"max_lag is {max_lag!r}, not an integer",
+                                 "autocorrelation(x, max_lag)",
+                                 f"pass an integer from 0 to {draws - 1}"))
     if not 0 <= max_lag < draws:
-        raise InputError(
-            explain(f"max_lag {max_lag} is outside 0..{draws - 1}", "autocorrelation(x, max_lag)",
-                    f"pass a lag smaller than the number of draws per chain ({draws})")
-        )
+        raise InputError(explain(f"max_lag {max_lag} is outside 0..{draws - 1}",
+                                 "autocorrelation(x, max_lag)", "pass a lag smaller than "
+                                 f"the number of draws per chain ({draws})"))
     out = np.empty((arr.shape[2], max_lag + 1))
-    for block in _blocks(arr):
-        acov = _autocovariance(arr[:, :, block])[:, : max_lag + 1]  # (chains, lags, k)
-        lag0 = acov[:, :1]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            acf = np.where(lag0 > 0, acov / lag0, 1.0)
-        out[block] = acf.mean(axis=0).T
+    for j in range(arr.shape[2]):
+        total = np.zeros(max_lag + 1)
+        for c in range(arr.shape[0]):  # one chain at a time: memory follows one chain
+            acov = mcse.autocovariance(np.asarray(arr[c, :, j], dtype=float))[: max_lag + 1]
+            total += acov / acov[0] if acov[0] > 0 else 1.0
+        out[j] = total / arr.shape[0]
     return out[0] if scalar else out
 
 
@@ -357,11 +236,29 @@ def mcse_mean(x) -> float | np.ndarray:
     (2021), Bayesian Analysis 16(2). ``inf`` when the ESS is 0 (a stuck parameter).
     """
     arr, scalar = _as_draws(x, "mcse_mean(x)")
-    sd = np.std(arr.reshape(-1, arr.shape[2]), axis=0, ddof=1)
-    ess = _ess(_split(arr))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        value = np.where(ess > 0, sd / np.sqrt(ess), np.inf)
-    return _out(value, scalar)
+    return _out(_each(arr, mcse.mean_mcse), scalar)
+
+
+def mcse_sd(x) -> float | np.ndarray:
+    """Monte Carlo standard error of the posterior sd: the delta method with the ESS of the
+    squared centred draws (Vehtari et al. 2021; see :mod:`fisherwalk.results.mcse`, which also
+    names the reference implementation it agrees with). ``inf`` when that ESS is 0."""
+    arr, scalar = _as_draws(x, "mcse_sd(x)")
+    return _out(_each(arr, mcse.sd_mcse), scalar)
+
+
+def mcse_quantile(x, prob: float) -> float | np.ndarray:
+    """Monte Carlo standard error of the posterior quantile at ``prob``: the ESS of the
+    indicator I(x <= q) and a Beta law mapped back through the order statistics (Vehtari
+    et al. 2021; see :mod:`fisherwalk.results.mcse`). ``inf`` when that ESS is 0."""
+    where = "mcse_quantile(x, prob)"
+    arr, scalar = _as_draws(x, where)
+    if isinstance(prob, bool) or not isinstance(prob, int | float | np.number) or not (
+        0.0 < float(prob) < 1.0
+    ):
+        raise InputError(explain(f"prob is {prob!r}", where,
+                                 "pass a probability strictly between 0 and 1, e.g. 0.05"))
+    return _out(_each(arr, lambda col: mcse.quantile_mcse(col, float(prob))), scalar)
 
 
 # ---------------------------------------------------------------------------------------
@@ -499,7 +396,14 @@ def whitened_jump(draws, cholesky) -> WhitenedJump:
     if not np.all(np.isfinite(factor)) or np.any(np.triu(factor, 1) != 0):
         raise InputError(explain("cholesky is not a finite lower-triangular matrix", where,
                                  "pass L = numpy.linalg.cholesky(H), not H or its inverse"))
-    steps = np.diff(arr, axis=1) @ factor  # rows are (Lᵀ Δ)ᵀ = Δᵀ L
-    squared = np.sum(steps**2, axis=2)  # (chains, draws - 1)
-    per_chain = squared.mean(axis=1)
+    count = arr.shape[1]
+    step = max(1, _JUMP_BLOCK // dim)
+    per_chain = np.empty(arr.shape[0])
+    for c in range(arr.shape[0]):  # blocks of steps: memory follows the block, not the draws
+        total = 0.0
+        for t in range(0, count - 1, step):
+            block = np.asarray(arr[c, t : t + step + 1], dtype=float)
+            jumps = np.diff(block, axis=0) @ factor  # rows (Lᵀ Δ)ᵀ = Δᵀ L
+            total += float(np.sum(jumps**2))
+        per_chain[c] = total / (count - 1)
     return WhitenedJump(mean=float(per_chain.mean()), per_chain=per_chain)

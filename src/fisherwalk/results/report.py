@@ -1,36 +1,34 @@
 """The summary table a person reads after a walk.
 
 :func:`summarize` turns draws ``(chains, draws, d)`` and the sampler's own figures
-(acceptance, expected squared jump distance, faults) into a :class:`Summary`:
-per-parameter estimates and diagnostics, a header, and plain-language warnings that
-say what is wrong, where, and what to do. ``str(summary)`` is the printed table;
-``summary.to_dict()`` is its JSON-ready content.
+(acceptance, scale, expected squared jump distance, faults, seconds, proposal shape)
+into a :class:`Summary`: per-parameter estimates with their Monte Carlo standard errors,
+diagnostics, a header, and plain-language warnings (:mod:`fisherwalk.results.alerts`) that say
+what is wrong, where, and what to do, quoting the numbers as the header and the table
+show them. ``str(summary)`` is the printed table; ``summary.to_dict()`` is its
+JSON-ready content.
 
-Thresholds: R-hat above 1.01 and bulk or tail ESS below 400 follow Vehtari, Gelman,
-Simpson, Carpenter & Bürkner (2021), "Rank-normalization, folding, and localization:
-an improved R-hat for assessing convergence of MCMC", Bayesian Analysis 16(2). The
-stuck-chain and separated-chain rules are fisherwalk's own (common practice, no
-published source); they are spelled out in :func:`summarize`.
+Memory: the statistics are computed one parameter at a time (:mod:`fisherwalk.results.mcse`)
+and the correlation matrix in blocks of draws, so the summary needs a small multiple of
+one parameter's draws beyond the draws themselves; its work grows linearly with the
+number of chains.
 """
 
 from __future__ import annotations
 
 import math
-import textwrap
 from typing import NamedTuple
 
 import numpy as np
 
 from ..errors import InputError, explain
-from . import diagnostics
+from . import alerts, diagnostics, mcse
+from .table import interval_probabilities
+from .table import render as _render
 
 __all__ = ["Summary", "summarize"]
 
-_MAX_LISTED = 8  # parameters named in one warning before "and N more"
-_STUCK_ACCEPTANCE = 0.01  # absolute floor of a moving chain's acceptance
-_STUCK_RATIO = 0.2  # ... and the fraction of the other chains' median acceptance
-_APART_NOISE = 5.0  # separated chain: difference beyond 5 Monte Carlo standard errors
-_APART_SPREAD = 2.0  # ... and beyond 2 within-chain standard deviations of the others
+_BLOCK = 1 << 17  # numbers per block of draws when the correlation matrix is accumulated
 
 
 class Summary(NamedTuple):
@@ -39,23 +37,33 @@ class Summary(NamedTuple):
     names: tuple[str, ...]
     mean: np.ndarray  # (d,) every array below is per parameter
     sd: np.ndarray
-    mcse: np.ndarray  # Monte Carlo standard error of the mean
-    q05: np.ndarray
-    q50: np.ndarray
-    q95: np.ndarray
+    mcse: np.ndarray  # Monte Carlo standard error of the mean (Vehtari et al. 2021)
+    mcse_sd: np.ndarray
+    interval: float  # probability of the central interval [lower, upper]
+    lower: np.ndarray  # quantile (1 - interval) / 2
+    median: np.ndarray
+    upper: np.ndarray  # quantile (1 + interval) / 2
+    mcse_lower: np.ndarray
+    mcse_median: np.ndarray
+    mcse_upper: np.ndarray
     ess_bulk: np.ndarray
     ess_tail: np.ndarray
+    ess_bulk_per_second: np.ndarray | None  # bulk ESS over the run's seconds
     rhat: np.ndarray
     chains: int
     draws: int  # per chain
     used_chains: tuple[int, ...]  # chains the statistics are computed from
     acceptance: np.ndarray | None  # (chains,) realised acceptance per chain
     acceptance_pooled: float | None
-    target_acceptance: float | None
+    acceptance_mcse: float | None  # Monte Carlo error of the pooled acceptance
+    target_acceptance: float | None  # what the acceptance should be at the scale used
+    scale: float | None  # the scale l used
+    gaussian_acceptance: float | None  # the Gaussian picture's acceptance at that scale
     predicted_jump: float | None  # ESJD per step, whitened units (sum over parameters)
     realised_jump: float | None
     realised_jump_per_chain: np.ndarray | None
     faults: np.ndarray | None  # (chains,) proposals rejected for a NaN/+inf log density
+    seconds: float | None  # wall time of the run
     max_rhat: float  # inf if any R-hat is not finite
     min_ess_bulk: float
     min_ess_tail: float
@@ -74,19 +82,28 @@ class Summary(NamedTuple):
     def to_dict(self) -> dict:
         """Plain JSON-ready content; non-finite numbers become ``None`` (the warnings
         say why)."""
-        columns = ("mean", "sd", "mcse", "q05", "q50", "q95", "ess_bulk", "ess_tail", "rhat")
+        columns = ("mean", "sd", "mcse", "mcse_sd", "lower", "median", "upper",
+                   "mcse_lower", "mcse_median", "mcse_upper", "ess_bulk", "ess_tail",
+                   "ess_bulk_per_second", "rhat")
         rows = [
-            {"name": name, **{c: _plain(getattr(self, c)[j]) for c in columns}}
+            {"name": name, **{c: None if getattr(self, c) is None
+                              else _plain(getattr(self, c)[j]) for c in columns}}
             for j, name in enumerate(self.names)
         ]
+        low, high = interval_probabilities(self.interval)
         return {
             "chains": self.chains,
             "draws": self.draws,
             "used_chains": list(self.used_chains),
+            "interval": {"probability": self.interval, "lower": low, "upper": high},
+            "seconds": _plain(self.seconds),
             "acceptance": {
                 "per_chain": _plain_list(self.acceptance),
                 "pooled": _plain(self.acceptance_pooled),
+                "mcse": _plain(self.acceptance_mcse),
                 "target": _plain(self.target_acceptance),
+                "scale": _plain(self.scale),
+                "gaussian": _plain(self.gaussian_acceptance),
             },
             "jump": {
                 "units": "squared whitened distance per step",
@@ -152,17 +169,85 @@ def _optional_float(value, label: str):
     return value
 
 
+def _interval(value) -> float:
+    try:
+        interval = float(value)
+    except (TypeError, ValueError):
+        interval = float("nan")
+    if isinstance(value, bool) or not 0.0 < interval < 1.0:
+        raise InputError(explain(f"interval={value!r} is not a probability strictly between "
+                                 "0 and 1", "summarize(..., interval=...)",
+                                 "pass the central interval's probability, e.g. 0.9 for "
+                                 "the 5% and 95% quantiles"))
+    return interval
+
+
+def _steps(value, chains: int):
+    if value is None:
+        return None
+    arr = np.asarray(value, dtype=float)
+    if arr.ndim != 2 or arr.shape[0] != chains or arr.shape[1] < 1 or not np.all(
+        np.isfinite(arr)
+    ):
+        raise InputError(explain(f"acceptance_steps has shape {arr.shape}, or holds non-finite "
+                                 "values", "summarize(..., acceptance_steps=...)",
+                                 f"pass the acceptance of each kept draw, shape ({chains}, "
+                                 "draws), finite"))
+    return arr
+
+
+def _acceptance_error(steps: np.ndarray) -> float:
+    """MCSE of the pooled acceptance: sd / sqrt(ESS of the split series), the ESS floored
+    at 1 so that series constant in every chain count as one draw."""
+    if steps.shape[1] < 4:
+        return float("nan")
+    ess = float(diagnostics.ess_mean(steps))
+    return float(np.std(steps, ddof=1) / math.sqrt(max(ess, 1.0)))
+
+
+def _correlation(draws: np.ndarray, used, mean: np.ndarray) -> np.ndarray:
+    """Correlation matrix of the used chains' draws pooled, accumulated in blocks."""
+    dim = draws.shape[2]
+    step = max(1, _BLOCK // dim)
+    total = np.zeros((dim, dim))
+    for c in used:
+        for t in range(0, draws.shape[1], step):
+            block = np.asarray(draws[c, t : t + step], dtype=float) - mean
+            total += block.T @ block
+    sd = np.sqrt(np.diag(total))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return total / np.outer(sd, sd)  # nan for a constant parameter: never reported
+
+
+def _proposal_correlation(shape, dim: int) -> np.ndarray:
+    factor = np.asarray(shape, dtype=float)
+    if factor.shape != (dim, dim) or not np.all(np.isfinite(factor)):
+        raise InputError(explain(f"proposal_shape has shape {factor.shape} or non-finite "
+                                 "entries", "summarize(..., proposal_shape=...)",
+                                 f"pass the walker's ({dim}, {dim}) shape S (tuning.shape)"))
+    cov = factor @ factor.T
+    sd = np.sqrt(np.diag(cov))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return cov / np.outer(sd, sd)
+
+
 def summarize(
     flat_draws,
     names,
     *,
+    interval: float = 0.9,
     target_acceptance: float | None = None,
+    scale: float | None = None,
+    gaussian_acceptance: float | None = None,
     acceptance=None,
+    acceptance_steps=None,
     predicted_jump: float | None = None,
     realised_jump=None,
     faults=None,
     header_notes=(),
     cholesky=None,
+    proposal_shape=None,
+    seconds: float | None = None,
     rhat_limit: float = 1.01,
     ess_limit: float = 400.0,
 ) -> Summary:
@@ -170,36 +255,42 @@ def summarize(
 
     Parameters
     ----------
-    flat_draws : array (chains, draws, d), or (chains, draws) for one parameter.
+    flat_draws : array (chains, draws, d), or (chains, draws) for one parameter. Any
+        floating dtype; it is read one parameter at a time, never copied whole (unless
+        some chains hold non-finite draws and are left out).
     names : d parameter names in ravelled order ("beta[3]", "sigma").
-    target_acceptance : the acceptance rate the scaling theory predicts.
+    interval : probability of the central interval shown beside the median (0.9: the
+        5% and 95% quantiles).
+    target_acceptance : the acceptance expected at the scale used: the Gaussian
+        picture's prediction at that scale, or what the warm-up adapted the scale to.
+    scale : the scale l used; shown with the target.
+    gaussian_acceptance : the Gaussian picture's acceptance at ``scale``; when it differs
+        from the target (the warm-up moved the scale) both are shown.
     acceptance : (chains,) realised acceptance per chain.
+    acceptance_steps : (chains, draws) acceptance of each kept draw (the fraction of its
+        steps accepted); gives ``acceptance`` when that is None, and the Monte Carlo error
+        of the pooled acceptance behind the acceptance warning.
     predicted_jump, realised_jump : expected squared jump distance per step in whitened
         units (|Lᵀ Δθ|², summed over parameters); ``realised_jump`` may be per chain.
         When it is None and ``cholesky`` (L with L Lᵀ = H) is given, it is measured
         from the draws with :func:`fisherwalk.results.diagnostics.whitened_jump`.
     faults : (chains,) counts of proposals rejected for a NaN or +inf log density.
     header_notes : extra lines for the header (e.g. the model and the seed).
+    proposal_shape : the walker's (d, d) shape S; the proposal's correlations come from
+        S Sᵀ and feed the correlation warning (none without it).
+    seconds : wall time of the run: gives the bulk ESS per second.
     rhat_limit, ess_limit : warning thresholds (Vehtari et al. 2021 recommend 1.01, 400).
 
-    Warning rules
-    -------------
-    * R-hat above ``rhat_limit`` or not finite; bulk or tail ESS below ``ess_limit``
-      (with the draws per chain that would roughly reach it at the current ESS per draw).
-    * Stuck chain: its acceptance is below 1%, or below a fifth of the median
-      acceptance of the other chains, or its draws never change.
-    * Separated chain (a second mode, or chains that have not mixed): in some parameter
-      the chain's mean differs from the mean of all other chains' draws by more than
-      5 Monte Carlo standard errors of that difference (each side's MCSE from its own
-      ESS, so chance alone almost never triggers it) *and* by more than 2 within-chain
-      standard deviations of the other chains (so the gap is large on the posterior's
-      own scale, not merely detectable).
-    * Faults: proposals with a NaN or +inf log density, per chain.
-    * Chains holding non-finite draws are left out of every statistic and named.
+    Warnings: see :mod:`fisherwalk.results.alerts` for each rule (R-hat, ESS, stuck chain,
+    separated chain, faults, acceptance against the header's target, correlated pairs
+    the proposal does not follow). Chains holding non-finite draws are left out of
+    every statistic and named.
     """
     where = "summarize(flat_draws, names)"
     try:
-        draws = np.asarray(flat_draws, dtype=float)
+        draws = np.asarray(flat_draws)
+        if draws.dtype.kind != "f":
+            draws = draws.astype(float)
     except (TypeError, ValueError) as err:
         raise InputError(explain(f"flat_draws cannot be read as floats ({err})", where,
                                  "pass a numpy array (chains, draws, d)")) from None
@@ -214,13 +305,29 @@ def summarize(
         raise InputError(explain(f"{len(names)} names for {dim} parameters (or a name is not "
                                  "a string)", where, "pass one string per scalar parameter, "
                                  "in ravelled order"))
+    if count < 4:
+        raise InputError(explain(f"only {count} draw(s) per chain; the diagnostics need at "
+                                 "least 4", where, "run the chains longer (a few hundred "
+                                 "draws per chain at the very least)"))
+    interval = _interval(interval)
+    steps = _steps(acceptance_steps, chains)
+    if acceptance is None and steps is not None:
+        acceptance = steps.mean(axis=1)
     acceptance = _per_chain(acceptance, chains, "acceptance")
     faults = _per_chain(faults, chains, "faults", integer=True)
     target_acceptance = _optional_float(target_acceptance, "target_acceptance")
+    scale = _optional_float(scale, "scale")
+    gaussian_acceptance = _optional_float(gaussian_acceptance, "gaussian_acceptance")
     predicted_jump = _optional_float(predicted_jump, "predicted_jump")
+    seconds = _optional_float(seconds, "seconds")
+    if seconds is not None and seconds <= 0:
+        raise InputError(explain(f"seconds is {seconds}", "summarize(..., seconds=...)",
+                                 "pass the run's wall time in seconds (> 0) or None"))
 
     warnings: list[str] = []
-    finite_chain = np.all(np.isfinite(draws), axis=(1, 2))
+    finite_chain = np.ones(chains, dtype=bool)
+    for j in range(dim):  # one parameter at a time: a boolean of one slice, not of all
+        finite_chain &= np.isfinite(draws[:, :, j]).all(axis=1)
     used = tuple(int(c) for c in np.nonzero(finite_chain)[0])
     if not used:
         raise InputError(explain("every chain holds NaN or inf draws", where,
@@ -228,24 +335,24 @@ def summarize(
                                  "check the model's transforms"))
     if len(used) < chains:
         bad = [c for c in range(chains) if c not in used]
-        warnings.append(_warn(
-            f"Chain(s) {_join(bad)} hold NaN or inf draws and were left out of every "
-            "statistic below.",
-            "The sampler should never produce a non-finite position; check the model's "
-            "transforms and the starting points of those chains."))
-    kept = draws[list(used)]
+        warnings.append(alerts.excluded_warning(bad))
+    pick = slice(None) if len(used) == chains else np.array(used)
+    low, high = interval_probabilities(interval)
+    stats = [mcse.column_statistics(draws[pick, :, j], (low, 0.5, high)) for j in range(dim)]
 
-    mean = kept.mean(axis=(0, 1))
-    sd = kept.reshape(-1, dim).std(axis=0, ddof=1)
-    q05, q50, q95 = np.quantile(kept.reshape(-1, dim), [0.05, 0.5, 0.95], axis=0)
-    ess_b = np.atleast_1d(diagnostics.ess_bulk(kept))
-    ess_t = np.atleast_1d(diagnostics.ess_tail(kept))
-    rh = np.atleast_1d(diagnostics.rhat(kept))
-    mcse = np.atleast_1d(diagnostics.mcse_mean(kept))
+    def column(field):
+        return np.array([getattr(st, field) for st in stats], dtype=float)
+
+    quantiles = np.array([st.quantiles for st in stats]).reshape(dim, 3)
+    errors = np.array([st.mcse_quantiles for st in stats]).reshape(dim, 3)
+    per_chain = {f: np.stack([getattr(st, f) for st in stats], axis=1)
+                 for f in ("chain_means", "chain_sds", "chain_mcse", "chain_moves")}
+    mean, ess_b, ess_t, rh = column("mean"), column("ess_bulk"), column("ess_tail"), column("rhat")
 
     jump_per_chain = None
     if realised_jump is None and cholesky is not None:
-        measured = diagnostics.whitened_jump(kept, cholesky)
+        k = np.shape(cholesky)[0]  # the parameters; derived quantities come after them
+        measured = diagnostics.whitened_jump(draws[pick, :, :k], cholesky)
         realised = measured.mean
         jump_per_chain = np.full(chains, np.nan)
         jump_per_chain[list(used)] = measured.per_chain
@@ -255,275 +362,47 @@ def summarize(
     else:
         realised = _optional_float(realised_jump, "realised_jump")
 
-    warnings += _rhat_warnings(names, rh, rhat_limit)
-    warnings += _ess_warnings(names, ess_b, ess_t, ess_limit, kept.shape[0], count)
-    warnings += _stuck_warnings(draws, used, acceptance)
-    warnings += _apart_warnings(names, kept, used)
-    if faults is not None and np.any(faults > 0):
-        hit = [f"chain {c}: {int(faults[c])}" for c in range(chains) if faults[c] > 0]
-        warnings.append(_warn(
-            f"{int(faults.sum())} proposal(s) had a NaN or +inf log density and were "
-            f"rejected ({', '.join(hit)}).",
-            "a NaN usually means the model is evaluated outside its domain (a negative "
-            "scale, the log of a negative number): sample such parameters on an "
-            "unconstrained scale (e.g. log sigma) or guard the log density; +inf means the "
-            "density is unbounded there."))
+    frozen = ~per_chain["chain_moves"].any(axis=1)  # over the used chains
+    warnings += alerts.rhat_warnings(names, rh, rhat_limit)
+    warnings += alerts.ess_warnings(names, ess_b, ess_t, ess_limit, len(used), count)
+    warnings += alerts.stuck_warnings(chains, {used[i] for i in np.nonzero(frozen)[0]},
+                                      acceptance)
+    warnings += alerts.separated_chains(names, used, per_chain["chain_means"],
+                                        per_chain["chain_sds"], per_chain["chain_mcse"],
+                                        frozen)
+    warnings += alerts.fault_warnings(faults)
+    pooled = None if acceptance is None else float(acceptance.mean())
+    acceptance_mcse = None if steps is None else _acceptance_error(steps)
+    if pooled is not None and acceptance_mcse is not None and target_acceptance is not None:
+        text = alerts.acceptance_warning(pooled, acceptance_mcse, target_acceptance,
+                                         steps.shape[1], scale, gaussian_acceptance)
+        warnings += [text] if text else []
+    k = 0 if proposal_shape is None else np.shape(proposal_shape)[0]  # parameters only
+    if k > dim:
+        raise InputError(explain(f"proposal_shape is {k} x {k} for {dim} columns",
+                                 "summarize(..., proposal_shape=...)",
+                                 "pass the walker's (d, d) shape S (tuning.shape); derived "
+                                 "columns come after the d parameters"))
+    if k > 1:
+        pairs = alerts.correlated_pairs(_correlation(draws[:, :, :k], used, mean[:k]),
+                                        _proposal_correlation(proposal_shape, k))
+        text = alerts.correlation_warning(names[:k], pairs)
+        warnings += [text] if text else []
 
     return Summary(
-        names=names, mean=mean, sd=sd, mcse=mcse, q05=q05, q50=q50, q95=q95,
-        ess_bulk=ess_b, ess_tail=ess_t, rhat=rh, chains=chains, draws=count,
-        used_chains=used, acceptance=acceptance,
-        acceptance_pooled=None if acceptance is None else float(acceptance.mean()),
-        target_acceptance=target_acceptance, predicted_jump=predicted_jump,
+        names=names, mean=mean, sd=column("sd"), mcse=column("mcse_mean"),
+        mcse_sd=column("mcse_sd"), interval=interval, lower=quantiles[:, 0],
+        median=quantiles[:, 1], upper=quantiles[:, 2], mcse_lower=errors[:, 0],
+        mcse_median=errors[:, 1], mcse_upper=errors[:, 2], ess_bulk=ess_b, ess_tail=ess_t,
+        ess_bulk_per_second=None if seconds is None else ess_b / seconds,
+        rhat=rh, chains=chains, draws=count, used_chains=used, acceptance=acceptance,
+        acceptance_pooled=pooled, acceptance_mcse=acceptance_mcse,
+        target_acceptance=target_acceptance, scale=scale,
+        gaussian_acceptance=gaussian_acceptance, predicted_jump=predicted_jump,
         realised_jump=realised, realised_jump_per_chain=jump_per_chain, faults=faults,
+        seconds=seconds,
         max_rhat=float(np.max(rh)) if np.all(np.isfinite(rh)) else float("inf"),
         min_ess_bulk=float(np.min(ess_b)), min_ess_tail=float(np.min(ess_t)),
         warnings=tuple(warnings), notes=tuple(str(n) for n in header_notes),
         rhat_limit=float(rhat_limit), ess_limit=float(ess_limit),
     )
-
-
-# ---------------------------------------------------------------------------------------
-# warning rules
-# ---------------------------------------------------------------------------------------
-
-
-def _warn(what: str, todo: str) -> str:
-    return f"{what} What to do: {todo}"
-
-
-def _join(items) -> str:
-    items = [str(i) for i in items]
-    if len(items) > _MAX_LISTED:
-        return ", ".join(items[:_MAX_LISTED]) + f" and {len(items) - _MAX_LISTED} more"
-    return ", ".join(items)
-
-
-def _rhat_warnings(names, rh, limit) -> list[str]:
-    out = []
-    undefined = [names[j] for j in np.nonzero(~np.isfinite(rh))[0]]
-    if undefined:
-        out.append(_warn(
-            f"R-hat is undefined or infinite for {_join(undefined)}: every chain stayed "
-            "constant in these parameters.",
-            "the chains did not move; see the acceptance rates and restart or refine() "
-            "the walker before trusting any estimate."))
-    high = np.nonzero(np.isfinite(rh) & (rh > limit))[0]
-    if high.size:
-        order = high[np.argsort(-rh[high])]
-        listed = [f"{names[j]} ({rh[j]:.3f})" for j in order]
-        out.append(_warn(
-            f"R-hat above {limit} for {high.size} parameter(s): {_join(listed)}. The chains "
-            "disagree about these parameters.",
-            "run longer; if R-hat stays high, look at the per-chain traces for a stuck or "
-            "separated chain (see the other warnings)."))
-    return out
-
-
-def _ess_warnings(names, ess_b, ess_t, limit, chains, count) -> list[str]:
-    worst = np.minimum(ess_b, ess_t)
-    low = np.nonzero(worst < limit)[0]
-    if not low.size:
-        return []
-    order = low[np.argsort(worst[low])]
-    listed = [f"{names[j]} ({worst[j]:.0f})" for j in order]
-    lowest = float(worst[order[0]])
-    what = (f"Bulk or tail ESS below {limit:.0f} for {low.size} parameter(s): "
-            f"{_join(listed)}.")
-    if lowest <= 0:
-        return [_warn(what + " An ESS of 0 means a parameter never moved in any chain.",
-                      "running longer will not help until the chains move: check the "
-                      "acceptance rates, and whether the proposal has any spread in the "
-                      "direction of that parameter (its Fisher information).")]
-    needed = math.ceil(count * limit / lowest)
-    return [_warn(
-        what + f" At the current {lowest / (chains * count):.3g} effective draws per draw, "
-        f"reaching {limit:.0f} needs roughly {needed} draws per chain (now {count}).",
-        f"run about {needed} draws per chain (or proportionally more chains).")]
-
-
-def _stuck_warnings(draws, used, acceptance) -> list[str]:
-    chains = draws.shape[0]
-    frozen = [c for c in used if np.all(np.ptp(draws[c], axis=0) == 0)]
-    low = []
-    if acceptance is not None:
-        for c in range(chains):
-            others = np.delete(acceptance, c)
-            reference = float(np.median(others)) if others.size else None
-            if acceptance[c] < _STUCK_ACCEPTANCE or (
-                reference is not None and acceptance[c] < _STUCK_RATIO * reference
-            ):
-                low.append(c)
-    out = []
-    for c in sorted(set(frozen) | set(low)):
-        detail = []
-        if acceptance is not None:
-            others = np.delete(acceptance, c)
-            text = f"acceptance {acceptance[c]:.1%}"
-            if others.size:
-                text += f" against a median of {np.median(others):.1%} for the other chains"
-            detail.append(text)
-        if c in frozen:
-            detail.append("its draws never change")
-        out.append(_warn(
-            f"Chain {c} is stuck: {'; '.join(detail)}. Its draws describe little more "
-            "than its starting point.",
-            "check where it started; a chain stuck far out in the tails or in a narrow "
-            "region needs a better start or a reshaped proposal (refine()); drop it only if you "
-            "understand why it stuck."))
-    return out
-
-
-def _apart_warnings(names, kept, used) -> list[str]:
-    chains = kept.shape[0]
-    if chains < 2:
-        return []
-    out = []
-    for i, c in enumerate(used):
-        own = kept[i]
-        others = np.delete(kept, i, axis=0)
-        if np.all(np.ptp(own, axis=0) == 0):
-            continue  # a frozen chain is reported as stuck
-        diff = own.mean(axis=0) - others.mean(axis=(0, 1))
-        noise = np.sqrt(np.atleast_1d(diagnostics.mcse_mean(own[None])) ** 2
-                        + np.atleast_1d(diagnostics.mcse_mean(others)) ** 2)
-        spread = np.sqrt(np.mean(np.var(others, axis=1, ddof=1), axis=0))
-        apart = (np.abs(diff) > _APART_NOISE * noise) & (np.abs(diff) > _APART_SPREAD * spread)
-        hit = np.nonzero(apart)[0]
-        if not hit.size:
-            continue
-        with np.errstate(divide="ignore"):
-            gap = np.abs(diff) / spread
-        order = hit[np.argsort(-gap[hit])]
-        listed = [f"{names[j]} ({gap[j]:.1f} sd away)" for j in order]
-        out.append(_warn(
-            f"Chain {c} sits apart from the other chains in {hit.size} parameter(s): "
-            f"{_join(listed)}, with sd the within-chain standard deviation of the other "
-            "chains. This looks like a second mode, or chains that have not mixed yet.",
-            "plot the traces of these parameters; if the posterior has several modes, "
-            "random-walk Metropolis will not move between them: report them separately "
-            "or reparameterise; otherwise run longer."))
-    return out
-
-
-# ---------------------------------------------------------------------------------------
-# the printed table
-# ---------------------------------------------------------------------------------------
-
-
-def _num(value: float, decimals: int) -> str:
-    if not math.isfinite(value):
-        return str(value)
-    if value != 0 and (abs(value) >= 1e7 or abs(value) < 10.0 ** (-decimals) / 2):
-        return f"{value:.3e}"
-    return f"{value:.{decimals}f}"
-
-
-def _decimals(sd: float, mean: float) -> int:
-    """Decimals that show the sd with three significant digits (0 to 8)."""
-    scale = sd if math.isfinite(sd) and sd > 0 else abs(mean)
-    if not math.isfinite(scale) or scale == 0:
-        return 3
-    return int(min(8, max(0, 2 - math.floor(math.log10(scale)))))
-
-
-def _two_digits(value: float) -> str:
-    if not math.isfinite(value):
-        return str(value)
-    if value == 0:
-        return "0"
-    return _num(value, int(min(10, max(0, 1 - math.floor(math.log10(value))))))
-
-
-def _row(s: Summary, j: int, rhat_limit: float, ess_limit: float) -> list[str]:
-    places = _decimals(float(s.sd[j]), float(s.mean[j]))
-    flags = []
-    if not (np.isfinite(s.rhat[j]) and s.rhat[j] <= rhat_limit):
-        flags.append("R-hat")
-    if min(s.ess_bulk[j], s.ess_tail[j]) < ess_limit:
-        flags.append("ESS")
-    return [
-        s.names[j],
-        _num(float(s.mean[j]), places), _num(float(s.sd[j]), places),
-        _two_digits(float(s.mcse[j])),
-        _num(float(s.q05[j]), places), _num(float(s.q50[j]), places),
-        _num(float(s.q95[j]), places),
-        f"{s.ess_bulk[j]:.0f}", f"{s.ess_tail[j]:.0f}",
-        "nan" if np.isnan(s.rhat[j]) else f"{s.rhat[j]:.3f}",
-        " ".join(flags) or "-",
-    ]
-
-
-def _header(s: Summary) -> list[str]:
-    lines = ["fisherwalk summary"]
-    total = s.chains * s.draws
-    text = f"{s.chains} {'chain' if s.chains == 1 else 'chains'} x {s.draws} draws = {total}"
-    if len(s.used_chains) < s.chains:
-        text += f"; statistics from chains {_join(s.used_chains)} only"
-    lines.append(f"  draws       {text}")
-    if s.acceptance is not None:
-        acc = s.acceptance
-        if acc.size <= 8:
-            each = "per chain " + " ".join(f"{a:.3f}" for a in acc)
-        else:
-            each = (f"per chain min {acc.min():.3f}, median {np.median(acc):.3f}, "
-                    f"max {acc.max():.3f}")
-        text = f"realised {s.acceptance_pooled:.3f} ({each})"
-        if s.target_acceptance is not None:
-            text += f" | target {s.target_acceptance:.3f}"
-        lines.append(f"  acceptance  {text}")
-    elif s.target_acceptance is not None:
-        lines.append(f"  acceptance  target {s.target_acceptance:.3f}")
-    if s.realised_jump is not None or s.predicted_jump is not None:
-        dim = len(s.names)
-        pairs = [(label, value) for label, value in
-                 (("realised", s.realised_jump), ("predicted", s.predicted_jump))
-                 if value is not None]
-        total = " | ".join(f"{label} {value:.3g}" for label, value in pairs)
-        each = " | ".join(f"{value / dim:.3g}" for _, value in pairs)
-        lines.append(f"  jump        {total}  (squared step in whitened units, "
-                     f"per parameter {each})")
-    if s.faults is not None:
-        total_faults = int(s.faults.sum())
-        lines.append("  faults      " + ("none" if total_faults == 0 else
-                     f"{total_faults} NaN/+inf proposal(s) rejected"))
-    for note in s.notes:
-        lines.append(f"  note        {note}")
-    return lines
-
-
-_GROUPS = (("", 1), ("estimate", 3), ("quantiles", 3), ("mixing", 4))
-_TITLES = ("parameter", "mean", "sd", "MCSE", "5%", "50%", "95%", "ESS bulk", "ESS tail",
-           "R-hat", "check")
-
-
-def _render(s: Summary) -> str:
-    rhat_limit, ess_limit = s.rhat_limit, s.ess_limit
-    rows = [_row(s, j, rhat_limit, ess_limit) for j in range(len(s.names))]
-    widths = [max(len(t), *(len(r[i]) for r in rows)) for i, t in enumerate(_TITLES)]
-    gap = "  "
-
-    def line(cells):
-        first = cells[0].ljust(widths[0])
-        rest = [c.rjust(w) for c, w in zip(cells[1:-1], widths[1:-1], strict=True)]
-        return "  " + gap.join([first, *rest, cells[-1].ljust(widths[-1])]).rstrip()
-
-    spans, col = [], 0
-    for title, size in _GROUPS:
-        width = sum(widths[col : col + size]) + len(gap) * (size - 1)
-        spans.append(f" {title} ".center(width, "-") if title else " " * width)
-        col += size
-    out = _header(s)
-    out += ["", "  " + gap.join(spans), line(list(_TITLES))]
-    out += [line(r) for r in rows]
-    out.append("")
-    if s.warnings:
-        out.append(f"  {len(s.warnings)} warning(s)")
-        for k, text in enumerate(s.warnings, 1):
-            body = textwrap.wrap(text, width=92)
-            out.append(f"  [{k}] {body[0]}")
-            out += [f"      {more}" for more in body[1:]]
-    else:
-        out.append(f"  no warnings (R-hat <= {rhat_limit}, ESS >= {ess_limit:.0f}, "
-                   "no stuck or separated chain)")
-    return "\n".join(out)

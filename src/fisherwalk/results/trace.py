@@ -13,7 +13,6 @@ import jax
 import numpy as np
 
 from ..base.pytrees import parameter_names, ravel_batch
-from .diagnostics import ess_mean, whitened_jump
 from .report import summarize
 
 __all__ = ["Trace", "derived_names"]
@@ -59,27 +58,40 @@ class Trace(NamedTuple):
 
         return to_arviz(self)
 
-    def summary(self):
+    def summary(self, interval: float = 0.9):
         """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it).
-        Derived quantities (``walk(derived=...)``) get rows after the parameters."""
+
+        ``interval`` is the probability of the central interval shown beside the median
+        (0.9: the 5% and 95% quantiles). The acceptance aimed for, the predicted jump and
+        the Gaussian picture's acceptance are those of the scale actually used. Derived
+        quantities (``walk(derived=...)``) get rows after the parameters.
+        """
         tuning = self.walker.tuning
-        realised = None
-        if self.thin == 1 and self.flat.shape[1] > 1:
-            realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).mean
+        warm = getattr(self.walker.report, "warmup", None)
+        # What the sampler aimed for: the warm-up's target when it adapted the scale,
+        # else the Gaussian picture's prediction at the scale used.
+        aim = tuning.target_acceptance if warm is None else warm.target_acceptance
+        notes = ()
+        if self.thin > 1:
+            notes = (f"realised jump not measured: the trace keeps one state in {self.thin} "
+                     "steps, and the jump is per step",)
         flat, names = self.columns()
-        summary = summarize(
+        measured = self.thin == 1 and self.flat.shape[1] > 1
+        return summarize(
             flat,
             names,
-            target_acceptance=tuning.target_acceptance,
-            acceptance=self.accepted.mean(axis=1),
+            interval=interval,
+            target_acceptance=aim,
+            scale=tuning.scale,
+            gaussian_acceptance=tuning.target_acceptance,
+            acceptance_steps=self.accepted,
             predicted_jump=tuning.predicted_jump,
-            realised_jump=realised,
+            cholesky=np.asarray(tuning.whitening) if measured else None,
             faults=self.faults.sum(axis=1),
+            header_notes=notes,
+            proposal_shape=np.asarray(tuning.shape),
+            seconds=self.seconds if self.seconds > 0 else None,
         )
-        mismatch = _acceptance_mismatch(self.acceptance_rate, tuning)
-        if mismatch:
-            summary = summary._replace(warnings=summary.warnings + (mismatch,))
-        return summary
 
 
 def derived_names(derived: Any) -> tuple[str, ...]:
@@ -90,24 +102,3 @@ def derived_names(derived: Any) -> tuple[str, ...]:
     if not jax.tree_util.tree_flatten_with_path(derived)[0][0][0]:  # a bare array
         return parameter_names({"derived": single})
     return parameter_names(single)
-
-
-def _acceptance_mismatch(rates: np.ndarray, tuning) -> str | None:
-    """A warning when the realised acceptance departs from what the Gaussian picture
-    predicts at the walker's scale and shape, beyond 4 Monte Carlo standard errors (ESS of
-    the per-step acceptance probabilities) plus 0.005."""
-    if rates.shape[1] < 20:
-        return None
-    predicted = float(tuning.target_acceptance)
-    realised = float(rates.mean())
-    mcse = float(rates.std() / np.sqrt(max(float(ess_mean(rates)), 1.0)))
-    if abs(realised - predicted) <= 4.0 * mcse + 0.005:
-        return None
-    return (
-        f"The realised acceptance {realised:.3f} departs from the {predicted:.3f} that the "
-        f"Gaussian picture N(mode, H⁻¹) predicts at scale {tuning.scale:.3f} (Monte Carlo "
-        f"error {mcse:.3f}). Where: the whole run. What to do: the posterior is not shaped "
-        "like its Laplace approximation here, so the tuning is approximate; compare the "
-        "marginals with the Gaussian curves (plots.save_all), and draw more if the ESS is "
-        "short."
-    )
