@@ -25,14 +25,23 @@ from collections import OrderedDict
 from collections.abc import Callable
 from typing import Any, NamedTuple
 
+import blackjax
 import jax
 import jax.numpy as jnp
 import numpy as np
+from blackjax.mcmc.hmc import HMCState
+from blackjax.mcmc.mala import MALAState
 from blackjax.mcmc.random_walk import RWState
 
 from ..base import pytrees
 from ..errors import InputError, SamplingError, explain
 from ..fit.laplace import LaplaceFit
+from ..theory.gradient import (
+    NUTS_TARGET_ACCEPTANCE,
+    GradientChoice,
+    optimal_gradient_step,
+    step_acceptance,
+)
 from ..theory.randomwalk import (
     ScaleChoice,
     expected_acceptance,
@@ -43,8 +52,8 @@ from ..theory.randomwalk import (
 from . import proposal
 from .engine import ChainState, make_engine
 
-__all__ = ["Tuning", "LaplaceCheck", "StartReport", "Model", "Walker", "make_model",
-           "assemble", "continuable_state", "spectrum_of"]
+__all__ = ["Tuning", "GradientTuning", "LaplaceCheck", "StartReport", "Model", "Walker",
+           "make_model", "assemble", "continuable_state", "spectrum_of"]
 
 
 class Tuning(NamedTuple):
@@ -152,6 +161,76 @@ def spectrum_of(shape, cholesky) -> np.ndarray:
     return np.sort(np.linalg.svd(m, compute_uv=False) ** 2)
 
 
+class GradientTuning(NamedTuple):
+    """A gradient sampler (BlackJAX's MALA, HMC or NUTS) with the metric S Sᵀ.
+
+    The chains run on the whitened posterior z -> log pi(mode + W z), W Wᵀ = S Sᵀ
+    (:mod:`fisherwalk.run.gradient`); S Sᵀ = H⁻¹ for the default, matched metric. Only
+    what cannot be derived is stored.
+    """
+
+    sampler: str  # "mala", "hmc" or "nuts"
+    step_size: float  # BlackJAX's step_size (h/2 for MALA, the leapfrog ε for HMC, NUTS)
+    shape: np.ndarray  # (d, d) S: S Sᵀ is the inverse mass matrix (the metric)
+    whitening: np.ndarray  # (d, d) lower L, L Lᵀ = P, the precision the walker believes
+    shape_kind: str  # "fisher", "diagonal", "identity", "user", "saved" or "warm-up"
+
+    @property
+    def dim(self) -> int:
+        return int(np.shape(self.shape)[0])
+
+    @property
+    def scale(self) -> float:
+        """The step size (shown where the random walk shows its scale l)."""
+        return float(self.step_size)
+
+    @property
+    def inverse_mass_matrix(self) -> np.ndarray:
+        """S Sᵀ, BlackJAX's dense ``inverse_mass_matrix``."""
+        s = np.asarray(self.shape)
+        m = s @ s.T
+        return 0.5 * (m + m.T)
+
+    @property
+    def precision_cholesky(self) -> np.ndarray:
+        """Lower C with C Cᵀ = (S Sᵀ)⁻¹ (the whitening itself when the metric is H⁻¹)."""
+        if self.matched:
+            return np.asarray(self.whitening)
+        return np.linalg.cholesky(np.linalg.inv(self.inverse_mass_matrix))
+
+    @property
+    def spectrum(self) -> np.ndarray:
+        """(d,) eigenvalues of A = Sᵀ P S, ascending (all ones for the matched metric)."""
+        return spectrum_of(self.shape, self.whitening)
+
+    @property
+    def matched(self) -> bool:
+        return is_matched(self.spectrum)
+
+    @property
+    def choice(self) -> GradientChoice:
+        """The theory step for this sampler and d (Gaussian limit, whitened target)."""
+        return optimal_gradient_step(self.sampler, self.dim)
+
+    @property
+    def integration_steps(self) -> tuple[int, int] | None:
+        """HMC: the least and most leapfrog steps of the jittered integration time."""
+        return self.choice.integration_steps if self.sampler == "hmc" else None
+
+    @property
+    def target_acceptance(self) -> float:
+        """The acceptance predicted at ``step_size`` on the Gaussian picture (NUTS: the
+        dual-averaging target, 0.8, which its circle model only roughly predicts)."""
+        if self.sampler == "nuts":
+            return NUTS_TARGET_ACCEPTANCE
+        return float(step_acceptance(self.sampler, self.step_size, self.dim))
+
+    @property
+    def predicted_jump(self) -> float:
+        """Expected squared jump per step, whitened units, at the theory step (all d)."""
+        return float(self.choice.jump_distance * self.dim)
+
+
 class LaplaceCheck(NamedTuple):
     """PSIS check of the Laplace approximation against the posterior, before any step."""
 
@@ -223,23 +302,56 @@ class Walker(NamedTuple):
         return self.model.engine
 
     @property
-    def algorithm(self):
-        """BlackJAX's ``SamplingAlgorithm`` (additive-step random walk, this proposal)."""
-        return proposal.blackjax_algorithm(self.model.logdensity_fn, self.tuning.factor)
+    def gradient(self) -> bool:
+        """Whether the chains run a gradient sampler (their state is then whitened)."""
+        return isinstance(self.tuning, GradientTuning)
 
     @property
-    def states(self) -> RWState:
-        """BlackJAX ``RWState`` per chain (leading chain axis) in the user's pytree."""
+    def algorithm(self):
+        """BlackJAX's ``SamplingAlgorithm`` with this walker's tuning: the additive-step
+        random walk with the proposal factor as ``sigma``; ``blackjax.hmc`` or
+        ``blackjax.nuts`` with ``inverse_mass_matrix = S Sᵀ``; ``blackjax.mala`` on the
+        log density as given (BlackJAX's MALA takes no metric: see
+        :func:`fisherwalk.blackjax_parameters` for the whitened problem)."""
+        t = self.tuning
+        if not self.gradient:
+            return proposal.blackjax_algorithm(self.model.logdensity_fn, t.factor)
+        fn = self.model.logdensity_fn
+        if t.sampler == "mala":
+            return blackjax.mala(fn, t.step_size)
+        if t.sampler == "hmc":
+            lo, hi = t.integration_steps
+            return blackjax.hmc(fn, t.step_size, t.inverse_mass_matrix, (lo + hi) // 2)
+        return blackjax.nuts(fn, t.step_size, t.inverse_mass_matrix)
+
+    @property
+    def states(self):
+        """BlackJAX states per chain (leading chain axis) in the user's pytree: ``RWState``
+        for the random walk, ``HMCState``/``MALAState`` for the gradient samplers."""
         positions = jax.tree.map(jnp.asarray, self.unravel_many(self.flat_positions()))
-        return RWState(positions, jnp.asarray(self.state.logdensity))
+        logdensity = jnp.asarray(self.state.logdensity)
+        if not self.gradient:
+            return RWState(positions, logdensity)
+        grads = jax.vmap(jax.grad(self.model.logdensity_fn))(positions)
+        return _gradient_states(
+            self.tuning.sampler, positions, logdensity, grads)
 
     def flat_positions(self) -> np.ndarray:
-        """Chain positions ravelled: (chains, d), on the host."""
-        return np.asarray(self.state.position)
+        """Chain positions ravelled: (chains, d), on the host, original coordinates."""
+        position = np.asarray(self.state.position)
+        if not self.gradient:
+            return position
+        engine = self.model.engine
+        return engine.mode + position @ np.asarray(engine.whitening).T
 
     def unravel_many(self, flat) -> Any:
         """(..., d) ravelled positions -> the user's pytree with the same leading axes."""
         return pytrees.unravel_batch(flat, self.report.laplace.mode)
+
+
+def _gradient_states(sampler: str, positions, logdensity, grads):
+    kind = MALAState if sampler == "mala" else HMCState
+    return kind(positions, logdensity, grads)
 
 
 def make_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
