@@ -162,6 +162,11 @@ def test_posterior_means_within_four_mcse(runs, sampler):
     assert cat["faults"].sum() == 0 and cat["divergent"].sum() == 0
     if sampler == "mala":
         assert np.all(cat["gradients"] == 1)
+    elif sampler == "hmc":  # the jittered leapfrog count: within its range, shared by chains
+        low, high = _choice("hmc").integration_steps
+        assert cat["gradients"].min() >= low and cat["gradients"].max() <= high
+        assert len(np.unique(cat["gradients"])) == high - low + 1
+        assert np.all(cat["gradients"] == cat["gradients"][:1])
     else:
         assert cat["gradients"].min() >= 1
 
