@@ -49,6 +49,7 @@ from scipy.linalg import cholesky as _host_cholesky
 from scipy.linalg import solve_triangular
 
 from ..errors import InputError, explain
+from ..theory.gradient import INTEGRATION_TIME, optimal_gradient_step
 
 SAMPLERS = ("mala", "hmc", "nuts")
 MAX_INTEGRATION_STEPS = 1024  # HMC: cap on leapfrog steps per transition (NUTS's 2^10)
@@ -56,38 +57,6 @@ MAX_INTEGRATION_STEPS = 1024  # HMC: cap on leapfrog steps per transition (NUTS'
 # heuristic; started at the theory value, 0.2 explores less (measured: see the warm-up).
 DUAL_AVERAGING_GAMMA = 0.2
 _HIGHEST = jax.lax.Precision.HIGHEST
-
-
-# --- STAND-IN for fisherwalk.theory.gradient.optimal_gradient_step (another branch) ------
-class StandInChoice(NamedTuple):
-    """STAND-IN: the fields of theory.gradient.GradientChoice that the run code reads."""
-
-    sampler: str
-    dim: int
-    step_size: float  # in BlackJAX's convention for the sampler
-    acceptance: float  # the acceptance to aim for
-    integration_steps: tuple[int, int] | None  # HMC's jitter range of leapfrog steps
-
-
-def optimal_gradient_step(sampler: str, dim: int) -> StandInChoice:
-    """STAND-IN, to be replaced by ``theory.gradient.optimal_gradient_step`` (same call).
-
-    Published limits only: MALA h = 1.65² d^(-1/3) (Roberts & Rosenthal 1998, JRSS B 60(1);
-    l = 1.65 recalled from memory), i.e. BlackJAX step size h / 2 (BlackJAX proposes
-    x + ε ∇ log π + sqrt(2 ε) ξ), acceptance 0.574; HMC ε = d^(-1/4) (Beskos et al. 2013,
-    Bernoulli 19(5A)), acceptance 0.651, leapfrog steps jittered so that the time ε·L
-    covers [π/4, 3π/4] around the π/2 that decorrelates a unit Gaussian; NUTS
-    ε = d^(-1/4), BlackJAX's target 0.8.
-    """
-    if sampler == "mala":
-        return StandInChoice(sampler, dim, 0.5 * 1.65**2 * dim ** (-1.0 / 3.0), 0.574, None)
-    eps = min(dim ** (-0.25), 1.2)
-    if sampler == "hmc":
-        low = max(1, int(np.floor(0.25 * np.pi / eps)))
-        high = max(low, int(np.ceil(0.75 * np.pi / eps)))
-        return StandInChoice(sampler, dim, eps, 0.651, (low, high))
-    return StandInChoice(sampler, dim, eps, 0.8, None)
-# --- end of stand-in ----------------------------------------------------------------------
 
 
 class ChainState(NamedTuple):
@@ -104,7 +73,6 @@ class StepControl(NamedTuple):
     step_size: jax.Array  # () step size used when adapt is False
     adapt: jax.Array  # () bool: run dual averaging and step with its current iterate
     dual: DualAveragingAdaptationState  # BlackJAX's dual-averaging state (scalar fields)
-    integration_steps: jax.Array  # (2,) int: HMC's jitter range of leapfrog steps; unused otherwise
 
 
 class GradientChunk(NamedTuple):
@@ -197,16 +165,24 @@ def step_keys(rng_key: jax.Array, step, chains: int):
     return key_jitter, jax.vmap(lambda c: jax.random.fold_in(key_chains, c))(jnp.arange(chains))
 
 
-def integration_steps(key_jitter, steps_range):
-    """HMC's leapfrog count, uniform on the integers ``steps_range[0] .. steps_range[1]``.
+def integration_steps(key_jitter, step_size):
+    """HMC's leapfrog count n = max(1, ⌊t/ε + u⌋), t ~ U(INTEGRATION_TIME), u ~ U(0, 1).
 
-    One count for all chains: vmapped chains advance in lockstep, so per-chain counts
-    would make every step cost the longest. The chains stay independent given the counts,
-    which do not depend on the states. The range is in steps, not time, so the
-    acceptance falls smoothly as the step size grows and dual averaging can follow it.
+    The integration time t is jittered around π/2, which decorrelates a unit Gaussian
+    coordinate in one transition, so that no fixed time can resonate with a period of the
+    target (jittering is common practice; no single source); u smooths the count, so the
+    expected acceptance is smooth in ε and dual averaging can follow it
+    (:func:`fisherwalk.theory.gradient.hmc_steps_law` is the exact law of n, and the
+    theory's acceptance is computed under it). One count for all chains: vmapped chains
+    advance in lockstep, so per-chain counts would make every step cost the longest; the
+    chains stay independent given the counts, which do not depend on the states.
     """
-    low, high = steps_range[0], steps_range[1]
-    return jax.random.randint(key_jitter, (), low, high + 1, dtype=jnp.int32)
+    key_t, key_u = jax.random.split(key_jitter)
+    dtype = jnp.result_type(step_size)
+    t = jax.random.uniform(key_t, (), dtype, INTEGRATION_TIME[0], INTEGRATION_TIME[1])
+    u = jax.random.uniform(key_u, (), dtype)
+    n = jnp.floor(t / step_size + u)
+    return jnp.clip(n, 1, MAX_INTEGRATION_STEPS).astype(jnp.int32)
 
 
 def make_transition(sampler: str, max_num_doublings: int) -> Callable:
@@ -264,7 +240,7 @@ def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: floa
             chain, ctrl, acc, div, grads, faults = carry
             eps = jnp.where(ctrl.adapt, jnp.exp(ctrl.dual.log_step_size), ctrl.step_size)
             key_jitter, keys = step_keys(rng_key, step, chains)
-            n_steps = integration_steps(key_jitter, ctrl.integration_steps)
+            n_steps = integration_steps(key_jitter, eps)
             new, (rate, divergent, n_grad, fault) = vstep(keys, tuple(chain), logp, eps, n_steps)
             updated = dual_update(ctrl.dual, jnp.mean(rate))
             dual = jax.tree.map(lambda a, b: jnp.where(ctrl.adapt, a, b).astype(b.dtype),
@@ -347,7 +323,7 @@ def make_gradient_engine(sampler: str, logdensity_flat: Callable, mode, cholesky
                           int(max_num_doublings), logdensity_flat, run, evaluate)
 
 
-def control(step_size: float, *, adapt: bool = False, integration_steps=(1, 1),
+def control(step_size: float, *, adapt: bool = False,
             dual: DualAveragingAdaptationState | None = None, dtype=np.float64) -> StepControl:
     """A :class:`StepControl` built on the host with fixed dtypes (one compilation).
 
@@ -361,6 +337,4 @@ def control(step_size: float, *, adapt: bool = False, integration_steps=(1, 1),
         dual = DualAveragingAdaptationState(np.log(step_size), 0.0, 1.0, 0.0,
                                             np.log(step_size))
     dual = DualAveragingAdaptationState(*(np.asarray(v, dtype=dtype) for v in dual))
-    return StepControl(np.asarray(step_size, dtype=dtype), np.asarray(bool(adapt)), dual,
-                       np.clip(np.asarray(integration_steps, dtype=np.int32), 1,
-                               MAX_INTEGRATION_STEPS))
+    return StepControl(np.asarray(step_size, dtype=dtype), np.asarray(bool(adapt)), dual)

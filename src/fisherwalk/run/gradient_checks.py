@@ -85,7 +85,7 @@ def replay_step(engine: GradientEngine, rng_key: jax.Array, step: int, chain: in
     seen.clear()  # the state's own evaluation is not part of the transition
     key_jitter, keys = step_keys(rng_key, step, engine.chains)
     eps = jnp.asarray(step_size, dtype=engine.mode.dtype)
-    n_steps = integration_steps(key_jitter, jnp.asarray(control_at_step.integration_steps))
+    n_steps = integration_steps(key_jitter, eps)
     transition = make_transition(engine.sampler, engine.max_num_doublings)
     result = transition(keys[chain], (z, value, grad_z), lambda x: logp(x, mode, whitening),
                         eps, n_steps)

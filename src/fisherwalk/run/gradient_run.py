@@ -86,16 +86,14 @@ def gradient_state(model: Model, positions, names) -> gradient.ChainState:
 
 
 def _control(tuning: GradientTuning, *, adapt: bool = False, dtype=np.float64):
-    return gradient.control(tuning.step_size, adapt=adapt,
-                            integration_steps=tuning.integration_steps or (1, 1), dtype=dtype)
+    return gradient.control(tuning.step_size, adapt=adapt, dtype=dtype)
 
 
 def warm_gradient(model: Model, tuning: GradientTuning, rng_key, state, steps: int,
                   names) -> GradientWarmup:
     """Dual averaging of the shared step size from the tuning's step, ``steps`` steps."""
     return warm_up(model.engine, rng_key, state, tuning.step_size, steps=steps,
-                   chunk=DEFAULT_CHUNK, integration_steps=tuning.integration_steps or (1, 1),
-                   names=names)
+                   chunk=DEFAULT_CHUNK, names=names)
 
 
 class ChunkView(NamedTuple):

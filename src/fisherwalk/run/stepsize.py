@@ -76,7 +76,7 @@ def pooled_mcse(rates: np.ndarray) -> float:
 
 
 def warm_up(engine: GradientEngine, rng_key: jax.Array, state: ChainState, step_size: float,
-            *, steps: int = WARMUP_STEPS, chunk: int = WARMUP_CHUNK, integration_steps=(1, 1),
+            *, steps: int = WARMUP_STEPS, chunk: int = WARMUP_CHUNK,
             names=None) -> GradientWarmup:
     """Adapt one shared step size by dual averaging; check the faults met on the way.
 
@@ -94,8 +94,6 @@ def warm_up(engine: GradientEngine, rng_key: jax.Array, state: ChainState, step_
         Warm-up steps per chain, rounded up to whole chunks.
     chunk
         Steps per compiled call; keep sampling's chunk so both share one program.
-    integration_steps
-        HMC's jitter range of leapfrog steps (ignored by MALA and NUTS).
     names
         Parameter names in ravelled order, for error messages.
 
@@ -110,7 +108,7 @@ def warm_up(engine: GradientEngine, rng_key: jax.Array, state: ChainState, step_
                                  "warm_up(steps=...)", "pass steps as an int, e.g. 200."))
     calls = math.ceil(steps / chunk)
     dtype = engine.mode.dtype
-    ctrl = control(step_size, adapt=True, integration_steps=integration_steps, dtype=dtype)
+    ctrl = control(step_size, adapt=True, dtype=dtype)
     start_position = engine.mode + np.asarray(state.position) @ engine.whitening.T
     pieces = []
     for k in range(calls):
