@@ -63,6 +63,7 @@ class Summary(NamedTuple):
     notes: tuple[str, ...]
     rhat_limit: float = 1.01  # the thresholds the warnings and the check column used
     ess_limit: float = 400.0
+    flags: tuple[str, ...] = ()  # per parameter, extra words for the check column
 
     def table(self) -> str:
         """The summary as text: header, one row per parameter, warnings."""
@@ -442,6 +443,8 @@ def _row(s: Summary, j: int, rhat_limit: float, ess_limit: float) -> list[str]:
         flags.append("R-hat")
     if min(s.ess_bulk[j], s.ess_tail[j]) < ess_limit:
         flags.append("ESS")
+    if j < len(s.flags) and s.flags[j]:
+        flags.append(s.flags[j])
     return [
         s.names[j],
         _num(float(s.mean[j]), places), _num(float(s.sd[j]), places),

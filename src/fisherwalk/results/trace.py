@@ -11,6 +11,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from .coverage import mode_caveats
 from .diagnostics import ess_mean, whitened_jump
 from .report import summarize
 
@@ -34,6 +35,7 @@ class Trace(NamedTuple):
     rng_key: np.ndarray  # key data of the run's key (uint32)
     seconds: float  # wall time of the run, compilation included
     complete: bool  # False when the run was interrupted (the trace holds what finished)
+    length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -45,6 +47,11 @@ class Trace(NamedTuple):
         realised = None
         if self.thin == 1 and self.flat.shape[1] > 1:
             realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).mean
+        limits = {}
+        header = ()
+        if self.length is not None:
+            limits = {"rhat_limit": self.length.rhat_limit, "ess_limit": self.length.ess_limit}
+            header = (self.length.line(),)
         summary = summarize(
             self.flat,
             self.names,
@@ -53,10 +60,17 @@ class Trace(NamedTuple):
             predicted_jump=tuning.predicted_jump,
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
+            header_notes=header,
+            **limits,
         )
         mismatch = _acceptance_mismatch(self.acceptance_rate, tuning)
         if mismatch:
             summary = summary._replace(warnings=summary.warnings + (mismatch,))
+        fit = self.walker.report.laplace
+        modes, flags = mode_caveats(self.flat, self.names, getattr(fit, "modes_flat", ()),
+                                    [h for _, h in fit.modes], getattr(fit, "modes_fisher", ()))
+        if modes:
+            summary = summary._replace(warnings=summary.warnings + (modes,), flags=flags)
         return summary
 
 

@@ -19,6 +19,7 @@ import numpy as np
 from ..base.keys import as_key, normals, stream
 from ..errors import FisherwalkWarning, InputError, explain
 from ..fit.laplace import LaplaceFit, laplace
+from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
 from .tuningfile import SavedTuning, check_tuning
@@ -172,6 +173,37 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
     return positions, logdens, check, notes
 
 
+def _spread_over_modes(evaluate, fit: LaplaceFit, positions, logdens):
+    """Move chains to the other modes, round robin in order of Laplace mass.
+
+    Chain c keeps its standard-normal draw z: it starts at m_k + S_k z (S_k S_kᵀ = H_k⁻¹)
+    for its mode k; chains of the first mode do not move (so a one-mode run is unchanged).
+    """
+    mass = laplace_masses([h for _, h in fit.modes], fit.modes_fisher)
+    order = np.argsort(-mass, kind="stable")
+    chains = positions.shape[0]
+    main = np.asarray(fit.mode_flat, np.float64)
+    main_shape = proposal.shape_from_cholesky(np.linalg.cholesky(
+        np.asarray(fit.modes_fisher[0], np.float64)))
+    z = np.linalg.solve(main_shape, (positions - main).T).T
+    assigned = [int(order[c % len(order)]) for c in range(chains)]
+    moved = positions.copy()
+    for c, k in enumerate(assigned):
+        if k == 0:
+            continue
+        shape_k = proposal.shape_from_cholesky(np.linalg.cholesky(
+            np.asarray(fit.modes_fisher[k], np.float64)))
+        moved[c] = np.asarray(fit.modes_flat[k], np.float64) + shape_k @ z[c]
+    logp = np.asarray(evaluate(moved))
+    for c, k in enumerate(assigned):  # a draw outside the support: start at the mode
+        if k != 0 and not np.isfinite(logp[c]):
+            moved[c] = fit.modes_flat[k]
+    logp = np.where(np.isfinite(logp), logp, np.asarray(evaluate(moved)))
+    note = ("Chains start spread across the modes so that R-hat can see them: "
+            + ", ".join(f"chain {c} at mode {k + 1}" for c, k in enumerate(assigned)) + ".")
+    return moved.astype(positions.dtype), logp.astype(logdens.dtype), note
+
+
 def start(
     logdensity_fn: Callable,
     position: Any,
@@ -183,6 +215,7 @@ def start(
     shape="fisher",
     criterion: str = "slowest",
     restarts: int = 0,
+    scouts: int = SCOUTS,
     **laplace_options,
 ) -> Walker:
     """Tune random-walk Metropolis from the Laplace approximation of the posterior.
@@ -210,7 +243,16 @@ def start(
         For a shape that does not match H: ``"slowest"`` maximises the slowest
         direction's jump (it governs the minimum ESS), ``"total"`` the total jump.
     restarts
-        Extra mode searches from dispersed starting points (a check for other modes).
+        Extra mode searches from dispersed starting points (a check for other modes;
+        ``spread=`` or ``box=(lower, upper)`` in ``laplace_options`` say where: see
+        :func:`fisherwalk.laplace`).
+    scouts
+        Cheap searches for other modes from over-dispersed points, mode ± 15 posterior
+        sd in antithetic pairs (:func:`fisherwalk.laplace`'s ``scouts``; they reuse the
+        compiled search). 0 switches them off. When two or more distinct modes are
+        found, the chains start spread across them (one chain per mode in order of
+        Laplace mass, round robin), so that R-hat and the summary can see them, and a
+        warning names the modes.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 
@@ -236,16 +278,20 @@ def start(
     chains = _validate_chains(chains)
     key = as_key(rng_key, where="start(rng_key=...)")
     if fit is None:
-        key_restarts = jax.random.fold_in(key, 1) if restarts else None
+        key_restarts = jax.random.fold_in(key, 1) if restarts or scouts else None
         fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
-                      rng_key=key_restarts, **laplace_options)
+                      rng_key=key_restarts, scouts=scouts, **laplace_options)
     elif not isinstance(fit, LaplaceFit):
         raise InputError(explain(f"fit={type(fit).__name__} is not a LaplaceFit.",
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
     shape_matrix, kind = proposal_shape(shape, fit)
     tuning = tuning_for(shape_matrix, kind, fit.cholesky, criterion=criterion)
     notes = list(fit.warnings)
-    for message in fit.warnings:  # other modes, a better restart: say it out loud
+    if len(fit.modes_flat) > 1:  # one account of the modes, with their masses
+        notes = [n for n in notes if "distinct modes found" not in n]
+        notes.append(describe_modes(fit.modes_flat, [h for _, h in fit.modes],
+                                    fit.modes_fisher, fit.names))
+    for message in notes:  # other modes, a better restart: say it out loud
         warnings.warn(message, FisherwalkWarning, stacklevel=2)
     if kind != "fisher":
         notes.append(
@@ -257,5 +303,8 @@ def start(
     model = make_model(logdensity_fn, fit.mode, chains)
     positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
     notes.extend(state_notes)
+    if len(fit.modes_flat) > 1:
+        positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
+        notes.append(note)
     report = StartReport(fit, check, tuple(notes))
     return assemble(logdensity_fn, report, tuning, positions, logdens, model=model)

@@ -118,7 +118,7 @@ def _khat_words(khat: float, limit: float) -> str:
     return f"PSIS k̂ {khat:.2f} (threshold {limit:.2f})"
 
 
-def _covariance_check(draws: np.ndarray, whitening: np.ndarray):
+def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = False):
     """Whitened warm-up covariance C = Lᵀ Σ̂ L against the identity.
 
     Returns Σ̂, the spectrum of C, the band of eigenvalues Monte Carlo error allows
@@ -127,10 +127,13 @@ def _covariance_check(draws: np.ndarray, whitening: np.ndarray):
     n_eff (tr C - log det C - d) is asymptotically chi-square with d(d+1)/2 degrees of
     freedom (Anderson 2003, An Introduction to Multivariate Statistical Analysis, 3rd ed.,
     section 10.8), with n_eff the effective number of draws (median ESS of the whitened
-    coordinates) standing in for the number of independent draws.
+    coordinates) standing in for the number of independent draws. With ``within``
+    (start() spread the chains over several modes) each chain is centred on its own mean.
     """
     chains, n, d = draws.shape
     kept = draws[:, n // 5:]  # drop the first fifth of phase 1 (the scale was settling)
+    if within:  # chains in different modes: the spread within each, not between them
+        kept = kept - kept.mean(axis=1, keepdims=True)
     pooled = kept.reshape(-1, d)
     cov = np.cov(pooled, rowvar=False).reshape(d, d)
     white = whitening.T @ cov @ whitening
@@ -211,8 +214,9 @@ def refine(
         state, draws, acc1, log_m1, _ = _run_phase(
             walker, stream(key, 1), state, tuning0.factor, half, 0,
             tuning0.choice.acceptance, bar)
-        cov, spectrum, bounds, n_eff, p_value = _covariance_check(draws,
-                                                                  np.asarray(fit.cholesky))
+        several = len(getattr(fit, "modes_flat", ())) > 1
+        cov, spectrum, bounds, n_eff, p_value = _covariance_check(
+            draws, np.asarray(fit.cholesky), within=several)
         reasons = []
         if khat > k_limit:
             reasons.append(f"PSIS k̂ = {khat:.2f} > {k_limit:.2f}: the Laplace approximation "
