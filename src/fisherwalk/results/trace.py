@@ -45,7 +45,7 @@ class Trace(NamedTuple):
         """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it)."""
         tuning = self.walker.tuning
         realised = None
-        if self.thin == 1 and self.flat.shape[1] > 1:
+        if self.thin == 1 and self.flat.shape[1] >= 4:  # whitened_jump needs 4 draws
             realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).mean
         limits = {}
         header = ()

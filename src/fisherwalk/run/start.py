@@ -22,6 +22,7 @@ from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
+from .progress import progress_bar
 from .tuningfile import SavedTuning, check_tuning
 from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
 
@@ -216,6 +217,7 @@ def start(
     criterion: str = "slowest",
     restarts: int = 0,
     scouts: int = SCOUTS,
+    progress: bool | None = None,
     **laplace_options,
 ) -> Walker:
     """Tune random-walk Metropolis from the Laplace approximation of the posterior.
@@ -253,6 +255,9 @@ def start(
         found, the chains start spread across them (one chain per mode in order of
         Laplace mass, round robin), so that R-hat and the summary can see them, and a
         warning names the modes.
+    progress
+        Show the phases (the Laplace fit, compilation included, then the Laplace draws)
+        as a progress bar; default: in a terminal and in a notebook.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 
@@ -277,6 +282,7 @@ def start(
     """
     chains = _validate_chains(chains)
     key = as_key(rng_key, where="start(rng_key=...)")
+    bar = progress_bar(2, progress, "start: Laplace fit (compiling, searching)", unit="phase")
     if fit is None:
         key_restarts = jax.random.fold_in(key, 1) if restarts or scouts else None
         fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
@@ -300,6 +306,9 @@ def start(
             f"and target acceptance {tuning.target_acceptance:.3f} are chosen for it; relative "
             f"efficiency {tuning.choice.efficiency:.3f} of the matched proposal."
         )
+    if bar is not None:
+        bar.update(1)
+        bar.set_description("start: Laplace draws, PSIS check")
     model = make_model(logdensity_fn, fit.mode, chains)
     positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
     notes.extend(state_notes)
@@ -307,4 +316,8 @@ def start(
         positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
         notes.append(note)
     report = StartReport(fit, check, tuple(notes))
+    if bar is not None:
+        bar.update(1)
+        bar.set_description("start: done")
+        bar.close()
     return assemble(logdensity_fn, report, tuning, positions, logdens, model=model)

@@ -113,8 +113,9 @@ def _run_phase(walker, noise_key, state, factor, steps, adapt_from, target, bar,
 def _khat_words(khat: float, limit: float) -> str:
     """PSIS k̂ in words; -inf means the importance ratios were all equal."""
     if khat == -math.inf:
-        return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (the "
-                "posterior is the Laplace Gaussian itself)")
+        return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (at each "
+                "of them the log density equals the Laplace Gaussian's up to a constant; "
+                "the draws test the region they cover, not the tails beyond it)")
     return f"PSIS k̂ {khat:.2f} (threshold {limit:.2f})"
 
 
@@ -281,9 +282,13 @@ def refine(
     fisher_spectrum = np.sort(
         np.linalg.svd(np.asarray(fit.cholesky).T @ np.asarray(final.shape), compute_uv=False) ** 2
     )
+    aimed = f"aimed at {target:.3f}, the optimum for this shape"
+    if abs(final.target_acceptance - target) > 5e-4:  # the summary's target is this one
+        aimed += (f"; at the refined scale the Gaussian picture predicts "
+                  f"{final.target_acceptance:.3f}, the summary's target")
     notes.append(
         f"Scale {tuning0.scale:.3f} -> {scale_final:.3f}; acceptance in the last quarter "
-        f"{acc2:.3f} (target {target:.3f}); " + _khat_words(khat, k_limit) + ".")
+        f"{acc2:.3f} ({aimed}); " + _khat_words(khat, k_limit) + ".")
     warm = WarmupReport(
         steps, khat, k_limit, outside, tuning0.scale, tuning0.scale * math.exp(log_m1),
         float(scale_final), float(target), acc1, acc2, spectrum, bounds, p_value, n_eff,
