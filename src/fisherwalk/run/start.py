@@ -38,9 +38,15 @@ def _validate_chains(chains) -> int:
             explain(
                 f"chains={chains!r} is not a positive whole number.",
                 "start(chains=...)",
-                "use at least 2 chains (4 is the default) so that R-hat can compare them.",
+                "use 1 or more chains; 4 (the default) or more lets R-hat compare chains.",
             )
         )
+    if chains == 1:
+        warnings.warn(
+            "chains=1: R-hat needs at least 2 chains to compare; with one chain it only "
+            "compares the chain's two halves, and a second mode or a stuck chain goes "
+            "unseen. Use chains=4 (the default) unless you know why one chain suffices.",
+            FisherwalkWarning, stacklevel=3)
     return int(chains)
 
 
