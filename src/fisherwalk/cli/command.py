@@ -89,9 +89,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
     walker = fisherwalk.start(logdensity, position, k_start, chains, fisher=fisher,
                               progress=progress)
     seconds["start"] = time.perf_counter() - t
-    if labels is not None and len(labels) == walker.dim:
-        fit = walker.report.laplace._replace(names=tuple(str(n) for n in labels))
-        walker = walker._replace(report=walker.report._replace(laplace=fit))
+
     _say_fit(say, walker, seconds["start"])
 
     t = time.perf_counter()
@@ -104,10 +102,20 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
     seconds["sampling"] = time.perf_counter() - t
 
     t = time.perf_counter()
-    summary = trace.summary()
+    summary = _labelled(trace, labels).summary()
     seconds["diagnostics"] = time.perf_counter() - t
     _say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
+
+
+def _labelled(trace, labels):
+    """The trace with ``labels`` as parameter names, for the tables and warnings only (the
+    record's tuning and draws.npz keep the ravelled names that load_tuning checks)."""
+    if labels is None or len(labels) != trace.walker.dim:
+        return trace
+    walker = trace.walker
+    fit = walker.report.laplace._replace(names=tuple(str(n) for n in labels))
+    return trace._replace(walker=walker._replace(report=walker.report._replace(laplace=fit)))
 
 
 def _say_fit(say: _Say, walker, seconds: float) -> None:
