@@ -3,6 +3,7 @@ widget, whichever fits where the code runs)."""
 
 from __future__ import annotations
 
+import importlib.util
 import sys
 
 
@@ -29,6 +30,11 @@ def progress_bar(total: int, progress: bool | None, desc: str, unit: str = "draw
     """A tqdm bar of ``total`` steps, or None (see :func:`shown`)."""
     if not shown(progress):
         return None
-    from tqdm.auto import tqdm
+    if in_notebook() and importlib.util.find_spec("ipywidgets") is None:
+        from tqdm.std import tqdm  # a text bar in the cell's output, without tqdm's warning
+
+        # each refresh becomes an output of the cell: refresh at most once a second
+        return tqdm(total=total, unit=unit, desc=desc, leave=True, mininterval=1.0)
+    from tqdm.auto import tqdm  # a terminal bar, or a widget in a notebook with ipywidgets
 
     return tqdm(total=total, unit=unit, desc=desc, leave=True)

@@ -248,7 +248,7 @@ def _show(bar, collector, total, elapsed, first_done, round_number, planned) -> 
     if planned:
         info["round"] = round_number
     info["left"] = f"{per_draw * (total - collector.done):.0f}s"
-    bar.set_postfix(info)
+    bar.set_postfix(info, refresh=False)  # the bar refreshes at its own pace
 
 
 def _trace(walker, collector, state, thin, key, seconds, *, complete, length=None) -> Trace:

@@ -268,6 +268,9 @@ def refine(
             reasons.append(
                 f"at the theoretical scale the acceptance was {acc2:.3f}, not the predicted "
                 f"{target:.3f} (Monte Carlo error {mcse2:.3f})")
+            if bar is not None:  # the third phase adds steps to the bar's total
+                bar.total += half
+                bar.refresh()
             notes[-1] = ("Kept the proposal shape; adapted the scale in a third phase of "
                          f"{half} steps because " + reasons[-1] + ".")
             state2, _, acc2, log_m2, _ = _run_phase(
