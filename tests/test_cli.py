@@ -70,6 +70,7 @@ def test_demo_record_has_what_reproduction_needs(demo_run):
     assert record["warmup"]["steps"] == 200
     assert record["warmup"]["scale_final"] == pytest.approx(record["tuning"]["tuning"]["scale"])
     assert record["summary"]["chains"] == 2 and record["summary"]["draws"] == 300
+    assert record["sampling"]["run_length"]["planned"] is False  # --draws was given
     scene = scenarios.logistic()
     assert record["scenario"]["true_beta"] == scene.true_beta.tolist()
     assert record["scenario"]["records"] == 20_000

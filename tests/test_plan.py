@@ -91,6 +91,30 @@ def test_the_prediction_matches_a_long_run_on_a_gaussian(walker3):
     assert 0.65 < ratio < 1.15
 
 
+def test_stalled_means_rhat_high_and_not_falling_with_the_draws():
+    # Mixing chains bring R-hat² - 1 down like 1/draws; chains held apart keep it.
+    assert plan.stalled((1000, 1.5), (2000, 1.5))
+    assert plan.stalled((1000, 1.5), (2000, float("inf")))
+    assert not plan.stalled((1000, 1.5), (2000, 1.2))  # fell about as 1/draws predicts
+    assert not plan.stalled((1000, 1.05), (2000, 1.05))  # below the 1.1 alarm
+    assert not plan.stalled(None, (2000, 1.5))
+
+
+def test_chains_that_cannot_meet_stop_as_chains_disagree():
+    # Two chains started 40 sd apart on a density with two far modes never cross:
+    # R-hat stays huge and the planned run stops after its second round.
+    def far(x):
+        return jnp.logaddexp(-0.5 * jnp.sum((x - 20.0) ** 2), -0.5 * jnp.sum((x + 20.0) ** 2))
+
+    walker = fw.start(far, jnp.array([19.0, 21.0]), jax.random.key(1), chains=2, scouts=0)
+    apart = np.array([[20.0, 20.0], [-20.0, -20.0]])
+    walker = walker._replace(state=ChainState(apart, np.asarray(walker.evaluate(apart))))
+    trace = fw.walk(walker, jax.random.key(2))
+    assert trace.length.stopped == "chains disagree"
+    assert len(trace.length.rounds) == 2
+    assert "stopped: chains disagree" in str(trace.summary())
+
+
 def _false_alarms(dim: int, seeds: int) -> tuple[int, int, list]:
     """Default walk() runs on N(0, I_d) from exact draws (the chains are stationary), one
     compilation: the walker is refined once and its chains restarted per seed."""
@@ -113,12 +137,13 @@ def _false_alarms(dim: int, seeds: int) -> tuple[int, int, list]:
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("dim, seeds", [(2, 20), (8, 10), (25, 2)])
+@pytest.mark.parametrize("dim, seeds", [(2, 20), (8, 20), (25, 3)])
 def test_default_walk_on_gaussians_gives_no_false_alarms_and_is_not_too_long(dim, seeds):
     # A run stops only when every bulk/tail ESS >= 400 and every R-hat < 1.01 (the summary's
     # own thresholds), so an R-hat/ESS warning at the end can only come from a budget: at
-    # most 1 in 20 allowed (the issue's criterion). d = 8 runs 10 seeds and d = 25 two
-    # here, for time (the diagnostics of 4 x ~20000 x 25 draws take seconds each).
+    # most 1 in 20 allowed (the issue's criterion; proportionally none in 3). d = 25 runs
+    # 3 seeds here, for time (the diagnostics of 4 x ~20000 x 25 draws take seconds each;
+    # 20 seeds were run once outside the suite: no warning, none too long).
     warned, too_long, lengths = _false_alarms(dim, seeds)
-    assert warned <= 1, lengths
-    assert too_long <= max(1, seeds // 20), lengths
+    assert warned <= seeds // 20, lengths
+    assert too_long <= seeds // 20, lengths

@@ -110,7 +110,9 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "tuning": tuningfile.tuning_record(walker),
         "warmup": walker.report.warmup,
         "summary": result.summary.to_dict(),
-        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin},
+        "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin,
+                     "draws": int(trace.flat.shape[1]),
+                     "run_length": None if trace.length is None else trace.length._asdict()},
         "seconds": result.seconds,
         **extra,
     })
