@@ -29,7 +29,7 @@ def test_default_pipeline_on_a_two_mode_product_names_the_modes_and_flags_every_
         for point in fit.modes_flat:
             assert np.allclose(np.abs(point), 5.0, atol=1e-3)
         walker = fw.refine(walker, jax.random.key(1))
-        trace = fw.walk(walker, jax.random.key(2), max_draws=5000)
+        trace = fw.walk(walker, jax.random.key(2))  # the default: planned length
     summary = trace.summary()
     named = [w for w in summary.warnings if "distinct modes" in w]
     assert named, summary.warnings
@@ -90,3 +90,21 @@ def test_laplace_masses_of_gaussian_modes_are_their_weights():
     heights = np.log(weights / sds)
     fishers = [np.array([[1 / s**2]]) for s in sds]
     assert np.allclose(laplace_masses(heights, fishers), weights)
+
+
+def test_a_parameter_whose_chains_saw_one_of_its_modes_is_flagged():
+    # Modes at (5, 5) and (5, -5); both chains sit at (5, 5): x[1] has seen one of its two
+    # values and is flagged; x[0] has one value at the modes and is not.
+    from fisherwalk.results.coverage import mode_caveats
+
+    rng = np.random.default_rng(0)
+    flat = np.array([5.0, 5.0]) + rng.normal(size=(2, 500, 2))
+    points = [np.array([5.0, 5.0]), np.array([5.0, -5.0])]
+    text, flags = mode_caveats(flat, ("x[0]", "x[1]"), points, [0.0, 0.0], [np.eye(2)] * 2)
+    assert flags == ("", "modes")
+    assert "No chain crossed between the modes of x[1]" in text
+    # chains that visit both values of x[1] lift the flag
+    flat[1, 250:, 1] -= 10.0
+    flat[0, :250, 1] -= 10.0
+    _, flags = mode_caveats(flat, ("x[0]", "x[1]"), points, [0.0, 0.0], [np.eye(2)] * 2)
+    assert flags == ("", "")

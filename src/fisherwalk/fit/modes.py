@@ -97,7 +97,7 @@ def describe_modes(points, logdensity, fishers, names, *, limit: int = 6) -> str
             values += ", ..."
         parts.append(f"mode {k + 1} at ({values}): log density {float(height):.6g}, "
                      f"Laplace mass {mass[k]:.3f}")
-    text = (f"{len(points)} distinct modes, so a single Laplace approximation does not "
+    text = (f"{len(points)} distinct modes found, so a single Laplace approximation does not "
             "describe the posterior: " + "; ".join(parts) + ".")
     switches = label_switching(points, logdensity, names)
     if switches:

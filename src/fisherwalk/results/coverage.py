@@ -67,7 +67,8 @@ def mode_caveats(flat: np.ndarray, names, modes_flat, modes_logdensity, modes_fi
                  + (f" and {len(partial) - 6} more" if len(partial) > 6 else "")
                  + ": their rows (check 'modes') describe the modes the chains started in, "
                  "weighted by how many chains started there, not the posterior.")
-    text += (" What to do: a random walk does not cross between separated modes; report "
+    text += (" What to do: a random walk rarely crosses between separated modes (and start() "
+             "may not have found them all); report "
              "the modes separately, reparametrise (e.g. order exchangeable components), or "
              "use a sampler built for several modes.")
     return text, tuple(flags)
