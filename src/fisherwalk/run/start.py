@@ -270,6 +270,8 @@ def start(
     Returns
     -------
     Walker
+        All the chains (not one chain): their starting positions, the proposal they
+        share, and the report of the fit.
 
     Notes
     -----
