@@ -83,8 +83,10 @@ def test_predicted_ess_per_step_is_the_ar1_value_of_the_predicted_jump(walker3):
 def test_the_prediction_matches_a_long_run_on_a_gaussian(walker3):
     # Realised bulk ESS per step per chain against the AR(1) prediction. Benchmarks
     # (benchmarks/RESULTS.md section 5) saw realised / predicted 0.82-0.87 for the Fisher
-    # shape; 8000 draws x 4 chains give ESS ~ 1700 per parameter, a relative error of the
-    # ESS estimate of roughly 1/sqrt(ESS/... ) ~ 10%: accept 0.65-1.15.
+    # shape; 8000 draws x 4 chains give ESS ~ 2500 per parameter, whose estimate has a
+    # relative error of roughly 10% (a value from memory for autocorrelation-based ESS at
+    # this length, no published source), less for the mean over 3 parameters. Accept
+    # 0.65-1.15: the benchmark range widened by about 2 such errors.
     trace = fw.walk(walker3, jax.random.key(10), draws=8000)
     realised = trace.summary().ess_bulk.mean() / (4 * 8000)
     ratio = realised / plan.predicted_ess_per_step(walker3.tuning)
