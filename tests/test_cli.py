@@ -47,6 +47,9 @@ def test_demo_draws_file_needs_no_pickle(demo_run):
         assert draws.shape == (2, 300, 8)
         assert saved["logdensity"].shape == (2, 300)
         assert list(names) == [f"beta[{i}]" for i in range(8)]
+    # the scenario's labels name the summary's rows (table and record)
+    assert [row["name"] for row in record["summary"]["parameters"]] == \
+        record["scenario"]["labels"]
     means = [row["mean"] for row in record["summary"]["parameters"]]
     np.testing.assert_allclose(draws.mean(axis=(0, 1)), means, rtol=1e-12)
 
@@ -67,6 +70,7 @@ def test_demo_record_has_what_reproduction_needs(demo_run):
     assert record["warmup"]["steps"] == 200
     assert record["warmup"]["scale_final"] == pytest.approx(record["tuning"]["tuning"]["scale"])
     assert record["summary"]["chains"] == 2 and record["summary"]["draws"] == 300
+    assert record["sampling"]["run_length"]["planned"] is False  # --draws was given
     scene = scenarios.logistic()
     assert record["scenario"]["true_beta"] == scene.true_beta.tolist()
     assert record["scenario"]["records"] == 20_000
@@ -105,7 +109,7 @@ def test_demo_output_shows_tuning_summary_and_truth(tmp_path, capsys):
     assert code == 0
     for text in ("culvert", "[1/4] Laplace fit", "[2/4] tuning from the theory, d = 6",
                  "target acceptance", "[3/4] warm-up", "[4/4] sampling", "realised",
-                 "fisherwalk summary", "Against the truth", "beta[5] grate fitted",
+                 "fisherwalk summary", "Against the truth", "grate fitted",
                  "record.json"):
         assert text in out, text
     header = (tmp_path / "data.csv").read_text().splitlines()[0]
@@ -137,7 +141,8 @@ def test_run_a_good_model_file(tmp_path, capsys):
                      "--chains", "2", "--draws", "200", "--warmup", "200", "--quiet"])
     assert code == 0
     out = capsys.readouterr().out
-    assert "log_sigma" in out and "mu" in out
+    # the model file's names label the table (not the ravelled log_sigma, mu)
+    assert "log sd of a reading" in out and "true weight" in out
     record = json.loads((tmp_path / "record.json").read_text())
     source = (MODELS / "good_model.py").read_bytes()
     assert record["model_file"]["sha256"] == hashlib.sha256(source).hexdigest()

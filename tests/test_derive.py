@@ -60,10 +60,12 @@ def test_derived_lognormal_matches_the_analytic_moments(lognormal_run):
     np.testing.assert_allclose(k, np.exp(trace.draws["log_k"]), rtol=1e-15)
     mean = math.exp(MU + S**2 / 2)
     assert abs(summary.mean[j] - mean) < 4 * summary.mcse[j]
-    for prob, estimate in ((0.05, summary.q05[j]), (0.5, summary.q50[j]),
-                           (0.95, summary.q95[j])):
+    for prob, estimate, error in ((0.05, summary.lower[j], summary.mcse_lower[j]),
+                                  (0.5, summary.median[j], summary.mcse_median[j]),
+                                  (0.95, summary.upper[j], summary.mcse_upper[j])):
         exact = math.exp(MU + S * stats.norm.ppf(prob))
         assert abs(estimate - exact) < 4 * _mcse_quantile(k, prob), prob
+        assert error == pytest.approx(_mcse_quantile(k, prob), rel=0.05)  # the summary's own
     # the quantile MCSE helper agrees with ArviZ's implementation of the same method
     az = pytest.importorskip("arviz")
     for prob in (0.05, 0.5, 0.95):

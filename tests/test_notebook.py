@@ -33,6 +33,12 @@ def test_notebook_executes(tmp_path):
                    for o in cell.outputs)
     assert "fisherwalk summary" in text
     assert "target acceptance" in text
+    assert "run length: planned" in text  # the default walk() plans its length
+    # progress is shown in a notebook by default (a widget, or a text bar on stderr)
+    shown = [o for cell in nb.cells if cell.cell_type == "code" for o in cell.outputs
+             if (o.get("name") == "stderr" and "sampling" in o.get("text", ""))
+             or "application/vnd.jupyter.widget-view+json" in o.get("data", {})]
+    assert shown
     figures = tmp_path / "walkthrough-figures"
     assert sorted(p.name for p in figures.glob("*.png")) == [
         "autocorrelation.png", "marginals.png", "traces.png", "tuning.png"]

@@ -130,3 +130,14 @@ def test_the_core_never_imports_matplotlib():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.split() == ["False", "False"]
+
+
+def test_tuning_figure_of_a_walker_that_never_warmed_up_says_so(trace):
+    walker = fisherwalk.start(_logdensity, {"x": jnp.zeros(3)}, jax.random.key(3), chains=2)
+    cold = fisherwalk.walk(walker, jax.random.key(4), 120, progress=False)
+    fig = plots.plot_tuning(cold)
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert not any("after warm-up" in t for t in texts)
+    assert f"chosen by start(), no warm-up: l = {walker.tuning.scale:.3f}" in texts
+    traces = plots.plot_traces(cold)
+    assert traces.axes[0].get_xlabel() == "step (no warm-up)"

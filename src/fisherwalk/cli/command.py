@@ -37,11 +37,10 @@ from .runrecord import RunResult, build_record, run_keys, sha256_file, write_out
 __all__ = ["main", "workflow", "RunResult"]
 
 DEFAULT_CHAINS = 4
-# Random-walk Metropolis makes about 0.3/d effective draws per step at the optimal scale
-# (Roberts, Gelman & Gilks 1997); for the demo's d = 8, 4 chains x 8000 draws give a bulk
-# ESS near 1,300, enough for R-hat's own noise to stay below 1.01 (measured: 2000 draws
-# left every ESS below 400, 5000 gave an R-hat of 1.011 for one seed of four).
-DEFAULT_DRAWS = 8000
+# Without --draws the run length is planned (walk(draws=None)): rounds until every
+# parameter has bulk and tail ESS >= 400 and R-hat < 1.01, sized from the theory's
+# predicted ESS per step (fisherwalk.run.plan).
+DEFAULT_DRAWS = None
 DEFAULT_WARMUP = 400
 DEFAULT_SEED = 0
 
@@ -68,11 +67,14 @@ class _Say:
             print(f"  ... {text}", file=sys.stderr, flush=True)
 
 
-def workflow(logdensity, position, *, seed: int, chains: int, draws: int,
+def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
              warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
-             checkpoint=None) -> RunResult:
+             checkpoint=None, labels=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
+
+    ``draws=None`` plans the run length; ``labels`` (one per scalar parameter, e.g. a
+    model file's ``names``) replace the ravelled names in every table and warning.
 
     ``thin``, ``pointwise``, ``derived`` and ``checkpoint`` go to :func:`fisherwalk.walk`,
     ``restarts`` (mode searches from dispersed points) to :func:`fisherwalk.start`.
@@ -87,8 +89,9 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int,
     say.busy("Laplace fit: mode search and Fisher information (includes compilation)")
     t = time.perf_counter()
     walker = fisherwalk.start(logdensity, position, k_start, chains, fisher=fisher,
-                              restarts=restarts)
+                              restarts=restarts, progress=progress)
     seconds["start"] = time.perf_counter() - t
+
     _say_fit(say, walker, seconds["start"])
 
     t = time.perf_counter()
@@ -102,10 +105,20 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int,
     seconds["sampling"] = time.perf_counter() - t
 
     t = time.perf_counter()
-    summary = trace.summary()
+    summary = _labelled(trace, labels).summary()
     seconds["diagnostics"] = time.perf_counter() - t
     _say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
+
+
+def _labelled(trace, labels):
+    """The trace with ``labels`` as parameter names, for the tables and warnings only (the
+    record's tuning and draws.npz keep the ravelled names that load_tuning checks)."""
+    if labels is None or len(labels) != trace.walker.dim:
+        return trace
+    walker = trace.walker
+    fit = walker.report.laplace._replace(names=tuple(str(n) for n in labels))
+    return trace._replace(walker=walker._replace(report=walker.report._replace(laplace=fit)))
 
 
 def _say_fit(say: _Say, walker, seconds: float) -> None:
@@ -150,12 +163,18 @@ def _say_warmup(say: _Say, walker, seconds: float, chains: int) -> None:
 def _say_sampling(say: _Say, trace, summary, seconds: float) -> None:
     chains, draws = trace.flat.shape[:2]
     say(_step(f"[4/4] sampling, {draws} draws x {chains} chains", seconds))
+    if trace.length is not None:
+        say(_wrap(f"      {trace.length.line()}"))
     per_chain = " ".join(f"{a:.3f}" for a in np.mean(trace.accepted, axis=1))
     say(f"      acceptance: target {summary.target_acceptance:.3f}, realised "
         f"{summary.acceptance_pooled:.3f} (chains: {per_chain})")
     if summary.realised_jump is not None:
         say(f"      jump per step: predicted {summary.predicted_jump:.3f}, realised "
             f"{summary.realised_jump:.3f}")
+
+
+def _draws_words(draws) -> str:
+    return "draws planned (ESS >= 400, R-hat < 1.01)" if draws is None else f"{draws} draws"
 
 
 def _step(title: str, seconds: float) -> str:
@@ -179,7 +198,9 @@ def _whole(minimum: int):
             raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
         if value < minimum:
             raise argparse.ArgumentTypeError(
-                f"{value} is not positive" if minimum == 1 else f"{value} is negative")
+                f"{value} is not positive" if minimum == 1 else f"{value} is negative"
+                if minimum == 0 else f"{value} is below {minimum}: the summary's diagnostics "
+                f"(R-hat, ESS) need at least {minimum} draws per chain")
         return value
 
     return parse
@@ -187,6 +208,7 @@ def _whole(minimum: int):
 
 _positive = _whole(1)
 _nonnegative = _whole(0)
+_draw_count = _whole(4)  # R-hat and ESS need 4 draws per chain
 
 
 def _options(args) -> dict:
@@ -227,11 +249,11 @@ def _demo(args, argv) -> int:
     say("=" * 72)
     say(textwrap.indent(scene.story, "  "))
     say(f"\n  {n:,} records, {p} coefficients ({scene.family}); data in {data_path}")
-    say(f"  {args.chains} chains x {args.draws} draws after {args.warmup} warm-up steps, "
+    say(f"  {args.chains} chains x {_draws_words(args.draws)} after {args.warmup} warm-up steps, "
         f"seed {args.seed}\n")
     result = workflow(scene.logdensity, scene.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup, say=say,
-                      thin=args.thin, restarts=args.restarts)
+                      thin=args.thin, restarts=args.restarts, labels=scene.names)
     print()
     print(str(result.summary))
     truth = _truth_table(scene, result.summary)
@@ -261,7 +283,8 @@ def _truth_table(scene, summary) -> dict:
         z = (mean - true) / sd
         rows.append({"name": name, "label": label, "true": true, "mean": mean, "sd": sd,
                      "z": z})
-        lines.append(f"  {name + ' ' + label:<26}{true:>8.3f}{mean:>9.3f}{sd:>8.3f}{z:>+16.2f}")
+        shown = name if name == label else f"{name} {label}"
+        lines.append(f"  {shown:<26}{true:>8.3f}{mean:>9.3f}{sd:>8.3f}{z:>+16.2f}")
     worst = max(abs(r["z"]) for r in rows)
     low, high = _max_z_range(len(rows))
     lines.append(f"  largest |mean - true| / sd: {worst:.2f}. Each ratio is about a standard "
@@ -318,13 +341,13 @@ def _run(args, argv) -> int:
     data = f", {model.data.rows:,} rows of {model.data.path.name}" if model.data else ""
     say(f"fisherwalk run: {model.path} ({model.dim} parameters{data})")
     say("=" * 72)
-    say(f"  {args.chains} chains x {args.draws} draws after {args.warmup} warm-up steps, "
+    say(f"  {args.chains} chains x {_draws_words(args.draws)} after {args.warmup} warm-up steps, "
         f"seed {args.seed}\n")
     result = workflow(model.logdensity, model.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup,
                       fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
                       pointwise=model.pointwise if args.pointwise else None,
-                      derived=model.derived, checkpoint=checkpoint)
+                      derived=model.derived, checkpoint=checkpoint, labels=model.labels)
     print()
     print(str(result.summary))
     extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
@@ -394,8 +417,9 @@ def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
                      help=f"output folder, created if needed (default: {out_default})")
     sub.add_argument("--chains", type=_positive, default=DEFAULT_CHAINS, metavar="N",
                      help=f"number of chains (default {DEFAULT_CHAINS})")
-    sub.add_argument("--draws", type=_positive, default=DEFAULT_DRAWS, metavar="N",
-                     help=f"draws kept per chain after the warm-up (default {DEFAULT_DRAWS})")
+    sub.add_argument("--draws", type=_draw_count, default=DEFAULT_DRAWS, metavar="N",
+                     help="draws kept per chain after the warm-up (default: planned, until "
+                          "every ESS >= 400 and R-hat < 1.01, within a budget)")
     sub.add_argument("--warmup", type=_positive, default=DEFAULT_WARMUP, metavar="N",
                      help=f"warm-up steps per chain (default {DEFAULT_WARMUP})")
     sub.add_argument("--seed", type=_nonnegative, default=DEFAULT_SEED, metavar="S",

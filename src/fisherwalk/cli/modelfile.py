@@ -50,6 +50,17 @@ def _file_problem(path: Path, what: str, todo: str) -> ModelFileError:
 _OPTIONAL = ("fisher", "names", "pointwise", "derived")
 
 
+def _advice(err: Exception) -> str:
+    """What to do when logdensity(initial_position) fails, by the kind of failure."""
+    if isinstance(err, NameError | AttributeError | ImportError):
+        return ("fix the model file: a name used inside logdensity is not defined or not "
+                "imported there (check the spelling and the file's imports).")
+    if isinstance(err, KeyError | IndexError | TypeError | ValueError):
+        return ("make logdensity accept initial_position's structure (the same keys, "
+                "shapes and order).")
+    return "fix the model file so that logdensity(initial_position) returns a number."
+
+
 def load_model(path, data=None) -> ModelSpec:
     """Import a model file and check what it defines.
 
@@ -115,7 +126,7 @@ def load_model(path, data=None) -> ModelSpec:
         shape = np.shape(value)
     except Exception as err:  # noqa: BLE001
         raise _file_problem(path, f"logdensity(initial_position) raised {_describe(err, path)}",
-                            "make logdensity accept initial_position's structure.") from None
+                            _advice(err)) from None
     if shape != ():
         raise _file_problem(path, f"logdensity(initial_position) returns an array of shape "
                             f"{shape}, not a scalar.",

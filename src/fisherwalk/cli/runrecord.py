@@ -123,7 +123,9 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin,
                      "derived": list(trace.columns()[1][len(trace.names):]),
                      "pointwise_observations": None if trace.pointwise is None
-                     else int(trace.pointwise.shape[-1])},
+                     else int(trace.pointwise.shape[-1]),
+                     "draws": int(trace.flat.shape[1]),
+                     "run_length": None if trace.length is None else trace.length._asdict()},
         "seconds": result.seconds,
         **extra,
     })

@@ -34,8 +34,8 @@ from .checks import (
     information,
     validated_matrix,
 )
-from .modes import check_box, collect_modes, restart_points
-from .search import make_search, timed
+from .modes import SCOUT_SPREAD, check_box, collect_modes, restart_points, scout_points
+from .search import compile_ahead, make_search, timed
 
 __all__ = ["LaplaceFit", "laplace", "check_fisher", "fisher_from_cholesky"]
 
@@ -55,7 +55,10 @@ class LaplaceFit(NamedTuple):
     fisher_source: str  # "hessian" (autodiff) or "user"
     modes: tuple[tuple[Any, float], ...]  # distinct modes (pytree, log density), best first
     warnings: tuple[str, ...]  # notes for the user (other modes, a better restart, ...)
-    seconds: dict[str, float]  # wall times: compile, run, restarts_compile, restarts_run, total
+    seconds: dict[str, float]  # wall times: compile, run, restarts_compile, restarts_run,
+    #                            scouts, total
+    modes_flat: tuple[np.ndarray, ...] = ()  # the distinct modes ravelled, as in ``modes``
+    modes_fisher: tuple[np.ndarray, ...] = ()  # the Fisher information at each of them
 
 
 def fisher_from_cholesky(cholesky: jax.Array) -> jax.Array:
@@ -105,6 +108,8 @@ def laplace(
     rng_key: jax.Array | None = None,
     spread: float = 3.0,
     box: tuple[Any, Any] | None = None,
+    scouts: int = 0,
+    scout_spread: float = SCOUT_SPREAD,
 ) -> LaplaceFit:
     """Find the posterior mode and the Fisher information there (Laplace approximation).
 
@@ -142,7 +147,17 @@ def laplace(
         Restarts start from N(mode, spread² H⁻¹) around the first mode found ...
     box
         ... or, if given, uniformly inside ``(lower, upper)`` (pytrees like
-        ``position``, arrays of d values, or scalars).
+        ``position``, arrays of d values, or scalars). Use a box when you know where the
+        posterior's mass can lie (e.g. the prior's range): restarts then search all of
+        it, not only the neighbourhood of the first mode.
+    scouts
+        Cheap searches for other modes, run one after another with the already compiled
+        search (no extra compilation), from over-dispersed points in antithetic pairs
+        mode ± c·S z, z ~ N(0, I), S Sᵀ = H⁻¹, c = ``scout_spread`` (far beyond the
+        first mode's own spread of ~3 sd). Scouts that fail are dropped silently.
+        :func:`fisherwalk.start` runs 8 by default. Needs ``rng_key``.
+    scout_spread
+        c above (default 15).
 
     Returns
     -------
@@ -194,7 +209,8 @@ def laplace(
     tol = (float(np.sqrt(np.finfo(dtype).eps)) if gradient_tolerance is None
            else gradient_tolerance)
     check_options(max_iterations, tol, restarts, spread)
-    key = check_key(rng_key) if restarts else None
+    check_options(max_iterations, tol, scouts, scout_spread)
+    key = check_key(rng_key) if restarts or scouts else None
     bounds = check_box(box, names) if restarts and box is not None else None
     check_structure(logdensity_fn, position)
     if fisher is not None and not callable(fisher):  # a matrix: validate before compiling
@@ -207,7 +223,7 @@ def laplace(
     search = jax.jit(make_search(logp, use_hessian))
     args = (jnp.asarray(max_iterations, jnp.int32), jnp.asarray(tol, dtype))
     try:
-        main, compile_s, run_s = timed(search, x0, *args)
+        compiled, compile_s = compile_ahead(search, x0, *args)
     except (TypeError, NotImplementedError) as err:
         raise ModelError(explain(
             f"JAX could not differentiate the log density: {err}",
@@ -215,7 +231,9 @@ def laplace(
             "write it with differentiable jax.numpy operations; if only the second "
             "derivative fails (e.g. a custom_vjp), pass fisher=... (a matrix or a function "
             "of the mode) so that no Hessian is needed.")) from err
-    main = jax.tree_util.tree_map(np.asarray, main)
+    began = time.perf_counter()
+    main = jax.tree_util.tree_map(np.asarray, jax.block_until_ready(compiled(x0, *args)))
+    run_s = time.perf_counter() - began
     check_start(main, logdensity_fn, position, names)
     check_end(main)
     info = information(main, fisher, unravel, names)
@@ -224,14 +242,25 @@ def laplace(
     notes: list[str] = []
     modes = [(main, info)]
     evaluations = int(main.evaluations)
+    batches = []
     if restarts:
         starts = restart_points(key, main.x, info, restarts, spread, bounds, dtype)
         batch, c_s, r_s = timed(jax.jit(jax.vmap(search, in_axes=(0, None, None))),
                                  starts, *args)
         seconds.update(restarts_compile=c_s, restarts_run=r_s)
-        batch = jax.tree_util.tree_map(np.asarray, batch)
+        batches.append(jax.tree_util.tree_map(np.asarray, batch))
+    if scouts:
+        began = time.perf_counter()
+        points = scout_points(key, main.x, info, scouts, scout_spread, dtype)
+        found = [jax.tree_util.tree_map(np.asarray, compiled(jnp.asarray(p), *args))
+                 for p in points]
+        batches.append(jax.tree_util.tree_map(lambda *leaves: np.stack(leaves), *found))
+        seconds["scouts"] = time.perf_counter() - began
+    if batches:
+        batch = jax.tree_util.tree_map(lambda *leaves: np.concatenate(leaves), *batches)
         evaluations += int(batch.evaluations.sum())
-        modes, notes = collect_modes(modes, batch, fisher, unravel, names, tol)
+        modes, notes = collect_modes(modes, batch, fisher, unravel, names, tol,
+                                     report_failures=restarts > 0)
     best, best_info = modes[0]
     cholesky = jnp.asarray(np.linalg.cholesky(best_info), dtype=dtype)
     seconds["total"] = time.perf_counter() - started
@@ -249,4 +278,6 @@ def laplace(
         modes=tuple((unravel(jnp.asarray(m.x, dtype)), float(m.logdensity)) for m, _ in modes),
         warnings=tuple(notes),
         seconds=seconds,
+        modes_flat=tuple(np.asarray(m.x, dtype) for m, _ in modes),
+        modes_fisher=tuple(np.asarray(m_info, dtype) for _, m_info in modes),
     )

@@ -128,6 +128,13 @@ def probe(logp: Callable, x0: jax.Array, x: jax.Array, fisher: jax.Array | None)
     return directions, jnp.where(jnp.isnan(values), -jnp.inf, values), radius
 
 
+def compile_ahead(fn: Callable, *args) -> tuple[Callable, float]:
+    """Compile a jitted function for these arguments: (compiled, compile seconds)."""
+    t0 = time.perf_counter()
+    compiled = fn.lower(*args).compile()
+    return compiled, time.perf_counter() - t0
+
+
 def timed(fn: Callable, *args) -> tuple[Any, float, float]:
     """Compile ahead of time, then run: (result, compile seconds, run seconds)."""
     t0 = time.perf_counter()

@@ -169,7 +169,8 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
         ax.axhline(mode[i], color="black", ls="--", lw=0.9,
                    label="Laplace mode" if i == 0 else None)
         ax.set_title(names[i], fontsize=9)
-        ax.set_xlabel("step after warm-up", fontsize=8)
+        ax.set_xlabel("step after warm-up" if trace.walker.report.warmup is not None
+                      else "step (no warm-up)", fontsize=8)
         ax.set_ylabel("value", fontsize=8)
     _legend(fig, min(chains + 1, 9))
     fig.suptitle(f"Chain traces: {chains} chains x {draws} draws{note}", fontsize=11)
@@ -220,6 +221,12 @@ def plot_tuning(trace, path=None):
         ax_jump.plot(grid, curve.slowest_jump * dim, color="#1b6ca8", lw=1.2, ls=":",
                      label="slowest direction's jump x d")
     for ax, values in ((ax_acc, marks.acceptance), (ax_jump, marks.jump_distance)):
+        if warm is None:  # no refine(): walk() used the scale start() chose
+            ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
+                       label=f"chosen by start(), no warm-up: l = {refined:.3f}")
+            ax.plot([refined], values[1:], "o", color="#1b6ca8", ms=5, zorder=3,
+                    label="predicted at this scale")
+            continue
         ax.axvline(chosen, color="#6a4c93", ls="--", lw=1.0,
                    label=f"chosen by start(): l = {chosen:.3f}")
         ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,

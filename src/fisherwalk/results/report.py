@@ -71,6 +71,7 @@ class Summary(NamedTuple):
     notes: tuple[str, ...]
     rhat_limit: float = 1.01  # the thresholds the warnings and the check column used
     ess_limit: float = 400.0
+    flags: tuple[str, ...] = ()  # per parameter, extra words for the check column
 
     def table(self) -> str:
         """The summary as text: header, one row per parameter, warnings."""

@@ -68,6 +68,8 @@ def _row(s, j: int) -> list[str]:
         flags.append("R-hat")
     if min(s.ess_bulk[j], s.ess_tail[j]) < s.ess_limit:
         flags.append("ESS")
+    if j < len(s.flags) and s.flags[j]:
+        flags.append(s.flags[j])
     cells = [
         s.names[j],
         _num(float(s.mean[j]), places), _num(float(s.sd[j]), places),

@@ -13,9 +13,11 @@ import jax
 import numpy as np
 
 from ..base.pytrees import parameter_names, ravel_batch
+from .coverage import mode_caveats
+from .diagnostics import whitened_jump
 from .report import summarize
 
-__all__ = ["Trace", "derived_names"]
+__all__ = ["Trace", "derived_names", "per_step_jump"]
 
 
 class Trace(NamedTuple):
@@ -37,6 +39,7 @@ class Trace(NamedTuple):
     complete: bool  # False when the run was interrupted (the trace holds what finished)
     pointwise: np.ndarray | None = None  # (chains, draws, n_obs) walk(pointwise=...) values
     derived: Any = None  # walk(derived=...) pytree, each leaf with leading (chains, draws)
+    length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -71,13 +74,22 @@ class Trace(NamedTuple):
         # What the sampler aimed for: the warm-up's target when it adapted the scale,
         # else the Gaussian picture's prediction at the scale used.
         aim = tuning.target_acceptance if warm is None else warm.target_acceptance
-        notes = ()
-        if self.thin > 1:
-            notes = (f"realised jump not measured: the trace keeps one state in {self.thin} "
-                     "steps, and the jump is per step",)
+        realised = None
+        if self.thin == 1 and self.flat.shape[1] >= 4:  # whitened_jump needs 4 draws
+            realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).per_chain
+        elif self.thin > 1 and self.flat.shape[1] >= 4:
+            realised = per_step_jump(self.flat, np.asarray(tuning.whitening), self.thin)
+        limits = {}
+        header: tuple[str, ...] = ()
+        if self.length is not None:
+            limits = {"rhat_limit": self.length.rhat_limit, "ess_limit": self.length.ess_limit}
+            header = (self.length.line(),)
+        if realised is not None and self.thin > 1:
+            header += (f"realised jump per step converted from draws kept every {self.thin} "
+                       "steps (AR(1) picture: E|x(t+k) - x(t)|² = 2(1 - (1 - J/2)^k) per "
+                       "whitened direction)",)
         flat, names = self.columns()
-        measured = self.thin == 1 and self.flat.shape[1] > 1
-        return summarize(
+        summary = summarize(
             flat,
             names,
             interval=interval,
@@ -86,12 +98,20 @@ class Trace(NamedTuple):
             gaussian_acceptance=tuning.target_acceptance,
             acceptance_steps=self.accepted,
             predicted_jump=tuning.predicted_jump,
-            cholesky=np.asarray(tuning.whitening) if measured else None,
+            realised_jump=realised,
             faults=self.faults.sum(axis=1),
-            header_notes=notes,
+            header_notes=header,
             proposal_shape=np.asarray(tuning.shape),
             seconds=self.seconds if self.seconds > 0 else None,
+            **limits,
         )
+        fit = self.walker.report.laplace
+        modes, flags = mode_caveats(self.flat, self.names, getattr(fit, "modes_flat", ()),
+                                    [h for _, h in fit.modes], getattr(fit, "modes_fisher", ()))
+        if modes:
+            flags = tuple(flags) + ("",) * (len(names) - len(flags))
+            summary = summary._replace(warnings=summary.warnings + (modes,), flags=flags)
+        return summary
 
 
 def derived_names(derived: Any) -> tuple[str, ...]:
@@ -102,3 +122,21 @@ def derived_names(derived: Any) -> tuple[str, ...]:
     if not jax.tree_util.tree_flatten_with_path(derived)[0][0][0]:  # a bare array
         return parameter_names({"derived": single})
     return parameter_names(single)
+
+
+def per_step_jump(flat: np.ndarray, whitening: np.ndarray, thin: int) -> float:
+    """Realised squared jump per step (whitened units, summed over directions) from draws
+    kept every ``thin`` steps.
+
+    A direction whose lag-1 autocorrelation is rho = 1 - J/2 (J its squared jump per step,
+    unit variance) has E|x(t+k) - x(t)|² = 2(1 - rho^k) under the AR(1) picture (an
+    approximation, no published source for random-walk Metropolis); inverting it per
+    whitened direction gives J = 2(1 - (1 - D/2)^(1/k)) from the measured D per kept draw.
+    For k = 1 it is the measured jump itself.
+    """
+    white = np.asarray(flat) @ np.asarray(whitening)  # z = Lᵀ θ, row-vector form
+    moves = np.diff(white, axis=1)
+    kept = np.mean(moves**2, axis=(0, 1))  # (d,) per whitened direction, per kept draw
+    half = np.clip(kept / 2.0, 0.0, 1.0)
+    per_step = 2.0 * (1.0 - (1.0 - half) ** (1.0 / thin))
+    return float(np.sum(per_step))

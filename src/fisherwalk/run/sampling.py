@@ -15,11 +15,11 @@ from collections.abc import Callable
 import jax
 import numpy as np
 
-from ..base.checks import whole_number
+from ..base.checks import positive_number, whole_number
 from ..base.keys import as_key, key_data, stream
-from ..errors import FisherwalkWarning
+from ..errors import FisherwalkWarning, InputError, explain
 from ..results.trace import Trace
-from . import derive, engine
+from . import derive, engine, plan
 from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
 from .progress import progress_bar
@@ -48,6 +48,14 @@ class _Collector:
             target[:, s] = np.swapaxes(value[:keep], 0, 1)
         self.done += keep
 
+    def grow(self, draws: int) -> None:
+        """Room for ``draws`` kept draws per chain in all (a planned run's next round)."""
+        for name in ("flat", "logdensity", "accepted", "acceptance_rate", "faults"):
+            old = getattr(self, name)
+            new = np.zeros((old.shape[0], draws) + old.shape[2:], dtype=old.dtype)
+            new[:, : self.done] = old[:, : self.done]
+            setattr(self, name, new)
+
     def truncate(self) -> None:
         for name in ("flat", "logdensity", "accepted", "acceptance_rate", "faults"):
             setattr(self, name, getattr(self, name)[:, : self.done])
@@ -56,9 +64,13 @@ class _Collector:
 def walk(
     walker: Walker,
     rng_key: jax.Array,
-    draws: int = 1000,
+    draws: int | None = None,
     thin: int = 1,
     *,
+    ess_limit: float = plan.ESS_LIMIT,
+    rhat_limit: float = plan.RHAT_LIMIT,
+    max_draws: int = plan.MAX_DRAWS,
+    max_seconds: float = plan.MAX_SECONDS,
     chunk: int = DEFAULT_CHUNK,
     progress: bool | None = None,
     checkpoint=None,
@@ -66,7 +78,7 @@ def walk(
     pointwise: Callable | None = None,
     derived: Callable | None = None,
 ) -> Trace:
-    """Run every chain of a walker for ``draws`` kept draws.
+    """Run every chain of a walker (a Walker holds all the chains) and collect the draws.
 
     Parameters
     ----------
@@ -74,21 +86,32 @@ def walk(
         From :func:`fisherwalk.start` or :func:`fisherwalk.refine`.
     rng_key
         JAX key (typed or old-style). Same key, same draws, bit for bit, whatever the
-        chunking, and after a resume.
+        chunking, the rounds, and after a resume.
     draws
-        Kept draws per chain.
+        Kept draws per chain. ``None`` (default): run in rounds until every parameter
+        has bulk and tail ESS >= ``ess_limit`` and R-hat < ``rhat_limit``, or a budget
+        runs out (:mod:`fisherwalk.run.plan`: the first round is sized from the
+        predicted ESS per step of this walker, later ones from the measured ESS).
+        ``trace.length`` and a line of the summary say how the run ended.
     thin
         Steps per kept draw.
+    ess_limit, rhat_limit
+        The targets of a planned run (Vehtari et al. 2021 recommend 400 and 1.01); the
+        summary warns against the same numbers.
+    max_draws, max_seconds
+        The budgets of a planned run: kept draws per chain, and wall seconds of sampling
+        (checked between chunks).
     chunk
         Kept draws per compiled call (progress and checkpoints happen between chunks).
         Keep the default so that warm-up and sampling share one compilation.
     progress
-        Show a progress bar with draws per second and the running acceptance. Default:
-        only when standard error is a terminal.
+        Show a progress bar with the round, the running acceptance and the predicted time
+        left. Default: in a terminal (standard error) and in a notebook.
     checkpoint
-        A directory path (e.g. ``"run.ckpt"``): the finished draws are saved there
-        atomically, and a call with an existing checkpoint of the same run continues from
-        it; one of another run is refused, never overwritten (:mod:`fisherwalk.run.checkpoint`).
+        A directory path (e.g. ``"run.ckpt"``), with ``draws=N`` only: the finished draws
+        are saved there atomically, and a call with an existing checkpoint of the same
+        run continues from it; one of another run is refused, never overwritten
+        (:mod:`fisherwalk.run.checkpoint`).
     checkpoint_every
         Seconds between checkpoint saves (0: after every chunk); the end of the run and
         Ctrl-C always save.
@@ -109,53 +132,110 @@ def walk(
 
     Notes
     -----
+    A planned run is a prefix of the fixed run with the same key: its rounds continue the
+    same step counter, so ``walk(w, key)`` stopping at N draws equals
+    ``walk(w, key, draws=N)`` bit for bit.
+
     Ctrl-C during a run without a checkpoint returns a Trace of the draws finished so
     far (``complete=False``) with a warning, instead of losing them.
     """
-    draws = whole_number(draws, "draws", "walk(draws=...)")
+    planned = draws is None
     thin = whole_number(thin, "thin", "walk(thin=...)")
     chunk = whole_number(chunk, "chunk", "walk(chunk=...)")
     key = as_key(rng_key, where="walk(rng_key=...)")
     state = continuable_state(walker, "walk()")
     derive.check_functions(walker, pointwise=pointwise, derived=derived)
     chains, dim = state.position.shape
+    if planned:
+        ess_limit = positive_number(ess_limit, "ess_limit", "walk(ess_limit=...)")
+        rhat_limit = positive_number(rhat_limit, "rhat_limit", "walk(rhat_limit=...)")
+        if rhat_limit <= 1.0:
+            raise InputError(explain(f"rhat_limit={rhat_limit} is not above 1.",
+                                     "walk(rhat_limit=...)",
+                                     "use a limit above 1, such as 1.01 (the default)."))
+        max_draws = whole_number(max_draws, "max_draws", "walk(max_draws=...)")
+        max_seconds = positive_number(max_seconds, "max_seconds", "walk(max_seconds=...)")
+        if checkpoint is not None:
+            raise InputError(explain(
+                "A checkpoint needs a run of fixed length, and draws was not given (a "
+                "planned run).", "walk(checkpoint=...)",
+                "pass draws=N with checkpoint=..., e.g. the draws per chain of a planned "
+                "run you made before (trace.length.rounds[-1])."))
+        total = plan.first_round(walker.tuning, chains, thin, chunk, ess_limit, rhat_limit,
+                                 max_draws)
+    else:
+        total = whole_number(draws, "draws", "walk(draws=...)")
     dtype = np.asarray(state.logdensity).dtype
-    collector = _Collector(chains, draws, dim, dtype)
+    collector = _Collector(chains, total, dim, dtype)
     ctrl = jax.device_put(engine.control(dtype=dtype))  # moved to the device once
     noise_key = stream(key, 0)
     factor = jax.device_put(walker.tuning.factor)
     store = None
     if checkpoint is not None:
-        store = Store(checkpoint, walker, key, draws, thin, chunk,
-                                  every=checkpoint_every)
+        store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every)
         state = store.restore(collector, state)
-    bar = progress_bar(draws, progress, "sampling")
+    bar = progress_bar(total, progress, "sampling, round 1" if planned else "sampling")
     if bar is not None:
         bar.update(collector.done)
     began = time.perf_counter()
+    first_done = collector.done
+    rounds: list[int] = []
+    stopped, min_ess, max_rhat, previous = "fixed length", None, None, None
     try:
-        for keep, out in run_chunks(walker.engine, noise_key, state, factor, ctrl, draws,
-                                    chunk=chunk, thin=thin, done=collector.done):
-            collector.add(out, keep)
-            if keep == chunk:  # the chains continue from the chunk's end, still on the device
-                state = out.state
-            else:
-                last = collector.done - 1
-                state = ChainState(collector.flat[:, last], collector.logdensity[:, last])
-            if store is not None:
-                store.save(collector, state)
+        while True:
+            for keep, out in run_chunks(walker.engine, noise_key, state, factor, ctrl, total,
+                                        chunk=chunk, thin=thin, done=collector.done):
+                collector.add(out, keep)
+                if keep == chunk:  # the chains continue from the chunk's end, on the device
+                    state = out.state
+                else:
+                    last = collector.done - 1
+                    state = ChainState(collector.flat[:, last], collector.logdensity[:, last])
+                if store is not None:
+                    store.save(collector, state)
+                elapsed = time.perf_counter() - began
+                if bar is not None:
+                    bar.update(keep)
+                    _show(bar, collector, total, elapsed, first_done, len(rounds) + 1, planned)
+                if planned and elapsed > max_seconds and collector.done < total:
+                    stopped = "seconds budget"
+                    break
+            if not planned:
+                break
+            rounds.append(collector.done)
+            min_ess, max_rhat = plan.verdict(collector.flat[:, :collector.done])
+            if stopped == "seconds budget":
+                break
+            if min_ess >= ess_limit and max_rhat < rhat_limit:
+                stopped = "targets met"
+                break
+            if plan.stalled(previous, (collector.done, max_rhat)):
+                stopped = "chains disagree"
+                break
+            if collector.done >= max_draws:
+                stopped = "draws budget"
+                break
+            if time.perf_counter() - began > max_seconds:
+                stopped = "seconds budget"
+                break
+            previous = (collector.done, max_rhat)
+            total = plan.next_total(collector.done, min_ess, max_rhat, chunk, ess_limit,
+                                    rhat_limit, max_draws)
+            collector.grow(total)
             if bar is not None:
-                bar.update(keep)
-                bar.set_postfix(acceptance=f"{collector.accepted[:, :collector.done].mean():.3f}")
+                bar.total = total
+                bar.set_description(f"sampling, round {len(rounds) + 1}")
+                bar.refresh()
     except KeyboardInterrupt:
         if store is not None:
             store.save(collector, state, force=True)
             raise
         collector.truncate()
+        stopped = "interrupted"
         warnings.warn(
-            f"walk() was interrupted after {collector.done} of {draws} draws per chain; the "
+            f"walk() was interrupted after {collector.done} of {total} draws per chain; the "
             "returned Trace holds them (complete=False). To make long runs resumable, pass "
-            "checkpoint='run.ckpt'.",
+            "draws=N and checkpoint='run.ckpt'.",
             FisherwalkWarning,
             stacklevel=2,
         )
@@ -163,15 +243,34 @@ def walk(
         if bar is not None:
             bar.close()
     seconds = time.perf_counter() - began
-    trace = _trace(walker, collector, state, thin, key, seconds, complete=collector.done == draws)
+    collector.truncate()
+    if not planned and stopped != "interrupted":
+        rounds = [collector.done]
+    length = plan.RunLength(
+        planned, stopped, tuple(rounds) or (collector.done,), float(ess_limit),
+        float(rhat_limit), max_draws if planned else None, max_seconds if planned else None,
+        plan.predicted_ess_per_step(walker.tuning), min_ess, max_rhat)
+    complete = stopped != "interrupted" and (planned or collector.done == total)
+    trace = _trace(walker, collector, state, thin, key, seconds, complete=complete,
+                   length=length)
     return derive.attach(trace, pointwise=pointwise, derived=derived)
 
 
-def _trace(walker, collector, state, thin, key, seconds, *, complete) -> Trace:
+def _show(bar, collector, total, elapsed, first_done, round_number, planned) -> None:
+    """The bar's postfix: running acceptance, and the predicted seconds left."""
+    per_draw = elapsed / max(collector.done - first_done, 1)
+    info = {"acceptance": f"{collector.accepted[:, :collector.done].mean():.3f}"}
+    if planned:
+        info["round"] = round_number
+    info["left"] = f"{per_draw * (total - collector.done):.0f}s"
+    bar.set_postfix(info, refresh=False)  # the bar refreshes at its own pace
+
+
+def _trace(walker, collector, state, thin, key, seconds, *, complete, length=None) -> Trace:
     flat = collector.flat
     tree = walker.unravel_many(flat) if flat.shape[1] else None
     final = walker._replace(state=ChainState(np.asarray(state.position),
                                              np.asarray(state.logdensity)))
     return Trace(tree, collector.logdensity, collector.accepted, final, flat,
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
-                 complete)
+                 complete, length=length)

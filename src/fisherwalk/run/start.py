@@ -19,8 +19,10 @@ import numpy as np
 from ..base.keys import as_key, normals, stream
 from ..errors import FisherwalkWarning, InputError, explain
 from ..fit.laplace import LaplaceFit, laplace
+from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
+from .progress import progress_bar
 from .tuningfile import SavedTuning, check_tuning
 from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
 
@@ -36,9 +38,15 @@ def _validate_chains(chains) -> int:
             explain(
                 f"chains={chains!r} is not a positive whole number.",
                 "start(chains=...)",
-                "use at least 2 chains (4 is the default) so that R-hat can compare them.",
+                "use 1 or more chains; 4 (the default) or more lets R-hat compare chains.",
             )
         )
+    if chains == 1:
+        warnings.warn(
+            "chains=1: R-hat needs at least 2 chains to compare; with one chain it only "
+            "compares the chain's two halves, and a second mode or a stuck chain goes "
+            "unseen. Use chains=4 (the default) unless you know why one chain suffices.",
+            FisherwalkWarning, stacklevel=3)
     return int(chains)
 
 
@@ -172,6 +180,37 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
     return positions, logdens, check, notes
 
 
+def _spread_over_modes(evaluate, fit: LaplaceFit, positions, logdens):
+    """Move chains to the other modes, round robin in order of Laplace mass.
+
+    Chain c keeps its standard-normal draw z: it starts at m_k + S_k z (S_k S_kᵀ = H_k⁻¹)
+    for its mode k; chains of the first mode do not move (so a one-mode run is unchanged).
+    """
+    mass = laplace_masses([h for _, h in fit.modes], fit.modes_fisher)
+    order = np.argsort(-mass, kind="stable")
+    chains = positions.shape[0]
+    main = np.asarray(fit.mode_flat, np.float64)
+    main_shape = proposal.shape_from_cholesky(np.linalg.cholesky(
+        np.asarray(fit.modes_fisher[0], np.float64)))
+    z = np.linalg.solve(main_shape, (positions - main).T).T
+    assigned = [int(order[c % len(order)]) for c in range(chains)]
+    moved = positions.copy()
+    for c, k in enumerate(assigned):
+        if k == 0:
+            continue
+        shape_k = proposal.shape_from_cholesky(np.linalg.cholesky(
+            np.asarray(fit.modes_fisher[k], np.float64)))
+        moved[c] = np.asarray(fit.modes_flat[k], np.float64) + shape_k @ z[c]
+    logp = np.asarray(evaluate(moved))
+    for c, k in enumerate(assigned):  # a draw outside the support: start at the mode
+        if k != 0 and not np.isfinite(logp[c]):
+            moved[c] = fit.modes_flat[k]
+    logp = np.where(np.isfinite(logp), logp, np.asarray(evaluate(moved)))
+    note = ("Chains start spread across the modes so that R-hat can see them: "
+            + ", ".join(f"chain {c} at mode {k + 1}" for c, k in enumerate(assigned)) + ".")
+    return moved.astype(positions.dtype), logp.astype(logdens.dtype), note
+
+
 def start(
     logdensity_fn: Callable,
     position: Any,
@@ -183,6 +222,8 @@ def start(
     shape="fisher",
     criterion: str = "slowest",
     restarts: int = 0,
+    scouts: int = SCOUTS,
+    progress: bool | None = None,
     **laplace_options,
 ) -> Walker:
     """Tune random-walk Metropolis from the Laplace approximation of the posterior.
@@ -210,13 +251,27 @@ def start(
         For a shape that does not match H: ``"slowest"`` maximises the slowest
         direction's jump (it governs the minimum ESS), ``"total"`` the total jump.
     restarts
-        Extra mode searches from dispersed starting points (a check for other modes).
+        Extra mode searches from dispersed starting points (a check for other modes;
+        ``spread=`` or ``box=(lower, upper)`` in ``laplace_options`` say where: see
+        :func:`fisherwalk.laplace`).
+    scouts
+        Cheap searches for other modes from over-dispersed points, mode ± 15 posterior
+        sd in antithetic pairs (:func:`fisherwalk.laplace`'s ``scouts``; they reuse the
+        compiled search). 0 switches them off. When two or more distinct modes are
+        found, the chains start spread across them (one chain per mode in order of
+        Laplace mass, round robin), so that R-hat and the summary can see them, and a
+        warning names the modes.
+    progress
+        Show the phases (the Laplace fit, compilation included, then the Laplace draws)
+        as a progress bar; default: in a terminal and in a notebook.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 
     Returns
     -------
     Walker
+        All the chains (not one chain): their starting positions, the proposal they
+        share, and the report of the fit.
 
     Notes
     -----
@@ -235,17 +290,22 @@ def start(
     """
     chains = _validate_chains(chains)
     key = as_key(rng_key, where="start(rng_key=...)")
+    bar = progress_bar(2, progress, "start: Laplace fit (compiling, searching)", unit="phase")
     if fit is None:
-        key_restarts = jax.random.fold_in(key, 1) if restarts else None
+        key_restarts = jax.random.fold_in(key, 1) if restarts or scouts else None
         fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
-                      rng_key=key_restarts, **laplace_options)
+                      rng_key=key_restarts, scouts=scouts, **laplace_options)
     elif not isinstance(fit, LaplaceFit):
         raise InputError(explain(f"fit={type(fit).__name__} is not a LaplaceFit.",
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
     shape_matrix, kind = proposal_shape(shape, fit)
     tuning = tuning_for(shape_matrix, kind, fit.cholesky, criterion=criterion)
     notes = list(fit.warnings)
-    for message in fit.warnings:  # other modes, a better restart: say it out loud
+    if len(fit.modes_flat) > 1:  # one account of the modes, with their masses
+        notes = [n for n in notes if "distinct modes found" not in n]
+        notes.append(describe_modes(fit.modes_flat, [h for _, h in fit.modes],
+                                    fit.modes_fisher, fit.names))
+    for message in notes:  # other modes, a better restart: say it out loud
         warnings.warn(message, FisherwalkWarning, stacklevel=2)
     if kind != "fisher":
         notes.append(
@@ -254,8 +314,18 @@ def start(
             f"and target acceptance {tuning.target_acceptance:.3f} are chosen for it; relative "
             f"efficiency {tuning.choice.efficiency:.3f} of the matched proposal."
         )
+    if bar is not None:
+        bar.update(1)
+        bar.set_description("start: Laplace draws, PSIS check")
     model = make_model(logdensity_fn, fit.mode, chains)
     positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
     notes.extend(state_notes)
+    if len(fit.modes_flat) > 1:
+        positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
+        notes.append(note)
     report = StartReport(fit, check, tuple(notes))
+    if bar is not None:
+        bar.update(1)
+        bar.set_description("start: done")
+        bar.close()
     return assemble(logdensity_fn, report, tuning, positions, logdens, model=model)

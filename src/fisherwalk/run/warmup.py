@@ -113,12 +113,13 @@ def _run_phase(walker, noise_key, state, factor, steps, adapt_from, target, bar,
 def _khat_words(khat: float, limit: float) -> str:
     """PSIS k̂ in words; -inf means the importance ratios were all equal."""
     if khat == -math.inf:
-        return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (the "
-                "posterior is the Laplace Gaussian itself)")
+        return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (at each "
+                "of them the log density equals the Laplace Gaussian's up to a constant; "
+                "the draws test the region they cover, not the tails beyond it)")
     return f"PSIS k̂ {khat:.2f} (threshold {limit:.2f})"
 
 
-def _covariance_check(draws: np.ndarray, whitening: np.ndarray):
+def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = False):
     """Whitened warm-up covariance C = Lᵀ Σ̂ L against the identity.
 
     Returns Σ̂, the spectrum of C, the band of eigenvalues Monte Carlo error allows
@@ -127,10 +128,13 @@ def _covariance_check(draws: np.ndarray, whitening: np.ndarray):
     n_eff (tr C - log det C - d) is asymptotically chi-square with d(d+1)/2 degrees of
     freedom (Anderson 2003, An Introduction to Multivariate Statistical Analysis, 3rd ed.,
     section 10.8), with n_eff the effective number of draws (median ESS of the whitened
-    coordinates) standing in for the number of independent draws.
+    coordinates) standing in for the number of independent draws. With ``within``
+    (start() spread the chains over several modes) each chain is centred on its own mean.
     """
     chains, n, d = draws.shape
     kept = draws[:, n // 5:]  # drop the first fifth of phase 1 (the scale was settling)
+    if within:  # chains in different modes: the spread within each, not between them
+        kept = kept - kept.mean(axis=1, keepdims=True)
     pooled = kept.reshape(-1, d)
     cov = np.cov(pooled, rowvar=False).reshape(d, d)
     white = whitening.T @ cov @ whitening
@@ -211,8 +215,9 @@ def refine(
         state, draws, acc1, log_m1, _ = _run_phase(
             walker, stream(key, 1), state, tuning0.factor, half, 0,
             tuning0.choice.acceptance, bar)
-        cov, spectrum, bounds, n_eff, p_value = _covariance_check(draws,
-                                                                  np.asarray(fit.cholesky))
+        several = len(getattr(fit, "modes_flat", ())) > 1
+        cov, spectrum, bounds, n_eff, p_value = _covariance_check(
+            draws, np.asarray(fit.cholesky), within=several)
         reasons = []
         if khat > k_limit:
             reasons.append(f"PSIS k̂ = {khat:.2f} > {k_limit:.2f}: the Laplace approximation "
@@ -263,6 +268,9 @@ def refine(
             reasons.append(
                 f"at the theoretical scale the acceptance was {acc2:.3f}, not the predicted "
                 f"{target:.3f} (Monte Carlo error {mcse2:.3f})")
+            if bar is not None:  # the third phase adds steps to the bar's total
+                bar.total += half
+                bar.refresh()
             notes[-1] = ("Kept the proposal shape; adapted the scale in a third phase of "
                          f"{half} steps because " + reasons[-1] + ".")
             state2, _, acc2, log_m2, _ = _run_phase(
@@ -277,9 +285,13 @@ def refine(
     fisher_spectrum = np.sort(
         np.linalg.svd(np.asarray(fit.cholesky).T @ np.asarray(final.shape), compute_uv=False) ** 2
     )
+    aimed = f"aimed at {target:.3f}, the optimum for this shape"
+    if abs(final.target_acceptance - target) > 5e-4:  # the summary's target is this one
+        aimed += (f"; at the refined scale the Gaussian picture predicts "
+                  f"{final.target_acceptance:.3f}, the summary's target")
     notes.append(
         f"Scale {tuning0.scale:.3f} -> {scale_final:.3f}; acceptance in the last quarter "
-        f"{acc2:.3f} (target {target:.3f}); " + _khat_words(khat, k_limit) + ".")
+        f"{acc2:.3f} ({aimed}); " + _khat_words(khat, k_limit) + ".")
     warm = WarmupReport(
         steps, khat, k_limit, outside, tuning0.scale, tuning0.scale * math.exp(log_m1),
         float(scale_final), float(target), acc1, acc2, spectrum, bounds, p_value, n_eff,
