@@ -35,11 +35,18 @@ from jax.sharding import PartitionSpec as P
 
 from ..errors import InputError, ModelError, explain
 
-__all__ = ["CHAINS", "ROWS", "ChainPlacement", "chain_placement", "chain_mesh",
+__all__ = ["CHAINS", "ROWS", "automatic", "ChainPlacement", "chain_placement", "chain_mesh",
            "agree_across_processes"]
 
 CHAINS = "chains"  # the mesh axis the chains are split over
 ROWS = "rows"  # the mesh axis the data rows are split over (fisherwalk.sharded_logdensity)
+
+
+def automatic(mesh: Mesh) -> Mesh:
+    """The same devices and axis names with automatic (GSPMD) axes: XLA partitions the
+    engine and the log density; ``jax.make_mesh`` gives explicit axes by default, which
+    ``vmap`` over a function argument does not accept."""
+    return Mesh(mesh.devices, mesh.axis_names)
 
 
 def _largest_divisor(chains: int, limit: int) -> int:
@@ -64,7 +71,7 @@ def chain_mesh(chains: int, devices: Any = None, *, where: str = "spread_chains(
         count = devices.shape[CHAINS]
         if chains % count:
             raise InputError(_indivisible(chains, count, where))
-        return devices
+        return automatic(devices)
     multi = jax.process_count() > 1
     visible = jax.devices()
     if devices is None:
