@@ -85,6 +85,37 @@ def _place(host: np.ndarray, sharding: NamedSharding, n: int, padded: int):
     return jax.make_array_from_callback((padded,) + host.shape[1:], sharding, rows)
 
 
+def _process_rows(mesh: Mesh, axis: str, arrays, n: int, padded: int):
+    """Across processes: each process keeps the rows of its own devices' shards on the host.
+
+    A jitted function may not close over an array that spans other processes' devices
+    (JAX refuses), and fisherwalk's compiled loops take the log density as a closure. So
+    each process closes over its own rows only (a host constant of the same shape on every
+    process) and each device picks its shard from them by its index on the mesh axis.
+    """
+    shards = int(mesh.shape[axis])
+    per_shard = padded // shards
+    me = jax.process_index()
+    position = mesh.axis_names.index(axis)
+    mine = sorted({int(np.unravel_index(k, mesh.devices.shape)[position])
+                   for k, device in enumerate(mesh.devices.flat) if device.process_index == me})
+    slot = np.zeros(shards, dtype=np.int32)  # shard index -> place in this process's rows
+    slot[mine] = np.arange(len(mine), dtype=np.int32)
+    wanted = np.concatenate([np.arange(i * per_shard, (i + 1) * per_shard) for i in mine])
+    source = np.where(wanted < n, wanted, 0)
+    local = [np.asarray(a[wanted]) if a.shape[0] == padded else np.asarray(a[source])
+             for a in arrays]
+    count = len(mine)
+    agree_across_processes("shards per process", count)
+
+    def rows_of(_leaves):
+        k = jnp.asarray(slot)[jax.lax.axis_index(axis)]
+        return [jax.lax.dynamic_slice_in_dim(jnp.asarray(a), k * per_shard, per_shard)
+                for a in local]
+
+    return (), (P(),), rows_of
+
+
 def sharded_logdensity(
     loglik_fn: Callable[[Any, Any], jax.Array],
     data: Any,
@@ -141,25 +172,33 @@ def sharded_logdensity(
     padded = -(-n // shards) * shards
     per_shard = padded // shards
     agree_across_processes("data shapes", [(a.shape, str(a.dtype)) for a in arrays])
-    sharding = NamedSharding(mesh, P(axis))
-    placed = [_place(a, sharding, n, padded) for a in arrays]
-    mask = _place(np.arange(padded) < n, sharding, padded, padded)  # padding does not count
+    keep = np.arange(padded) < n  # the copies of row 0 do not count
+    if jax.process_count() == 1:
+        sharding = NamedSharding(mesh, P(axis))
+        placed = [_place(keep, sharding, padded, padded)]
+        placed += [_place(a, sharding, n, padded) for a in arrays]
+        specs = (P(),) + (P(axis),) * len(placed)
 
-    def shard_sum(position, keep, *leaves):
+        def rows_of(leaves):
+            return leaves
+    else:
+        placed, specs, rows_of = _process_rows(mesh, axis, (keep, *arrays), n, padded)
+
+    def shard_sum(position, *leaves):
+        mask, *leaves = rows_of(leaves)
         terms = loglik_fn(position, jax.tree.unflatten(treedef, leaves))
         if jnp.shape(terms) != (per_shard,):
             raise ModelError(explain(
                 f"loglik_fn returned shape {jnp.shape(terms)} for a shard of {per_shard} rows.",
                 "sharded_logdensity(loglik_fn=...)",
                 "return the log likelihood of each row, shape (rows,), not their sum."))
-        return jax.lax.psum(jnp.sum(jnp.where(keep, terms, 0.0)), axis)
+        return jax.lax.psum(jnp.sum(jnp.where(mask, terms, 0.0)), axis)
 
-    specs = (P(), P(axis)) + (P(axis),) * len(placed)
     summed = jax.shard_map(shard_sum, mesh=mesh, in_specs=specs, out_specs=P(),
                            axis_names=frozenset({axis}))
 
     def logdensity_fn(position):
-        total = summed(position, mask, *placed)
+        total = summed(position, *placed)
         return total if logprior_fn is None else total + logprior_fn(position)
 
     logdensity_fn.rows = n  # what was summed, for reading
