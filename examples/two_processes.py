@@ -115,7 +115,7 @@ def _worker(args) -> None:
           f"resumed walk {walk_seconds:.2f} s, complete {trace.complete}", flush=True)
 
 
-def _free_port() -> int:
+def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         return s.getsockname()[1]
@@ -127,7 +127,7 @@ def launch(rows: int, draws: int, out: Path, timeout: float = 300.0) -> dict:
 
     me = [sys.executable, str(Path(__file__).resolve()), "--worker", "--rows", str(rows),
           "--draws", str(draws), "--out", str(out)]
-    port = str(_free_port())
+    port = str(free_port())
     env = dict(os.environ)
     src = Path(__file__).resolve().parents[1] / "src"
     env["PYTHONPATH"] = os.pathsep.join([str(src), env.get("PYTHONPATH", "")])
