@@ -125,6 +125,7 @@ class ChainPlacement:
         self.mesh = mesh
         self.devices = int(mesh.size)
         self.multiprocess = jax.process_count() > 1
+        self.checked = not self.multiprocess  # across processes: compare shapes once
 
     def sharding(self, ndim: int, chain_axis: int | None) -> NamedSharding:
         spec = [None] * ndim
@@ -145,7 +146,12 @@ class ChainPlacement:
     def engine_inputs(self, noise, uniform, state, factor, control):
         """The engine's arguments placed: noise (draws, thin, chains, d) and uniforms
         (draws, thin, chains) split on axis 2, the state's arrays on axis 0, the factor
-        and the control replicated."""
+        and the control replicated. Across processes, the first call checks that every
+        process runs the same chains, dimension and dtype (before any step)."""
+        if not self.checked:
+            agree_across_processes("chains, dimension and dtype",
+                                   (np.shape(noise)[2:], str(np.asarray(noise).dtype)))
+            self.checked = True
         return (self.put(noise, 2), self.put(uniform, 2),
                 type(state)(*(self.put(x, 0) for x in state)), self.put(factor, None),
                 type(control)(*(self.put(x, None) for x in control)))
