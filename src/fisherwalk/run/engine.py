@@ -28,6 +28,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base.keys import step_noise
+from ..base.meshes import chain_placement
 from . import proposal
 
 DEFAULT_CHUNK = 100  # kept draws per compiled call; warm-up uses the same, so one compile
@@ -110,13 +111,16 @@ def _compiled(logdensity_flat: Callable) -> Callable:
     return jax.jit(advance)
 
 
-def make_engine(logdensity_flat: Callable, chains: int) -> Callable:
+def make_engine(logdensity_flat: Callable, chains: int, devices=None) -> Callable:
     """Build ``engine(stream, first_step, state, factor, control, draws, thin=1) -> Chunk``.
 
     ``stream`` is a Philox key (:func:`fisherwalk.base.keys.stream`); ``first_step`` the global
     index of the first step this call takes. Compiles once per (draws, thin) pair.
+    ``devices``: where the chains run (:func:`fisherwalk.base.meshes.chain_mesh`; None:
+    automatic, one device = no placement).
     """
     compiled = _compiled(logdensity_flat)
+    placement = chain_placement(chains, devices)  # [devices] None on one device
 
     def engine(stream, first_step: int, state: ChainState, factor, control: Control,
                draws: int, thin: int = 1) -> Chunk:
@@ -125,9 +129,13 @@ def make_engine(logdensity_flat: Callable, chains: int) -> Callable:
         noise, uniform = step_noise(stream, first_step, draws * thin, chains, dim, dtype)
         noise = noise.reshape(draws, thin, chains, dim)
         uniform = uniform.reshape(draws, thin, chains)
-        return compiled(noise, uniform, state, factor, control)
+        if placement is None:
+            return compiled(noise, uniform, state, factor, control)
+        placed = placement.engine_inputs(noise, uniform, state, factor, control)  # [devices]
+        return placement.gather(compiled(*placed))  # [devices]
 
     engine.compiled = compiled
+    engine.placement = placement  # [devices]
     return engine
 
 
