@@ -40,6 +40,8 @@ class Trace(NamedTuple):
     pointwise: np.ndarray | None = None  # (chains, draws, n_obs) walk(pointwise=...) values
     derived: Any = None  # walk(derived=...) pytree, each leaf with leading (chains, draws)
     length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
+    divergent: np.ndarray | None = None  # (chains, draws) divergent transitions (HMC, NUTS)
+    gradients: np.ndarray | None = None  # (chains, draws) gradient evaluations (gradient samplers)
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -108,6 +110,14 @@ class Trace(NamedTuple):
         fit = self.walker.report.laplace
         modes, flags = mode_caveats(self.flat, self.names, getattr(fit, "modes_flat", ()),
                                     [h for _, h in fit.modes], getattr(fit, "modes_fisher", ()))
+        if self.divergent is not None and self.divergent.sum():
+            count, total = int(self.divergent.sum()), self.divergent.size
+            text = (f"{count} of {total} transitions were divergent (the leapfrog energy error "
+                    "exceeded 1000): the sampler met curvature its step size cannot follow, "
+                    "and the draws near there may be biased. Where: the whole run. What to "
+                    "do: look for a funnel or a boundary in the posterior; reparametrise, or "
+                    "run refine() again (a smaller step) and compare.")
+            summary = summary._replace(warnings=summary.warnings + (text,))
         if modes:
             flags = tuple(flags) + ("",) * (len(names) - len(flags))
             summary = summary._replace(warnings=summary.warnings + (modes,), flags=flags)

@@ -83,7 +83,14 @@ class RunLength(NamedTuple):
 
 
 def predicted_ess_per_step(tuning) -> float:
-    """Predicted bulk ESS per step of one chain in its slowest direction, J / (4 - J)."""
+    """Predicted bulk ESS per step of one chain in its slowest direction, J / (4 - J).
+
+    For a gradient sampler: its Gaussian-limit ESS per gradient times the gradients per
+    step (:func:`fisherwalk.theory.gradient.optimal_gradient_step`), capped at 1 (a step
+    can be antithetic, but the plan should not count on it)."""
+    if hasattr(tuning, "sampler"):
+        choice = tuning.choice
+        return float(min(choice.ess_per_gradient * choice.gradients_per_step, 1.0))
     spectrum = None if tuning.matched else tuning.spectrum
     jumps = expected_jump(float(tuning.scale), tuning.dim, spectrum, per_direction=True)
     slowest = float(np.min(jumps))

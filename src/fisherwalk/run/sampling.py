@@ -22,8 +22,14 @@ from ..results.trace import Trace
 from . import derive, engine, plan
 from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
+from .gradient_run import gradient_chunks
 from .progress import progress_bar
 from .walker import Walker, continuable_state
+
+_FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
+           "gradients")  # what a chunk may carry (the last two: gradient samplers only)
+_ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
+           "gradients")
 
 
 class _Collector:
@@ -35,29 +41,29 @@ class _Collector:
         self.accepted = np.empty((chains, draws), dtype=dtype)
         self.acceptance_rate = np.empty((chains, draws), dtype=dtype)
         self.faults = np.zeros((chains, draws), dtype=np.int32)
+        self.divergent = np.zeros((chains, draws), dtype=np.int32)
+        self.gradients = np.zeros((chains, draws), dtype=np.int32)
         self.done = 0
 
     def add(self, chunk: Chunk, keep: int) -> None:
         s = slice(self.done, self.done + keep)
-        host = jax.device_get((chunk.position, chunk.logdensity, chunk.accepted,
-                               chunk.acceptance_rate, chunk.faults))
-        for target, value in zip(
-            (self.flat, self.logdensity, self.accepted, self.acceptance_rate, self.faults), host,
-            strict=True,
-        ):
-            target[:, s] = np.swapaxes(value[:keep], 0, 1)
+        names = [n for n in _FIELDS if getattr(chunk, n, None) is not None]
+        host = jax.device_get(tuple(getattr(chunk, n) for n in names))
+        for name, value in zip(names, host, strict=True):
+            getattr(self, "flat" if name == "position" else name)[:, s] = np.swapaxes(
+                value[:keep], 0, 1)
         self.done += keep
 
     def grow(self, draws: int) -> None:
         """Room for ``draws`` kept draws per chain in all (a planned run's next round)."""
-        for name in ("flat", "logdensity", "accepted", "acceptance_rate", "faults"):
+        for name in _ARRAYS:
             old = getattr(self, name)
             new = np.zeros((old.shape[0], draws) + old.shape[2:], dtype=old.dtype)
             new[:, : self.done] = old[:, : self.done]
             setattr(self, name, new)
 
     def truncate(self) -> None:
-        for name in ("flat", "logdensity", "accepted", "acceptance_rate", "faults"):
+        for name in _ARRAYS:
             setattr(self, name, getattr(self, name)[:, : self.done])
 
 
@@ -167,9 +173,18 @@ def walk(
         total = whole_number(draws, "draws", "walk(draws=...)")
     dtype = np.asarray(state.logdensity).dtype
     collector = _Collector(chains, total, dim, dtype)
-    ctrl = jax.device_put(engine.control(dtype=dtype))  # moved to the device once
-    noise_key = stream(key, 0)
-    factor = jax.device_put(walker.tuning.factor)
+    if walker.gradient:
+        def chunks(state, total, done):
+            return gradient_chunks(walker.model, walker.tuning, jax.random.fold_in(key, 0),
+                                   state, total, chunk=chunk, thin=thin, done=done)
+    else:
+        ctrl = jax.device_put(engine.control(dtype=dtype))  # moved to the device once
+        noise_key = stream(key, 0)
+        factor = jax.device_put(walker.tuning.factor)
+
+        def chunks(state, total, done):
+            return run_chunks(walker.engine, noise_key, state, factor, ctrl, total,
+                              chunk=chunk, thin=thin, done=done)
     store = None
     if checkpoint is not None:
         store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every)
@@ -183,10 +198,9 @@ def walk(
     stopped, min_ess, max_rhat, previous = "fixed length", None, None, None
     try:
         while True:
-            for keep, out in run_chunks(walker.engine, noise_key, state, factor, ctrl, total,
-                                        chunk=chunk, thin=thin, done=collector.done):
+            for keep, out in chunks(state, total, collector.done):
                 collector.add(out, keep)
-                if keep == chunk:  # the chains continue from the chunk's end, on the device
+                if keep == chunk or walker.gradient:  # continue from the chunk's end
                     state = out.state
                 else:
                     last = collector.done - 1
@@ -269,8 +283,10 @@ def _show(bar, collector, total, elapsed, first_done, round_number, planned) -> 
 def _trace(walker, collector, state, thin, key, seconds, *, complete, length=None) -> Trace:
     flat = collector.flat
     tree = walker.unravel_many(flat) if flat.shape[1] else None
-    final = walker._replace(state=ChainState(np.asarray(state.position),
-                                             np.asarray(state.logdensity)))
+    final = walker._replace(state=type(state)(*(np.asarray(part) for part in state)))
+    gradient = walker.gradient
     return Trace(tree, collector.logdensity, collector.accepted, final, flat,
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
-                 complete, length=length)
+                 complete, length=length,
+                 divergent=collector.divergent if gradient else None,
+                 gradients=collector.gradients if gradient else None)

@@ -396,4 +396,4 @@ def continuable_state(walker: Walker, where: str) -> ChainState:
                 "start the chains where the log density is finite (fisherwalk.start does).",
             )
         )
-    return ChainState(np.asarray(walker.state.position), logdens)
+    return type(walker.state)(*(np.asarray(part) for part in walker.state))

@@ -51,6 +51,7 @@ from ..base.keys import as_key, stream
 from ..results.diagnostics import ess_mean
 from . import engine
 from .engine import DEFAULT_CHUNK, ChainState, run_chunks
+from .gradient_run import gradient_model, gradient_state, warm_gradient
 from .progress import progress_bar
 from .proposal import shape_from_cholesky
 from .start import tuning_for
@@ -59,6 +60,7 @@ from .walker import Walker, continuable_state
 ADAPTATION_RATE = 1.0  # Robbins-Monro gain constant: gain_t = rate * (t + 1)^-0.6
 SCALE_TOLERANCE = 0.10  # |log(adapted / predicted scale)| beyond this says the picture is off
 COVARIANCE_LEVEL = 1e-3  # level of the test that the whitened warm-up covariance is I
+GRADIENT_WARMUP = 200  # steps of a gradient sampler's warm-up: dual averaging settles in ~100
 LATE_ADAPTATION = 50  # a third phase starts its gain at (50 + 1)^-0.6: near the optimum already
 
 
@@ -150,8 +152,9 @@ def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = F
     return cov, spectrum, (float(low), float(high)), n_eff, p_value
 
 
-def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
-    """A new shape from the warm-up covariance, shrunk toward H⁻¹."""
+def _reshaped(walker: Walker, cov: np.ndarray, n_eff: float):
+    """A new shape S from the warm-up covariance, shrunk toward H⁻¹; with the lower
+    Cholesky factor of its precision and the weight on the draws."""
     fit = walker.report.laplace
     d = cov.shape[0]
     fisher_shape = np.asarray(shape_from_cholesky(fit.cholesky))
@@ -159,14 +162,80 @@ def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
     weight = n_eff / (n_eff + d + 1.0)
     blend = weight * cov + (1.0 - weight) * laplace_cov
     blend = 0.5 * (blend + blend.T)
-    dtype = np.asarray(walker.tuning.factor).dtype
+    dtype = np.asarray(walker.tuning.shape).dtype
     if walker.tuning.shape_kind == "diagonal":
         shape = np.diag(np.sqrt(np.diag(blend)))
     else:
         shape = np.linalg.cholesky(blend)
     precision_chol = np.linalg.cholesky(np.linalg.inv(blend))
-    tuning = tuning_for(shape.astype(dtype), "warm-up", precision_chol.astype(dtype))
-    return tuning, weight
+    return shape.astype(dtype), precision_chol.astype(dtype), weight
+
+
+def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
+    """The random walk's tuning for the re-estimated shape, and the weight on the draws."""
+    shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
+    return tuning_for(shape, "warm-up", precision_chol), weight
+
+
+def _refine_gradient(walker: Walker, key, steps: int, reshape: bool | None) -> Walker:
+    """The warm-up of a gradient sampler: two phases of dual averaging of the shared step
+    size (:mod:`fisherwalk.run.stepsize`), the Gaussian-picture checks between them, and
+    the metric re-estimated (shrunk toward H⁻¹) when a check fails."""
+    steps = min(steps, GRADIENT_WARMUP)
+    half = max(DEFAULT_CHUNK, steps // 2 // DEFAULT_CHUNK * DEFAULT_CHUNK)
+    tuning0, fit, check = walker.tuning, walker.report.laplace, walker.report.check
+    names = walker.names
+    warm1 = warm_gradient(walker.model, tuning0, jax.random.fold_in(key, 1), walker.state,
+                          half, names)
+    within = len(getattr(fit, "modes_flat", ())) > 1
+    cov, spectrum, bounds, n_eff, p_value = _covariance_check(
+        warm1.position, np.asarray(fit.cholesky), within=within)
+    reasons = []
+    if check.khat > check.threshold:
+        reasons.append(f"PSIS k̂ = {check.khat:.2f} > {check.threshold:.2f}: the Laplace "
+                       "approximation misses the posterior's tails")
+    if p_value < COVARIANCE_LEVEL:
+        reasons.append(
+            f"warm-up covariance against H⁻¹: whitened spectrum {spectrum[0]:.2f} to "
+            f"{spectrum[-1]:.2f} (Monte Carlo error with {n_eff:.0f} effective draws allows "
+            f"about {bounds[0]:.2f} to {bounds[1]:.2f}); test of equality p = {p_value:.1e}")
+    do_reshape = (bool(reasons) if reshape is None else bool(reshape)) and (
+        tuning0.shape_kind != "identity")
+    model, state, notes = walker.model, warm1.state, []
+    tuning1 = tuning0._replace(step_size=warm1.step_size)
+    if do_reshape:
+        shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
+        tuning1 = tuning1._replace(shape=shape, whitening=precision_chol,
+                                   shape_kind="warm-up")
+        positions = fit.mode_flat + np.asarray(warm1.state.position) @ np.asarray(
+            walker.model.engine.whitening).T
+        model = gradient_model(walker.model, tuning1, fit.mode_flat, walker.chains)
+        state = gradient_state(model, positions, names)
+        notes.append("Re-estimated the metric from the warm-up draws (weight "
+                     f"{weight:.2f} on the draws, the rest on H⁻¹) because "
+                     + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
+    elif reasons:
+        notes.append("Kept the metric H⁻¹ although " + "; ".join(reasons) + ".")
+    else:
+        notes.append("Every check agreed with the Gaussian picture: kept the metric H⁻¹.")
+    warm2 = warm_gradient(model, tuning1, jax.random.fold_in(key, 2), state, half, names)
+    final = tuning1._replace(step_size=warm2.step_size)
+    target = tuning0.choice.acceptance
+    notes.append(
+        f"Step size {tuning0.step_size:.4g} (theory) -> {warm1.step_size:.4g} -> "
+        f"{warm2.step_size:.4g} by dual averaging toward acceptance {target:.3f}; acceptance "
+        f"in the second half {warm2.acceptance:.3f} (Monte Carlo error "
+        f"{warm2.acceptance_mcse:.3f}); " + _khat_words(check.khat, check.threshold) + ".")
+    divergent = int(warm1.divergent.sum() + warm2.divergent.sum())
+    if divergent:
+        notes.append(f"{divergent} divergent transitions in the warm-up.")
+    warm = WarmupReport(
+        2 * half, check.khat, check.threshold, check.outside_support, tuning0.step_size,
+        warm1.step_size, warm2.step_size, float(target), warm1.acceptance, warm2.acceptance,
+        spectrum, bounds, p_value, n_eff, do_reshape, tuple(reasons), final.spectrum,
+        tuple(notes))
+    return walker._replace(state=warm2.state, tuning=final, model=model,
+                           report=walker.report._replace(warmup=warm))
 
 
 def refine(
@@ -201,6 +270,10 @@ def refine(
         and ``report.warmup`` (:class:`WarmupReport`) saying what was done and why.
     """
     steps = whole_number(steps, "steps", "refine(steps=...)")
+    if isinstance(walker, Walker) and walker.gradient:
+        continuable_state(walker, "refine()")
+        return _refine_gradient(walker, as_key(rng_key, where="refine(rng_key=...)"), steps,
+                                reshape)
     block = 2 * DEFAULT_CHUNK
     steps = int(math.ceil(steps / block) * block)
     key = as_key(rng_key, where="refine(rng_key=...)")
