@@ -16,6 +16,7 @@ from typing import Any
 import jax
 import numpy as np
 
+from ..base.checks import spd_matrix, whole_number
 from ..base.keys import as_key, normals, stream
 from ..errors import FisherwalkWarning, InputError, explain
 from ..fit.laplace import LaplaceFit, laplace
@@ -30,64 +31,11 @@ SHAPES = ("fisher", "diagonal", "identity")
 LAPLACE_DRAWS = 500  # draws of N(mode, H⁻¹): chains start at some; all feed PSIS k̂
 
 
-def _validate_chains(chains) -> int:
-    if isinstance(chains, bool) or not isinstance(chains, int | np.integer) or chains < 1:
-        raise InputError(
-            explain(
-                f"chains={chains!r} is not a positive whole number.",
-                "start(chains=...)",
-                "use at least 2 chains (4 is the default) so that R-hat can compare them.",
-            )
-        )
-    return int(chains)
-
-
-def _user_shape(matrix, fit: LaplaceFit) -> jax.Array:
+def _user_shape(matrix, fit: LaplaceFit) -> np.ndarray:
     """A user's proposal covariance -> its lower Cholesky factor, validated."""
-    d = len(fit.names)
-    try:
-        cov = np.asarray(matrix, dtype=float)
-    except (TypeError, ValueError) as err:
-        raise InputError(explain(f"shape={type(matrix).__name__} is neither a known shape nor "
-                                 "a matrix.", "start(shape=...)",
-                                 f"use one of {', '.join(map(repr, SHAPES))}, or a (d, d) "
-                                 "covariance matrix.")) from err
-    where = "start(shape=<matrix>)"
-    if cov.shape != (d, d):
-        raise InputError(
-            explain(
-                f"The proposal covariance has shape {cov.shape}; expected ({d}, {d}) in the "
-                f"ravelled parameter order {', '.join(fit.names[:6])}{', ...' if d > 6 else ''}.",
-                where,
-                "pass a (d, d) covariance matrix for the proposal shape.",
-            )
-        )
-    if not np.isfinite(cov).all():
-        raise InputError(explain("The proposal covariance has non-finite entries.", where,
-                                 "pass a finite symmetric positive-definite matrix."))
-    asym = np.abs(cov - cov.T) / (np.abs(cov) + np.abs(cov.T) + 1e-300)
-    if asym.max() > 1e-8:
-        i, j = np.unravel_index(np.argmax(asym), asym.shape)
-        raise InputError(
-            explain(
-                f"The proposal covariance is not symmetric: entries ({fit.names[i]}, "
-                f"{fit.names[j]}) and ({fit.names[j]}, {fit.names[i]}) differ.",
-                where,
-                "pass a symmetric matrix, e.g. (M + M.T) / 2.",
-            )
-        )
-    eigval, eigvec = np.linalg.eigh(cov)
-    if eigval[0] <= 1e-12 * max(eigval[-1], 1e-300):
-        worst = np.argsort(-np.abs(eigvec[:, 0]))[:3]
-        raise InputError(
-            explain(
-                "The proposal covariance is not positive definite (smallest eigenvalue "
-                f"{eigval[0]:.3g}); the direction involves "
-                f"{', '.join(fit.names[k] for k in worst)}.",
-                where,
-                "pass a positive-definite covariance matrix.",
-            )
-        )
+    cov = spd_matrix(matrix, fit.names, "start(shape=<matrix>)", what="proposal covariance",
+                     todo="pass a positive-definite covariance matrix, or one of "
+                          f"{', '.join(map(repr, SHAPES))}.")
     return np.linalg.cholesky(cov).astype(np.asarray(fit.mode_flat).dtype)
 
 
@@ -233,7 +181,9 @@ def start(
     >>> round(walker.tuning.target_acceptance, 2)
     0.31
     """
-    chains = _validate_chains(chains)
+    chains = whole_number(chains, "chains", "start(chains=...)",
+                          todo="use at least 2 chains (4 is the default) so that R-hat can "
+                               "compare them.")
     key = as_key(rng_key, where="start(rng_key=...)")
     if fit is None:
         key_restarts = jax.random.fold_in(key, 1) if restarts else None
