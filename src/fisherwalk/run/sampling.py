@@ -21,6 +21,7 @@ from ..results.trace import Trace
 from . import engine
 from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
+from .memory import check_walk_memory
 from .progress import progress_bar
 from .walker import Walker, continuable_state
 
@@ -62,6 +63,7 @@ def walk(
     progress: bool | None = None,
     checkpoint=None,
     checkpoint_every: float = 10.0,
+    checkpoint_reclaim: bool = False,
 ) -> Trace:
     """Run every chain of a walker for ``draws`` kept draws.
 
@@ -89,6 +91,11 @@ def walk(
     checkpoint_every
         Seconds between checkpoint saves (0: after every chunk); the end of the run and
         Ctrl-C always save.
+    checkpoint_reclaim
+        Break the checkpoint directory's lock when it is stale: left by a run on this
+        host that no longer runs (killed, or the machine restarted). A lock held by a
+        running process is never broken; by default a stale lock is refused with a
+        message naming its owner.
 
     Returns
     -------
@@ -98,6 +105,11 @@ def walk(
     -----
     Ctrl-C during a run without a checkpoint returns a Trace of the draws finished so
     far (``complete=False``) with a warning, instead of losing them.
+
+    Memory follows the kept draws, whatever ``thin`` is (the random numbers are made in
+    bounded blocks). A run whose kept draws and summary would not fit in the memory this
+    process can allocate is refused before anything is allocated
+    (:func:`fisherwalk.run.memory.check_walk_memory`).
     """
     draws = whole_number(draws, "draws", "walk(draws=...)")
     thin = whole_number(thin, "thin", "walk(thin=...)")
@@ -106,15 +118,26 @@ def walk(
     state = continuable_state(walker, "walk()")
     chains, dim = state.position.shape
     dtype = np.asarray(state.logdensity).dtype
+    check_walk_memory(draws, chains, dim, dtype=dtype)
     collector = _Collector(chains, draws, dim, dtype)
+    store = None
+    if checkpoint is not None:
+        store = Store(checkpoint, walker, key, draws, thin, chunk, every=checkpoint_every,
+                      reclaim=checkpoint_reclaim)
+    try:
+        if store is not None:
+            state = store.restore(collector, state)
+        return _sample(walker, key, state, collector, store, draws, thin, chunk, progress)
+    finally:
+        if store is not None:
+            store.close()
+
+
+def _sample(walker, key, state, collector, store, draws, thin, chunk, progress) -> Trace:
+    dtype = collector.flat.dtype
     ctrl = jax.device_put(engine.control(dtype=dtype))  # moved to the device once
     noise_key = stream(key, 0)
     factor = jax.device_put(walker.tuning.factor)
-    store = None
-    if checkpoint is not None:
-        store = Store(checkpoint, walker, key, draws, thin, chunk,
-                                  every=checkpoint_every)
-        state = store.restore(collector, state)
     bar = progress_bar(draws, progress, "sampling")
     if bar is not None:
         bar.update(collector.done)
@@ -136,6 +159,11 @@ def walk(
     except KeyboardInterrupt:
         if store is not None:
             store.save(collector, state, force=True)
+            warnings.warn(
+                f"walk() was interrupted after {collector.done} of {draws} draws per chain; "
+                f"they are saved in the checkpoint {store.path}: continue with "
+                f"fisherwalk.resume({str(store.path)!r}, logdensity_fn).",
+                FisherwalkWarning, stacklevel=3)
             raise
         collector.truncate()
         warnings.warn(
@@ -143,7 +171,7 @@ def walk(
             "returned Trace holds them (complete=False). To make long runs resumable, pass "
             "checkpoint='run.ckpt'.",
             FisherwalkWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
     finally:
         if bar is not None:
