@@ -217,8 +217,12 @@ def _differences(there: dict, here: dict) -> list[str]:
     digests = there.get("digests") or {}
     if there.get("tuning") != here["tuning"] or digests.get("factor") != here["digests"]["factor"]:
         old = there.get("tuning") or {}
-        out.append(f"another proposal (scale {old.get('scale')} in the checkpoint, "
-                   f"{here['tuning']['scale']} here)")
+        if old.get("scale") == here["tuning"]["scale"]:
+            out.append("another proposal (the same scale; the shape, the whitening or the "
+                       "target acceptance differs: another walker, or an edited run.json)")
+        else:
+            out.append(f"another proposal (scale {old.get('scale')} in the checkpoint, "
+                       f"{here['tuning']['scale']} here)")
     if digests.get("mode") != here["digests"]["mode"]:
         out.append("another Laplace mode (another model or data set?)")
     if (digests.get("record") != here["digests"]["record"] and not out
