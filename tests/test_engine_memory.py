@@ -7,6 +7,11 @@ of split (fewer kept draws per call; part of one kept draw's thin steps per call
 on a small run, and compare with the unsplit run bit for bit.
 """
 
+import os
+import subprocess
+import sys
+from pathlib import Path
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -39,3 +44,41 @@ def test_split_calls_give_the_same_draws(budget, monkeypatch):
         assert np.array_equal(getattr(whole, name), getattr(split, name)), name
     assert np.array_equal(np.asarray(whole.walker.state.position),
                           np.asarray(split.walker.state.position))
+
+
+CHILD = """
+import resource, sys
+import jax
+jax.config.update("jax_enable_x64", True)
+import jax.numpy as jnp
+import fisherwalk as fw
+from fisherwalk.errors import InputError
+
+walker = fw.start(lambda x: -0.5 * jnp.sum(x**2), jnp.zeros(100), jax.random.key(0), chains=4)
+size = [int(l.split()[1]) * 1024 for l in open("/proc/self/status") if l.startswith("VmSize")][0]
+limit = size + 2**30  # one GiB above what the process already maps
+resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
+try:
+    fw.walk(walker, jax.random.key(1), draws=10**6, progress=False)
+except InputError as err:
+    print("REFUSED", str(err).splitlines()[0])
+trace = fw.walk(walker, jax.random.key(1), draws=100, thin=4000, progress=False)
+print("SHAPE", trace.flat.shape)
+"""
+
+
+def test_memory_follows_the_kept_draws_under_an_address_space_limit(tmp_path):
+    # Issue 13: walk(draws=100, thin=4000) at d = 100 peaked at 5.4 GB (the noise of all
+    # 400,000 steps made at once). Under RLIMIT_AS one GiB above the child's footprint
+    # after start(), it now runs; a request for 10**6 kept draws (3.2 GB of positions
+    # alone) is refused before sampling, with the estimate.
+    script = tmp_path / "child.py"
+    script.write_text(CHILD)
+    env = dict(os.environ, PYTHONPATH=str(Path(fw.__file__).parents[1]))
+    done = subprocess.run([sys.executable, str(script)], env=env, capture_output=True,
+                          text=True, timeout=600)
+    assert done.returncode == 0, done.stdout + done.stderr[-3000:]
+    lines = done.stdout.splitlines()
+    refused = [line for line in lines if line.startswith("REFUSED")]
+    assert refused and "need about" in refused[0] and "can allocate about" in refused[0]
+    assert "SHAPE (4, 100, 100)" in lines
