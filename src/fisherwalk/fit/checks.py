@@ -59,6 +59,14 @@ def check_structure(logdensity_fn: Callable, position: Any) -> None:
             f"(leaf shapes {shapes})",
             "make logdensity_fn accept exactly this structure (the same keys, order and "
             "shapes as the position you pass).")) from err
+    callback = _callback_in(jax.make_jaxpr(logdensity_fn)(position).jaxpr)
+    if callback:
+        raise ModelError(explain(
+            f"The log density calls back to Python ({callback}, e.g. jax.pure_callback): "
+            "JAX cannot differentiate through a callback, and the Laplace fit needs the "
+            "gradient and the Hessian.", where,
+            "write the log density in jax.numpy, or give the callback its derivative with "
+            "jax.custom_jvp (then pass fisher=... if the Hessian is not available)."))
     shape = getattr(out, "shape", None)
     if shape != () or not jnp.issubdtype(out.dtype, jnp.floating):
         what = (f"an array of shape {shape}" if shape is not None
@@ -71,6 +79,25 @@ def check_structure(logdensity_fn: Callable, position: Any) -> None:
 
 
 # ----------------------------------------------------------------------- after the search
+
+
+def _callback_in(jaxpr) -> str:
+    """The name of a host callback primitive reachable in a jaxpr outside a custom
+    derivative rule ('' if none)."""
+    for eqn in jaxpr.eqns:
+        name = eqn.primitive.name
+        if "callback" in name:
+            return name
+        if name.startswith(("custom_jvp_call", "custom_vjp_call")):
+            continue
+        for value in eqn.params.values():
+            for sub in value if isinstance(value, tuple | list) else (value,):
+                inner = getattr(sub, "jaxpr", sub)
+                if hasattr(inner, "eqns"):
+                    found = _callback_in(inner)
+                    if found:
+                        return found
+    return ""
 
 
 def check_start(s: Search, logdensity_fn: Callable, position: Any,

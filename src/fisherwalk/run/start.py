@@ -18,7 +18,7 @@ import numpy as np
 
 from ..base.checks import spd_matrix, whole_number
 from ..base.keys import as_key, normals, stream
-from ..errors import FisherwalkWarning, InputError, explain
+from ..errors import FisherwalkWarning, InputError, explain, warn_user
 from ..fit.laplace import LaplaceFit, laplace
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
@@ -29,6 +29,7 @@ __all__ = ["start", "proposal_shape", "tuning_for", "SHAPES", "LAPLACE_DRAWS"]
 
 SHAPES = ("fisher", "diagonal", "identity")
 LAPLACE_DRAWS = 500  # draws of N(mode, H⁻¹): chains start at some; all feed PSIS k̂
+LARGE_DIM = 1000  # from here on start() says up front what to expect (see _large_dim_note)
 
 
 def _user_shape(matrix, fit: LaplaceFit) -> np.ndarray:
@@ -37,6 +38,20 @@ def _user_shape(matrix, fit: LaplaceFit) -> np.ndarray:
                      todo="pass a positive-definite covariance matrix, or one of "
                           f"{', '.join(map(repr, SHAPES))}.")
     return np.linalg.cholesky(cov).astype(np.asarray(fit.mode_flat).dtype)
+
+
+def _large_dim_note(dim: int) -> str:
+    """What to expect of random-walk Metropolis at a large dimension, and what to use."""
+    return (
+        f"{dim} parameters: the fit computes a {dim} x {dim} Hessian (about "
+        f"{dim * dim * 8 / 2**20:.0f} MiB per copy, and {dim} gradient evaluations), and a "
+        "random walk needs of the order of d steps per effectively independent draw (its "
+        "optimal step shrinks as 1/sqrt(d): Roberts, Gelman & Gilks 1997, Ann. Appl. "
+        "Probab. 7(1)), so expect a small ESS unless thin x draws is many times d. A "
+        "gradient-based sampler such as NUTS needs far fewer steps at this dimension "
+        "(of the order of d^(1/4) for HMC: Beskos, Pillai, Roberts, Sanz-Serna & Stuart "
+        "2013, Bernoulli 19(5A))."
+    )
 
 
 def proposal_shape(shape, fit: LaplaceFit) -> tuple[jax.Array, str]:
@@ -185,6 +200,11 @@ def start(
                           todo="use at least 2 chains (4 is the default) so that R-hat can "
                                "compare them.")
     key = as_key(rng_key, where="start(rng_key=...)")
+    dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
+        int(np.size(leaf)) for leaf in jax.tree.leaves(position))
+    large = [_large_dim_note(dim)] if dim >= LARGE_DIM else []
+    for message in large:  # before the fit, which is itself slow at this dimension
+        warn_user(message, FisherwalkWarning)
     if fit is None:
         key_restarts = jax.random.fold_in(key, 1) if restarts else None
         fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
@@ -194,7 +214,7 @@ def start(
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
     shape_matrix, kind = proposal_shape(shape, fit)
     tuning = tuning_for(shape_matrix, kind, fit.cholesky, criterion=criterion)
-    notes = list(fit.warnings)
+    notes = large + list(fit.warnings)
     for message in fit.warnings:  # other modes, a better restart: say it out loud
         warnings.warn(message, FisherwalkWarning, stacklevel=2)
     if kind != "fisher":
