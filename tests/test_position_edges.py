@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 import fisherwalk as fw
-from fisherwalk.errors import Float32Warning, FisherwalkWarning, InputError, ModelError
+from fisherwalk.errors import FisherwalkWarning, Float32Warning, InputError, ModelError
 
 
 def test_float32_leaves_with_x64_are_cast_and_announced_at_the_callers_line():
