@@ -89,7 +89,7 @@ def _size(n: float) -> str:
 
 
 def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
-                      where: str = "walk(draws=...)",
+                      where: str = "walk(draws=...)", todo: str | None = None,
                       error: type[FisherwalkError] = InputError) -> int:
     """Refuse a walk whose kept draws and summary will not fit in the memory this
     process can still allocate; returns the estimated bytes.
@@ -97,7 +97,8 @@ def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
     Raises
     ------
     error
-        With the estimate by part, what is available, and what to do.
+        With the estimate by part, what is available, and what to do (``todo``, where
+        ``{draws}`` stands for the draws that would fit, replaces the advice).
     """
     parts = walk_bytes(draws, chains, dim, itemsize=np.dtype(dtype).itemsize)
     need = sum(parts.values())
@@ -109,7 +110,7 @@ def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
             f"(kept draws {_size(parts['draws'])}, summary {_size(parts['summary'])}, "
             f"sampling {_size(parts['engine'])}); this process can allocate about "
             f"{_size(have)}.", where,
-            f"keep fewer draws (at most about {fit_draws}): raise thin to take as many steps "
+            todo.format(draws=fit_draws) if todo else f"keep fewer draws (at most about {fit_draws}): raise thin to take as many steps "
             "with fewer kept draws (thinning costs no memory), use fewer chains, or split "
             "the run into several walk() calls continued from trace.walker; nothing was "
             "sampled."))
