@@ -105,13 +105,15 @@ def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
     have = available_bytes()
     if have is not None and need > have:
         fit_draws = int(draws * have / need)
+        advice = todo or (
+            "keep fewer draws (at most about {draws}): raise thin to take as many steps "
+            "with fewer kept draws (thinning costs no memory), use fewer chains, or split "
+            "the run into several walk() calls continued from trace.walker; nothing was "
+            "sampled.")
         raise error(explain(
             f"{draws} draws x {chains} chains x {dim} parameters need about {_size(need)} "
             f"(kept draws {_size(parts['draws'])}, summary {_size(parts['summary'])}, "
             f"sampling {_size(parts['engine'])}); this process can allocate about "
             f"{_size(have)}.", where,
-            todo.format(draws=fit_draws) if todo else f"keep fewer draws (at most about {fit_draws}): raise thin to take as many steps "
-            "with fewer kept draws (thinning costs no memory), use fewer chains, or split "
-            "the run into several walk() calls continued from trace.walker; nothing was "
-            "sampled."))
+            advice.format(draws=fit_draws)))
     return need
