@@ -89,7 +89,7 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         thin = whole_number(identity.get("thin"), "thin", where, error=CheckpointError)
         chunk = whole_number(identity.get("chunk"), "chunk", where, error=CheckpointError)
     except CheckpointError as err:
-        raise damaged(run_file, str(err).splitlines()[0]) from err
+        raise damaged(run_file, str(err).splitlines()[0].rstrip(".")) from err
     if identity.get("dtype") not in ("float32", "float64"):
         raise damaged(run_file, f"dtype {identity.get('dtype')!r:.40} is not float32 or float64")
     dtype = np.dtype(identity["dtype"])
