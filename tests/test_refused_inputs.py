@@ -8,7 +8,11 @@ when the document is out of date).
 
 from __future__ import annotations
 
+import io
+import json
+import os
 import re
+import socket
 import sys
 from pathlib import Path
 
@@ -18,6 +22,9 @@ import numpy as np
 import pytest
 
 import fisherwalk
+from fisherwalk.base.checks import parse_whole_number
+from fisherwalk.base.files import check_output_folder
+from fisherwalk.cli.command import MAX_SEED
 from fisherwalk.results import diagnostics
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "refused-inputs.md"
@@ -84,6 +91,80 @@ def _model_file_missing_name(tmp):
     path = tmp / "model.py"
     path.write_text("import jax.numpy as jnp\ninitial_position = jnp.zeros(2)\n")
     return load_model(path)
+
+
+def _checkpoint(tmp):
+    path = tmp / "run.ckpt"
+    fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path, checkpoint_every=0.0,
+                    progress=False)
+    return path
+
+
+def _locked(pid):
+    def call(tmp):
+        path = _checkpoint(tmp)
+        (path / "writer.lock").write_text(json.dumps(
+            {"pid": pid, "host": socket.gethostname(), "started": "2026-01-01T00:00:00+00:00",
+             "token": "0" * 16}))
+        return fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path,
+                               progress=False)
+    return call
+
+
+def _link_in_checkpoint(tmp):
+    path = _checkpoint(tmp)
+    os.symlink(tmp / "elsewhere", path / ".state.json.1234.tmp")
+    return fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+
+
+def _segment_changed(tmp):
+    path = _checkpoint(tmp)
+    segment = path / "segment-000001.npz"
+    with np.load(segment) as data:
+        arrays = {name: data[name] for name in data.files}
+    arrays["flat"] = arrays["flat"] + 1.0
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    segment.write_bytes(buffer.getvalue())
+    return fisherwalk.resume(path, _normal)
+
+
+def _run_file_edited(tmp):
+    path = _checkpoint(tmp)
+    content = json.loads((path / "run.json").read_text())
+    content["identity"]["draws"] = 1e12
+    (path / "run.json").write_text(json.dumps(content))
+    return fisherwalk.resume(path, _normal)
+
+
+def _tuning_edited(field, value):
+    def call(tmp):
+        path = tmp / "tuning.json"
+        fisherwalk.save_tuning(_walker(), path)
+        record = json.loads(path.read_text())
+        record["tuning"][field] = value
+        path.write_text(json.dumps(record))
+        return fisherwalk.load_tuning(path)
+    return call
+
+
+def _tuning_asymmetric(tmp):
+    path = tmp / "tuning.json"
+    fisherwalk.save_tuning(_walker(), path)
+    record = json.loads(path.read_text())
+    record["laplace"]["fisher"][0][1] += 0.5
+    path.write_text(json.dumps(record))
+    return fisherwalk.load_tuning(path)
+
+
+def _callback_model(x):
+    return jax.pure_callback(lambda v: np.asarray(-0.5 * np.sum(v**2)),
+                             jax.ShapeDtypeStruct((), jnp.float64), x)
+
+
+def _out_is_a_file(tmp):
+    (tmp / "afile").write_text("")
+    return check_output_folder(tmp / "afile", 0)
 
 
 # (where, what is refused, call(tmp_path), exception, words the message must contain)
@@ -158,6 +239,39 @@ CASES = [
      lambda t: diagnostics.ess_bulk(np.zeros((2, 3))), fisherwalk.InputError, "draws"),
     ("fisherwalk run", "a model file without `logdensity`",
      _model_file_missing_name, fisherwalk.ModelFileError, "logdensity"),
+    ("start / laplace", "a position leaf with no entries",
+     lambda t: fisherwalk.start(lambda p: _normal(p["a"]), {"a": jnp.zeros(2), "b": jnp.zeros(0)},
+                                KEY),
+     fisherwalk.InputError, "empty"),
+    ("start / laplace", "a log density that calls back to Python (jax.pure_callback)",
+     lambda t: fisherwalk.start(_callback_model, jnp.zeros(2), KEY),
+     fisherwalk.ModelError, "calls back to Python"),
+    ("walk", "more kept draws than the memory this process can allocate",
+     lambda t: fisherwalk.walk(_walker(), KEY, draws=10**13), fisherwalk.InputError,
+     "need about"),
+    ("walk(checkpoint=...)", "a checkpoint another running process writes",
+     _locked(1), fisherwalk.CheckpointError, "in use by process 1"),
+    ("walk(checkpoint=...)", "a checkpoint locked by a run that no longer runs (stale lock)",
+     _locked(2**31 - 1), fisherwalk.CheckpointError, "checkpoint_reclaim=True"),
+    ("walk(checkpoint=...)", "a checkpoint folder holding a symbolic link",
+     _link_in_checkpoint, fisherwalk.CheckpointError, "not regular files"),
+    ("resume", "a segment changed after it was written", _segment_changed,
+     fisherwalk.CheckpointError, "SHA-256"),
+    ("resume", "a run file whose draws are not a whole number", _run_file_edited,
+     fisherwalk.CheckpointError, "draws"),
+    ("load_tuning / resume", "a tuning record whose Fisher information is not symmetric",
+     _tuning_asymmetric, fisherwalk.InputError, "not symmetric"),
+    ("load_tuning / resume", "a tuning record with a scale that is not positive",
+     _tuning_edited("scale", -1.0), fisherwalk.InputError, "tuning.scale"),
+    ("load_tuning / resume", "a tuning record with a target acceptance outside (0, 1)",
+     _tuning_edited("target_acceptance", 7.5), fisherwalk.InputError,
+     "tuning.target_acceptance"),
+    ("fisherwalk run / demo", "--out naming a file (checked before the fit)",
+     _out_is_a_file, fisherwalk.InputError, "is a file"),
+    ("fisherwalk run / demo", "--seed that is not plain digits (e.g. 1e23)",
+     lambda t: parse_whole_number("1e23", "--seed", "option --seed", minimum=0,
+                                  maximum=MAX_SEED),
+     fisherwalk.InputError, "not a whole number"),
 ]
 
 
@@ -205,8 +319,12 @@ def render(tmp: Path) -> str:
 
 
 def _normalise(text: str) -> str:
-    # Temporary directories and numbers printed to many digits differ between runs.
+    # Temporary directories and numbers printed to many digits differ between runs, and
+    # the memory a machine has differs between machines.
     text = re.sub(r"/[^ |<`']*?(case\d+)", r"<tmp>/\1", text)
+    text = re.sub(r"\d+(\.\d+)? (GiB|MiB)", r"# \2", text)
+    text = re.sub(r"at most about \d+", "at most about #", text)
+    text = re.sub(r"on host '[^']*'", "on host #", text)
     return re.sub(r"\d\.\d{3,}(e[-+]?\d+)?", "#", text)
 
 

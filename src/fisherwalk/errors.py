@@ -7,6 +7,10 @@ chain, which step, which file) and what to do about it.
 
 from __future__ import annotations
 
+import os
+import sys
+import warnings
+
 __all__ = [
     "FisherwalkError",
     "InputError",
@@ -17,7 +21,18 @@ __all__ = [
     "ModelFileError",
     "FisherwalkWarning",
     "Float32Warning",
+    "warn_user",
 ]
+
+
+def warn_user(message: str, category: type[Warning]) -> None:
+    """Issue a warning attributed to the first caller outside the fisherwalk package
+    (the user's line), however deep inside the package it is raised."""
+    package = os.path.dirname(os.path.abspath(__file__))
+    frame, level = sys._getframe(1), 2  # stacklevel 2: the caller of warn_user
+    while frame is not None and os.path.abspath(frame.f_code.co_filename).startswith(package):
+        frame, level = frame.f_back, level + 1
+    warnings.warn(message, category, stacklevel=level)
 
 
 def explain(what: str, where: str, todo: str) -> str:

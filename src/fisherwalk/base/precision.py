@@ -2,11 +2,10 @@
 
 from __future__ import annotations
 
-import warnings
-
 import jax
+import numpy as np
 
-from ..errors import Float32Warning
+from ..errors import Float32Warning, warn_user
 
 _ENABLE_LINE = 'jax.config.update("jax_enable_x64", True)'
 _warned = False
@@ -29,11 +28,15 @@ def warn_if_float32() -> None:
     if _warned or x64_enabled():
         return
     _warned = True
-    warnings.warn(
+    warn_user(
         "JAX is computing in float32. The Laplace fit (mode and Fisher information) "
         "loses precision on log densities summed over many observations.\n"
         f"  what to do: put `import jax; {_ENABLE_LINE}` at the top of your script, "
         "before any array is created (or set the environment variable JAX_ENABLE_X64=1).",
         Float32Warning,
-        stacklevel=3,
     )
+
+
+def working_dtype() -> np.dtype:
+    """The floating type fisherwalk computes in: float64 with x64 enabled, else float32."""
+    return np.dtype(np.float64 if x64_enabled() else np.float32)

@@ -16,7 +16,8 @@ import jax.numpy as jnp
 import numpy as np
 from jax.flatten_util import ravel_pytree
 
-from ..errors import InputError, explain
+from ..errors import Float32Warning, InputError, explain, warn_user
+from .precision import working_dtype
 
 
 class Flat(NamedTuple):
@@ -67,6 +68,23 @@ def parameter_names(position: Any) -> tuple[str, ...]:
     return tuple(names)
 
 
+def _to_working_dtype(position: Any, leaves: list, where: str) -> Any:
+    """Floating leaves cast to the working dtype (one dtype for every leaf, so that the
+    compiled loop's carry keeps its type); a narrower leaf is announced."""
+    dtype = working_dtype()
+    narrow = sorted({_path_name(path) for path, leaf in leaves
+                     if jnp.asarray(leaf).dtype.itemsize < dtype.itemsize})
+    if narrow:
+        warn_user(
+            f"Leaves {', '.join(narrow[:6])} of the position are narrower than {dtype.name}, "
+            f"which JAX computes in here; fisherwalk casts them to {dtype.name} (the draws "
+            f"and the log density are {dtype.name}).\n  where: {where}\n  what to do: "
+            f"create the position in {dtype.name} (e.g. np.zeros(n)) to silence this.",
+            Float32Warning,
+        )
+    return jax.tree.map(lambda leaf: jnp.asarray(leaf, dtype=dtype), position)
+
+
 def flatten_position(position: Any, *, where: str = "position") -> Flat:
     """Validate a position and ravel it.
 
@@ -109,6 +127,16 @@ def flatten_position(position: Any, *, where: str = "position") -> Flat:
                     "parameter must be marginalised out of the log density.",
                 )
             )
+        if np.size(leaf) == 0:
+            raise InputError(
+                explain(
+                    f"Leaf '{name}' of the position is empty (shape {np.shape(leaf)}).",
+                    where,
+                    "remove the empty leaf from the position (and from the log density), "
+                    "or give it at least one entry.",
+                )
+            )
+    position = _to_working_dtype(position, leaves, where)
     vector, unravel = ravel_pytree(position)
     names = parameter_names(position)
     bad = ~np.isfinite(np.asarray(vector))

@@ -19,7 +19,6 @@ writes ``draws.npz`` (plain arrays, no pickle), the plots and ``record.json``;
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 import textwrap
@@ -29,7 +28,12 @@ from pathlib import Path
 
 import numpy as np
 
+from ..base.checks import parse_whole_number
+from ..base.files import check_output_folder
+from ..base.jsonio import dumps
 from ..errors import FisherwalkError, InputError, ModelFileError, explain
+from ..run.memory import check_walk_memory
+from ..run.plan import MAX_DRAWS
 from . import compilecache, resumable
 from .modelfile import load_model
 from .runrecord import RunResult, build_record, run_keys, sha256_file, write_outputs
@@ -43,6 +47,7 @@ DEFAULT_CHAINS = 4
 DEFAULT_DRAWS = None
 DEFAULT_WARMUP = 400
 DEFAULT_SEED = 0
+MIN_KEPT = 4  # draws per chain an interrupted run needs for its outputs to be written
 
 _TRUST = ("'run' executes the Python code in MODEL_FILE with your own rights (the file\n"
           "is imported like any module): run only model files you trust.")
@@ -103,6 +108,8 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
     trace = fisherwalk.walk(walker, k_walk, draws, thin, progress=progress,
                             pointwise=pointwise, derived=derived, checkpoint=checkpoint)
     seconds["sampling"] = time.perf_counter() - t
+    if not trace.complete and trace.flat.shape[1] < MIN_KEPT:
+        raise KeyboardInterrupt  # too few draws to summarise: nothing worth writing
 
     t = time.perf_counter()
     summary = _labelled(trace, labels).summary()
@@ -188,27 +195,43 @@ def _wrap(text: str) -> str:
 # ---------------------------------------------------------------------------- subcommands
 
 
-def _whole(minimum: int):
-    """An argparse type: a whole number of at least ``minimum``."""
-
-    def parse(text: str) -> int:
-        try:
-            value = int(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-        if value < minimum:
-            raise argparse.ArgumentTypeError(
-                f"{value} is not positive" if minimum == 1 else f"{value} is negative"
-                if minimum == 0 else f"{value} is below {minimum}: the summary's diagnostics "
-                f"(R-hat, ESS) need at least {minimum} draws per chain")
-        return value
-
-    return parse
+MAX_SEED = 2**32 - 1  # jax.random.key takes the seed as an unsigned 32-bit number here
+MAX_CHAINS = 10_000
+MIN_DRAWS = 4  # R-hat and ESS need 4 draws per chain
+_NUMBERS = {"chains": (1, MAX_CHAINS), "draws": (MIN_DRAWS, None), "warmup": (1, None),
+            "seed": (0, MAX_SEED), "thin": (1, None), "restarts": (0, None)}
 
 
-_positive = _whole(1)
-_nonnegative = _whole(0)
-_draw_count = _whole(4)  # R-hat and ESS need 4 draws per chain
+def _check_numbers(args) -> None:
+    """Every numeric option as a whole number in its range (argparse keeps them as text,
+    so that '1e23' and '2.0' get the package's message, exit 2, before any work)."""
+    for name, (low, high) in _NUMBERS.items():
+        if getattr(args, name, None) is not None:  # None: --draws left to the plan
+            text = getattr(args, name)
+            text = str(text) if isinstance(text, int) else text  # a default
+            setattr(args, name, parse_whole_number(text, f"--{name}",
+                                                   f"option --{name}", minimum=low,
+                                                   maximum=high))
+    if hasattr(args, "dims"):
+        args.dims = [parse_whole_number(text, "DIM", "fisherwalk scale DIM", minimum=1)
+                     for text in args.dims]
+
+
+def _output_bytes(chains: int, draws: int, dim: int) -> int:
+    """About how many bytes the outputs take: draws.npz (draws, log density, acceptance
+    in float64), record.json (five d x d matrices at ~25 characters a number) and the
+    four figures (a few hundred kB each)."""
+    return chains * draws * (dim + 2) * 8 + 125 * dim * dim + 4 * 2**20
+
+
+def _check_before_work(args, dim: int) -> Path:
+    """The output folder (a writable folder with room for the outputs) and the memory
+    the run needs, checked before the fit."""
+    draws = MAX_DRAWS if args.draws is None else args.draws  # a planned run: its budget
+    check_walk_memory(draws, args.chains, dim, where="options --draws and --chains",
+                      todo="pass --draws {draws} or fewer (or fewer --chains); nothing was "
+                           "fitted or sampled.")
+    return check_output_folder(args.out, _output_bytes(args.chains, draws, dim))
 
 
 def _options(args) -> dict:
@@ -241,8 +264,7 @@ def _demo(args, argv) -> int:
     say = _Say(args.quiet)
     began = time.perf_counter()
     scene = scenarios.scenario(args.scenario)
-    out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
+    out = _check_before_work(args, scene.X.shape[1])
     data_path = scene.to_csv(out / "data.csv")
     n, p = scene.X.shape
     say(f"fisherwalk demo: the '{scene.name}' scenario (invented data, seed {scene.seed})")
@@ -271,7 +293,7 @@ def _demo(args, argv) -> int:
     say(f"\nplots and record written in {time.perf_counter() - t:.1f} s")
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
-    return 0
+    return _interrupted(args, result, out)
 
 
 def _truth_table(scene, summary) -> dict:
@@ -311,7 +333,7 @@ def _scale(args) -> int:
     if args.json:
         payload = [{"dim": c.dim, "scale": c.scale, "acceptance": c.acceptance,
                     "jump_distance": c.jump_distance} for c in choices]
-        print(json.dumps(payload, indent=1))
+        print(dumps(payload, indent=1))
         return 0
     print("Optimal random-walk Metropolis scale for a proposal matched to H⁻¹")
     print("(Gaussian limit; step = (l/√d)·S z, jump in squared posterior-sd units)\n")
@@ -331,8 +353,12 @@ def _run(args, argv) -> int:
             "--pointwise was given but the model defines no pointwise(position).",
             f"model file {model.path}", "define pointwise(position) -> one log likelihood "
             "per observation (the terms of the log density's sum), or leave out --pointwise."))
-    out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
+    if args.checkpoint and args.draws is None:
+        raise InputError(explain(
+            "--checkpoint needs a run of fixed length, and --draws was not given.",
+            "option --checkpoint", "pass --draws N with --checkpoint (a planned run's length "
+            "is not known in advance, so it cannot be resumed)."))
+    out = _check_before_work(args, model.dim)
     checkpoint = None
     if args.checkpoint:
         checkpoint = out / resumable.CHECKPOINT_FOLDER
@@ -357,7 +383,18 @@ def _run(args, argv) -> int:
     say()
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
-    return 0
+    return _interrupted(args, result, out)
+
+
+def _interrupted(args, result: RunResult, out: Path) -> int:
+    """0, or 130 (the shell's code for Ctrl-C) with a line saying what was kept."""
+    trace = result.trace
+    if trace.complete:
+        return 0
+    print(f"fisherwalk {args.command}: interrupted (Ctrl-C) after {trace.flat.shape[1]} of "
+          f"{args.draws} draws per chain; those draws, their summary and the record are "
+          f"written in {out}.", file=sys.stderr)
+    return 130
 
 
 def _resume(args, argv) -> int:
@@ -415,20 +452,21 @@ def _cache_facts(args) -> dict:
 def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
     sub.add_argument("--out", default=out_default, metavar="DIR",
                      help=f"output folder, created if needed (default: {out_default})")
-    sub.add_argument("--chains", type=_positive, default=DEFAULT_CHAINS, metavar="N",
+    sub.add_argument("--chains", default=DEFAULT_CHAINS, metavar="N",
                      help=f"number of chains (default {DEFAULT_CHAINS})")
-    sub.add_argument("--draws", type=_draw_count, default=DEFAULT_DRAWS, metavar="N",
-                     help="draws kept per chain after the warm-up (default: planned, until "
-                          "every ESS >= 400 and R-hat < 1.01, within a budget)")
-    sub.add_argument("--warmup", type=_positive, default=DEFAULT_WARMUP, metavar="N",
+    sub.add_argument("--draws", default=DEFAULT_DRAWS, metavar="N",
+                     help="draws kept per chain after the warm-up, at least 4 (default: "
+                          "planned, until every ESS >= 400 and R-hat < 1.01, within a budget)")
+    sub.add_argument("--warmup", default=DEFAULT_WARMUP, metavar="N",
                      help=f"warm-up steps per chain (default {DEFAULT_WARMUP})")
-    sub.add_argument("--seed", type=_nonnegative, default=DEFAULT_SEED, metavar="S",
-                     help=f"seed of the JAX random key (default {DEFAULT_SEED})")
+    sub.add_argument("--seed", default=DEFAULT_SEED, metavar="S",
+                     help=f"seed of the JAX random key, 0 to {MAX_SEED} (default "
+                          f"{DEFAULT_SEED})")
     sub.add_argument("--quiet", action="store_true",
                      help="no progress bars and no step-by-step account; print the tables")
-    sub.add_argument("--thin", type=_positive, default=1, metavar="N",
+    sub.add_argument("--thin", default=1, metavar="N",
                      help="steps per kept draw (default 1: keep every step)")
-    sub.add_argument("--restarts", type=_nonnegative, default=0, metavar="N",
+    sub.add_argument("--restarts", default=0, metavar="N",
                      help="extra mode searches from dispersed points before the Laplace fit "
                           "(default 0)")
     _cache_option(sub)
@@ -472,7 +510,7 @@ def build_parser() -> argparse.ArgumentParser:
                     "the acceptance rate it implies,\nfor each dimension d (Gaussian limit, "
                     "computed for finite d).",
         epilog="examples:\n  fisherwalk scale 1 2 5 10 100\n  fisherwalk scale 4 --json")
-    scale.add_argument("dims", type=_positive, nargs="+", metavar="DIM",
+    scale.add_argument("dims", nargs="+", metavar="DIM",
                        help="number of scalar parameters d")
     scale.add_argument("--json", action="store_true",
                        help="print a JSON list of {dim, scale, acceptance, jump_distance}")
@@ -538,8 +576,11 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``fisherwalk`` command; returns the exit code.
 
-    Exit codes: 0 success; 2 a usage error or a model file that cannot be used; 1 a
-    failure of the fit or the sampling (the message says what and where).
+    Exit codes: 0 success; 2 a usage error, a model file that cannot be used, an output
+    folder that cannot take the outputs or any other refusal of the operating system
+    (checked before the fit wherever possible); 1 a failure of the fit or the sampling
+    (the message says what and where); 130 interrupted with Ctrl-C (the draws finished
+    by then are written when sampling had begun).
     """
     argv = list(sys.argv[1:] if argv is None else argv)
     args = build_parser().parse_args(argv)
@@ -549,6 +590,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command != "scale":
         args.compile_cache = compilecache.switch(args.compile_cache_on)
     try:
+        _check_numbers(args)
         if args.command == "scale":
             return _scale(args)
         if args.command == "demo":
@@ -562,13 +604,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     except FisherwalkError as err:
         _error_note(args, err)
         return 1
+    except OSError as err:
+        where = f": {err.filename}" if err.filename else ""
+        print(f"fisherwalk {args.command}: {err.strerror or err}{where}", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         if args.command == "run" and args.checkpoint:
             print(f"fisherwalk run: interrupted; the sampling's progress is saved. Finish it "
                   f"with: fisherwalk resume {args.out} --model {args.model_file}",
                   file=sys.stderr)
             return 130
-        raise
+        print(f"fisherwalk {args.command}: interrupted (Ctrl-C) before any draw could be "
+              "kept; nothing was written.", file=sys.stderr)
+        return 130
 
 
 def _error_note(args, err: Exception) -> None:

@@ -4,14 +4,14 @@
 run (versions, platform, keys, options, the Laplace fit, the tuning, the warm-up, the
 summary, wall times) as JSON-ready data; :func:`write_outputs` writes ``draws.npz``
 (plain arrays, no pickle), the plots and ``record.json`` (last, listing the other files
-with their SHA-256).
+with their SHA-256). Every file is written atomically (:mod:`fisherwalk.base.files`): a
+full disk or a crash leaves the previous file or none, never a truncated one. The record
+follows the package's JSON convention (:mod:`fisherwalk.base.jsonio`).
 """
 
 from __future__ import annotations
 
 import hashlib
-import json
-import math
 import platform
 from collections.abc import Sequence
 from datetime import UTC, datetime
@@ -20,10 +20,11 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from ..base.files import write_atomic
+from ..base.jsonio import to_plain, write_json_atomic
 from ..run import tuningfile
 
 __all__ = ["RunResult", "build_record", "write_outputs", "sha256_file", "run_keys"]
-
 
 class RunResult(NamedTuple):
     """Everything one workflow run produced."""
@@ -61,32 +62,6 @@ def _versions() -> dict[str, str]:
     return out
 
 
-def _plain(value: Any) -> Any:
-    """JSON-ready: arrays to lists, NamedTuples to dicts, non-finite floats to strings."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if hasattr(value, "_asdict"):
-        return {k: _plain(v) for k, v in value._asdict().items()}
-    if isinstance(value, list | tuple):
-        return [_plain(v) for v in value]
-    if isinstance(value, str | bool) or value is None:
-        return value
-    if isinstance(value, int | np.integer):
-        return int(value)
-    try:
-        array = np.asarray(value)
-    except Exception:  # noqa: BLE001 - an object JSON cannot hold
-        return repr(value)
-    if array.dtype.kind in "fiub" and array.ndim > 0:
-        return [_plain(v) for v in array.tolist()]
-    if array.dtype.kind in "iub":
-        return int(array)
-    if array.dtype.kind == "f":
-        number = float(array)
-        return number if math.isfinite(number) else str(number)
-    return repr(value)
-
-
 def sha256_file(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
@@ -100,10 +75,11 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
     laplace = {name: getattr(fit, name) for name in (
         "logdensity", "gradient_norm", "iterations", "evaluations",
         "fisher_source", "warnings", "seconds")}
+    laplace["warnings"] = [str(w) for w in laplace["warnings"]]
     laplace["mode"] = dict(zip(fit.names, np.asarray(fit.mode_flat).tolist(), strict=True))
     sd = np.sqrt(np.diag(np.linalg.inv(np.asarray(fit.fisher))))
     laplace["sd"] = dict(zip(fit.names, sd.tolist(), strict=True))
-    return _plain({
+    return to_plain({
         "format": "fisherwalk-run",
         "format_version": 1,
         "command": command,
@@ -139,20 +115,21 @@ def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[st
     files = {}
     draws_path = out / "draws.npz"
     arrays = {"draws": np.asarray(trace.flat), "names": np.asarray(trace.names),
-              "logdensity": np.asarray(trace.logdensity), "accepted": np.asarray(trace.accepted)}
+              "logdensity": np.asarray(trace.logdensity),
+              "accepted": np.asarray(trace.accepted)}
     if trace.derived is not None:  # walk(derived=...): ravelled after the parameters
         flat, names = trace.columns()
         arrays["derived"] = flat[..., len(trace.names):]
         arrays["derived_names"] = np.asarray(names[len(trace.names):])
     if trace.pointwise is not None:  # walk(pointwise=...): (chains, draws, n_obs)
         arrays["pointwise"] = np.asarray(trace.pointwise)
-    np.savez(draws_path, **arrays)
+    write_atomic(draws_path, lambda handle: np.savez(handle, **arrays))
     files["draws"] = draws_path
     for path in plots.save_all(trace, out, labels=labels):
         files[path.stem] = path
     record["files"] = {name: {"path": path.name, "sha256": sha256_file(path)}
                        for name, path in files.items()}
     record_path = out / "record.json"
-    record_path.write_text(json.dumps(record, indent=1, allow_nan=False) + "\n")
+    write_json_atomic(record_path, record, indent=1)
     files["record"] = record_path
     return files

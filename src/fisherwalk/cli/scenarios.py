@@ -26,6 +26,7 @@ grew from 3.8 s (n = 2,000) and 4.1 s (20,000) to 6.8 s (200,000).
 from __future__ import annotations
 
 import csv
+import io
 from collections.abc import Callable
 from pathlib import Path
 from typing import NamedTuple
@@ -34,6 +35,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..base.checks import whole_number
+from ..base.files import write_text_atomic
 from ..errors import InputError, explain
 
 __all__ = ["Scenario", "logistic", "poisson", "SCENARIOS", "scenario"]
@@ -90,13 +93,13 @@ class Scenario(NamedTuple):
         table.append(self.y[:, None])
         data = np.concatenate(table, axis=1)
         integer = [np.all(col == np.round(col)) for col in data.T]
-        with path.open("w", newline="") as handle:
-            writer = csv.writer(handle)
-            writer.writerow(header)
-            for row in data:
-                cells = zip(row, integer, strict=True)
-                writer.writerow([str(int(v)) if whole else f"{v:.4g}" for v, whole in cells])
-        return path
+        text = io.StringIO(newline="")
+        writer = csv.writer(text)
+        writer.writerow(header)
+        for row in data:
+            cells = zip(row, integer, strict=True)
+            writer.writerow([str(int(v)) if whole else f"{v:.4g}" for v, whole in cells])
+        return write_text_atomic(path, text.getvalue())
 
 
 def _standardise(raw: np.ndarray) -> np.ndarray:
@@ -280,8 +283,6 @@ def scenario(name: str, **options) -> Scenario:
 
 
 def _check_n(n, where: str) -> int:
-    if isinstance(n, bool) or not isinstance(n, int | np.integer) or n < 50:
-        raise InputError(explain(f"n={n!r} is not a whole number of at least 50 records.",
-                                 f"fisherwalk.cli.scenarios.{where}(n=...)",
-                                 "pass a larger n (the default is the demo's size)."))
-    return int(n)
+    return whole_number(n, "n", f"fisherwalk.cli.scenarios.{where}(n=...)", minimum=50,
+                        todo="pass a whole number of at least 50 records (the default is "
+                             "the demo's size).")

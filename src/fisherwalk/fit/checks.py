@@ -17,85 +17,28 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from ..errors import FitError, InputError, ModelError, explain
+from ..base.checks import definiteness_problem, positive_number, spd_matrix, whole_number
+from ..errors import FitError, ModelError, explain
 from .search import Search
 
-_EIGEN_FLOOR = 1e-12  # smallest eigenvalue must exceed this fraction of the largest
 
-
-# ------------------------------------------------------------------ a user's Fisher matrix
-
-
-def validated_matrix(matrix: Any, names: tuple[str, ...], where: str, rtol: float) -> np.ndarray:
-    """The checks of :func:`fisherwalk.fit.laplace.check_fisher`; returns the symmetrised
-    matrix (float64, host)."""
-    d = len(names)
-    try:
-        host = np.asarray(matrix, dtype=np.float64)
-    except (TypeError, ValueError) as err:
-        raise InputError(explain(
-            f"The Fisher information is a {type(matrix).__name__}, not a numeric matrix.",
-            where, f"pass a ({d}, {d}) array of floats.")) from err
-    order = ", ".join(names[:8]) + (", ..." if d > 8 else "")
-    if host.shape != (d, d):
-        raise InputError(explain(
-            f"The Fisher information has shape {host.shape}; expected ({d}, {d}).",
-            where, f"pass a ({d}, {d}) matrix in the ravelled parameter order: {order}."))
-    bad = np.argwhere(~np.isfinite(host))
-    if bad.size:
-        pairs = "; ".join(f"({names[i]}, {names[j]})" for i, j in bad[:4])
-        raise InputError(explain(
-            f"The Fisher information has {len(bad)} non-finite entries, e.g. {pairs}.",
-            where, "compute it at a point where the model is finite, in float64."))
-    scale = max(float(np.max(np.abs(host))), np.finfo(float).tiny)
-    asym = np.abs(host - host.T)
-    if asym.max() > rtol * scale:
-        i, j = np.unravel_index(np.argmax(asym), asym.shape)
-        raise InputError(explain(
-            f"The Fisher information is not symmetric: entries ({names[i]}, {names[j]}) = "
-            f"{host[i, j]:.6g} and ({names[j]}, {names[i]}) = {host[j, i]:.6g} differ by "
-            f"more than {rtol:g} of the largest entry.",
-            where, "pass a symmetric matrix, e.g. (M + M.T) / 2 if the asymmetry is rounding."))
-    host = 0.5 * (host + host.T)
-    problem = definiteness_problem(host, names)
-    if problem:
-        raise InputError(explain(
-            f"The Fisher information is not positive definite: {problem}.",
-            where, "check the formula and the point it was computed at; an unidentified "
-            "parameter needs a proper prior."))
-    return host
+def validated_matrix(matrix: Any, names: tuple[str, ...], where: str) -> np.ndarray:
+    """A user's Fisher information, checked by :func:`fisherwalk.base.checks.spd_matrix`
+    (one tolerance for every matrix the package accepts); returns the symmetrised matrix
+    (float64, host)."""
+    return spd_matrix(matrix, names, where, what="Fisher information",
+                      todo="check the formula and the point it was computed at; an "
+                           "unidentified parameter needs a proper prior.")
 
 
 # ---------------------------------------------------------------------- before the search
 
 
 def check_options(max_iterations, tol, restarts, spread) -> None:
-    def positive(value):
-        return isinstance(value, int | float | np.number) and bool(0 < value < np.inf)
-
-    for name, value, ok in (
-        ("max_iterations", max_iterations, isinstance(max_iterations, int | np.integer)
-         and max_iterations >= 1),
-        ("gradient_tolerance", tol, positive(tol)),
-        ("restarts", restarts, isinstance(restarts, int | np.integer) and restarts >= 0),
-        ("spread", spread, positive(spread)),
-    ):
-        if not ok:
-            raise InputError(explain(f"{name}={value!r} is not allowed.", f"laplace({name}=...)",
-                                     "pass a positive number (an integer for counts)."))
-
-
-def check_key(rng_key) -> jax.Array:
-    dtype = getattr(rng_key, "dtype", None)
-    if dtype is not None and jax.dtypes.issubdtype(dtype, jax.dtypes.prng_key) \
-            and rng_key.shape == ():
-        return rng_key
-    if dtype == np.uint32 and np.shape(rng_key) == (2,):
-        return jnp.asarray(rng_key)
-    raise InputError(explain(
-        f"restarts need a JAX random key; got {type(rng_key).__name__}"
-        + (f" of dtype {dtype} and shape {np.shape(rng_key)}" if dtype is not None else "")
-        + ".", "laplace(rng_key=...)", "pass rng_key=jax.random.key(seed)."))
+    whole_number(max_iterations, "max_iterations", "laplace(max_iterations=...)")
+    positive_number(tol, "gradient_tolerance", "laplace(gradient_tolerance=...)")
+    whole_number(restarts, "restarts", "laplace(restarts=...)", minimum=0)
+    positive_number(spread, "spread", "laplace(spread=...)")
 
 
 def check_structure(logdensity_fn: Callable, position: Any) -> None:
@@ -116,6 +59,14 @@ def check_structure(logdensity_fn: Callable, position: Any) -> None:
             f"(leaf shapes {shapes})",
             "make logdensity_fn accept exactly this structure (the same keys, order and "
             "shapes as the position you pass).")) from err
+    callback = _callback_in(jax.make_jaxpr(logdensity_fn)(position).jaxpr)
+    if callback:
+        raise ModelError(explain(
+            f"The log density calls back to Python ({callback}, e.g. jax.pure_callback): "
+            "JAX cannot differentiate through a callback, and the Laplace fit needs the "
+            "gradient and the Hessian.", where,
+            "write the log density in jax.numpy, or give the callback its derivative with "
+            "jax.custom_jvp (then pass fisher=... if the Hessian is not available)."))
     shape = getattr(out, "shape", None)
     if shape != () or not jnp.issubdtype(out.dtype, jnp.floating):
         what = (f"an array of shape {shape}" if shape is not None
@@ -128,6 +79,25 @@ def check_structure(logdensity_fn: Callable, position: Any) -> None:
 
 
 # ----------------------------------------------------------------------- after the search
+
+
+def _callback_in(jaxpr) -> str:
+    """The name of a host callback primitive reachable in a jaxpr outside a custom
+    derivative rule ('' if none)."""
+    for eqn in jaxpr.eqns:
+        name = eqn.primitive.name
+        if "callback" in name:
+            return name
+        if name.startswith(("custom_jvp_call", "custom_vjp_call")):
+            continue
+        for value in eqn.params.values():
+            for sub in value if isinstance(value, tuple | list) else (value,):
+                inner = getattr(sub, "jaxpr", sub)
+                if hasattr(inner, "eqns"):
+                    found = _callback_in(inner)
+                    if found:
+                        return found
+    return ""
 
 
 def check_start(s: Search, logdensity_fn: Callable, position: Any,
@@ -184,7 +154,7 @@ def information(search: Search, fisher: Any, unravel: Callable,
     if not callable(fisher):
         return fisher  # validated already
     matrix = fisher(unravel(jnp.asarray(search.x)))
-    return validated_matrix(matrix, names, "laplace(fisher=...) at the mode", 1e-6)
+    return validated_matrix(matrix, names, "laplace(fisher=...) at the mode")
 
 
 def check_end(s: Search) -> None:
@@ -218,7 +188,7 @@ def check_search(s: Search, info: np.ndarray, x0: np.ndarray, names: tuple[str, 
         raise FitError(explain(
             f"Runaway mode: {what} (log density {values}; |θ| went from "
             f"{np.linalg.norm(x0):.3g} to {np.linalg.norm(s.x):.3g}).",
-            f"{where}; the direction involves {_signed(direction, names)}",
+            f"{where}; the direction involves {signed_names(direction, names)}",
             "give these parameters a proper prior; in a logistic/binary regression check "
             "for complete or quasi-complete separation (a predictor, or a combination, "
             "that splits the outcomes perfectly); a hierarchical scale whose density is "
@@ -289,22 +259,7 @@ def _newton_decrement(gradient: np.ndarray, info: np.ndarray) -> float:
     return value if np.isfinite(value) else np.inf
 
 
-def definiteness_problem(matrix: np.ndarray, names: tuple[str, ...]) -> str:
-    """'' if the symmetric matrix is positive definite (smallest eigenvalue > 1e-12 x the
-    largest), else a sentence naming the parameters of the offending eigenvector."""
-    eigvals, eigvecs = np.linalg.eigh(matrix)
-    top = max(float(eigvals[-1]), 0.0)
-    if eigvals[0] > _EIGEN_FLOOR * top and top > 0:
-        try:
-            np.linalg.cholesky(matrix)
-            return ""
-        except np.linalg.LinAlgError:  # pragma: no cover - eigh and cholesky disagree
-            pass
-    return (f"smallest eigenvalue {eigvals[0]:.3g} (largest {eigvals[-1]:.3g}); its "
-            f"eigenvector involves {_signed(eigvecs[:, 0], names)}")
-
-
-def _signed(vector: np.ndarray, names: tuple[str, ...], k: int = 4) -> str:
+def signed_names(vector: np.ndarray, names: tuple[str, ...], k: int = 4) -> str:
     """The parameters with the largest |components| of a unit vector, with their signs."""
     order = np.argsort(-np.abs(vector))[:k]
     keep = [i for i in order if abs(vector[i]) >= 0.25 * abs(vector[order[0]])]

@@ -23,10 +23,10 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base import precision, pytrees
+from ..base.keys import as_key
 from ..errors import ModelError, explain
 from .checks import (
     check_end,
-    check_key,
     check_options,
     check_search,
     check_start,
@@ -67,8 +67,7 @@ def fisher_from_cholesky(cholesky: jax.Array) -> jax.Array:
     return cholesky @ cholesky.T
 
 
-def check_fisher(matrix: Any, names: tuple[str, ...], *, where: str = "fisher",
-                 rtol: float = 1e-6) -> jax.Array:
+def check_fisher(matrix: Any, names: tuple[str, ...], *, where: str = "fisher") -> jax.Array:
     """Validate a Fisher information given by the user (or read from a file).
 
     Parameters
@@ -79,9 +78,6 @@ def check_fisher(matrix: Any, names: tuple[str, ...], *, where: str = "fisher",
         The d parameter names (``LaplaceFit.names``).
     where
         Where the matrix came from, for the error message.
-    rtol
-        Allowed asymmetry ``max |H - Hᵀ| <= rtol * max |H|`` (rounding in a user's
-        computation); the matrix is then symmetrised.
 
     Returns
     -------
@@ -94,7 +90,7 @@ def check_fisher(matrix: Any, names: tuple[str, ...], *, where: str = "fisher",
         Wrong shape, non-finite entries, asymmetry, or not positive definite (smallest
         eigenvalue <= 1e-12 x the largest); the message names the parameters involved.
     """
-    return jnp.asarray(np.linalg.cholesky(validated_matrix(matrix, names, where, rtol)))
+    return jnp.asarray(np.linalg.cholesky(validated_matrix(matrix, names, where)))
 
 
 def laplace(
@@ -210,11 +206,11 @@ def laplace(
            else gradient_tolerance)
     check_options(max_iterations, tol, restarts, spread)
     check_options(max_iterations, tol, scouts, scout_spread)
-    key = check_key(rng_key) if restarts or scouts else None
+    key = as_key(rng_key, where="laplace(rng_key=...)") if restarts or scouts else None
     bounds = check_box(box, names) if restarts and box is not None else None
     check_structure(logdensity_fn, position)
     if fisher is not None and not callable(fisher):  # a matrix: validate before compiling
-        fisher = validated_matrix(fisher, names, "laplace(fisher=...)", 1e-6)
+        fisher = validated_matrix(fisher, names, "laplace(fisher=...)")
 
     def logp(x):
         return jnp.asarray(logdensity_fn(unravel(x)), dtype=dtype)

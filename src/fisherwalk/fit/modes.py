@@ -17,9 +17,10 @@ import numpy as np
 from jax.flatten_util import ravel_pytree
 from jax.scipy.linalg import solve_triangular
 
+from ..base.checks import definiteness_problem
 from ..base.keys import normals, stream
 from ..errors import InputError, explain
-from .checks import converged, definiteness_problem, information, name_list, runaway
+from .checks import converged, information, name_list, runaway
 from .search import Search
 
 _SAME_MODE_SD = 3.0  # restarts closer than this many posterior sd are the same mode

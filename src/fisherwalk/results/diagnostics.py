@@ -45,6 +45,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from ..base.checks import whole_number
 from ..errors import InputError, explain
 from . import mcse
 
@@ -211,14 +212,10 @@ def autocorrelation(x, max_lag: int) -> np.ndarray:
     """
     arr, scalar = _as_draws(x, "autocorrelation(x, max_lag)")
     draws = arr.shape[1]
-    if isinstance(max_lag, bool) or not isinstance(max_lag, int | np.integer):
-        raise InputError(explain(f"max_lag is {max_lag!r}, not an integer",
-                                 "autocorrelation(x, max_lag)",
-                                 f"pass an integer from 0 to {draws - 1}"))
-    if not 0 <= max_lag < draws:
-        raise InputError(explain(f"max_lag {max_lag} is outside 0..{draws - 1}",
-                                 "autocorrelation(x, max_lag)", "pass a lag smaller than "
-                                 f"the number of draws per chain ({draws})"))
+    max_lag = whole_number(max_lag, "max_lag", "autocorrelation(x, max_lag)", minimum=0,
+                           maximum=draws - 1,
+                           todo=f"pass a lag smaller than the number of draws per chain "
+                                f"({draws})")
     out = np.empty((arr.shape[2], max_lag + 1))
     for j in range(arr.shape[2]):
         total = np.zeros(max_lag + 1)
@@ -352,9 +349,8 @@ def khat_threshold(size: int) -> float:
     min(1 - 1/log10(S), 0.7): Vehtari, Simpson, Gelman, Yao & Gabry (2024),
     "Pareto smoothed importance sampling", JMLR 25(72).
     """
-    if isinstance(size, bool) or not isinstance(size, int | np.integer) or size < 11:
-        raise InputError(explain(f"size {size!r} is not an integer above 10",
-                                 "khat_threshold(size)", "pass the number of importance draws"))
+    size = whole_number(size, "size", "khat_threshold(size)", minimum=11,
+                        todo="pass the number of importance draws (more than 10)")
     return float(min(1.0 - 1.0 / np.log10(size), 0.7))
 
 

@@ -26,6 +26,7 @@ from typing import Any
 
 import numpy as np
 
+from ..base.files import write_atomic
 from . import diagnostics
 
 __all__ = [
@@ -60,8 +61,7 @@ def _save(fig, path) -> Path | None:
         return None
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, format="png")
-    return path
+    return write_atomic(path, lambda handle: fig.savefig(handle, format="png"))
 
 
 def _labels(trace, labels: Sequence[str] | None) -> list[str]:

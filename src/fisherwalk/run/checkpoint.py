@@ -9,18 +9,24 @@
     the chains' starting states), its fingerprint (the SHA-256 of that identity), the
     walker's tuning record (:mod:`fisherwalk.run.tuningfile`) and the starting states.
 ``state.json``
-    Small and of fixed size, replaced at every save: draws done, the number of complete
-    segments, and the chains' state (position, log density) after the last saved draw.
+    Small, replaced at every save: draws done, the SHA-256 digest of each complete
+    segment (checked on resume: a segment edited into another valid file is refused),
+    and the chains' state (position, log density) after the last saved draw.
 ``segment-000000.npz``, ``segment-000001.npz``, ...
     The kept draws, log densities, acceptance indicators, acceptance rates and faults
     of draws ``[start, stop)``, written once each.
+``writer.lock``
+    Present while a run writes the directory (:mod:`fisherwalk.base.lock`): a second
+    writer is refused, naming the first. A lock left by a run that died on this host is
+    reported as stale and broken only when asked (``walk(..., checkpoint_reclaim=True)``).
 
-Every file is written to a temporary file in the same directory, flushed, ``fsync``-ed
-and renamed over its final name (``os.replace`` is atomic), then the directory is
-``fsync``-ed. A segment is in place before the state file that counts it, so at
+Every file is written through :func:`fisherwalk.base.files.write_atomic` (an
+unpredictable temporary name created exclusively, never through a link, ``fsync``-ed
+and renamed over its final name), and a directory holding anything but regular files
+is refused. A segment is in place before the state file that counts it, so at
 whatever instant the process dies, ``state.json`` lists complete segments only and a
 resume continues from the last save. Each draw is written once and ``state.json`` has a
-fixed size, so the I/O of a run is proportional to its draws; rewriting one file with
+few bytes per segment, so the I/O of a run is proportional to its draws; rewriting one file with
 all the draws at every save would make it grow with draws x saves.
 
 Saves happen at most every ``checkpoint_every`` seconds (0: after every chunk), at the
@@ -28,22 +34,26 @@ end of the run, and when Ctrl-C stops it. A resumed run is bit-identical to an
 uninterrupted one: step ``s`` reads the Philox counters that belong to ``s`` alone
 (:func:`fisherwalk.base.keys.step_noise`) and the chains' state is restored exactly.
 
-Only JSON and ``np.load(..., allow_pickle=False)`` are read back, so a checkpoint cannot
-execute code. A checkpoint of another run is refused, never overwritten.
+Only JSON (:mod:`fisherwalk.base.jsonio`, sizes and depth bounded before reading) and
+``np.load(..., allow_pickle=False)`` of bytes whose size and digest were checked are read
+back, so a checkpoint cannot execute code, and every malformed content raises
+:class:`~fisherwalk.errors.CheckpointError`. The fingerprint covers every field a resume
+uses (the run's settings, the whole tuning record: shape, scale, whitening, Fisher
+information, Cholesky factor, mode; the starting states). A checkpoint of another run
+is refused, never overwritten.
 """
 
 from __future__ import annotations
 
 import contextlib
 import hashlib
-import json
-import math
+import io
 import os
 import re
 import time
+import warnings
 import zipfile
 import zlib
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -51,92 +61,33 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..base.checks import positive_number, whole_number
+from ..base.files import check_folder, fsync_folder, read_bytes, write_atomic
+from ..base.jsonio import decode_array, dumps, encode_array, read_json, write_json_atomic
 from ..base.keys import key_data
+from ..base.lock import LOCK_FILE, Lock, acquire_lock
 from ..base.pytrees import name_difference
-from ..errors import CheckpointError, InputError, explain
+from ..errors import CheckpointError, FisherwalkWarning, explain
 from .engine import ChainState
-from .tuningfile import tuning_record
+from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
-__all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_json", "decode",
-           "damaged"]
+__all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
+           "decode_state", "damaged", "MAX_CHAINS"]
 
 FORMAT = "fisherwalk-checkpoint"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
 DEFAULT_EVERY = 10.0  # seconds between saves
 RUN_FILE = "run.json"
 STATE_FILE = "state.json"
+MAX_CHAINS = 1_000_000
+_MAX_STATE_BYTES = 2**31
 _SEGMENT = "segment-{:06d}.npz"
 _SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
-_TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.\d+\.tmp$")
+_TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
 _ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults")
 
 
 # ----------------------------------------------------------------------------- files
-
-
-def _fsync_dir(directory: Path) -> None:
-    """Make a rename durable (POSIX); a no-op where directories cannot be opened."""
-    try:
-        fd = os.open(directory, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def _write_atomic(path: Path, write: Callable) -> None:
-    """Write through a temporary file in the same directory, fsync, rename."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        with open(tmp, "wb") as handle:
-            write(handle)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
-    _fsync_dir(path.parent)
-
-
-def _write_json(path: Path, content: dict) -> None:
-    text = json.dumps(content, allow_nan=False, separators=(",", ":"))
-    _write_atomic(path, lambda handle: handle.write(text.encode("utf-8")))
-
-
-def _encode(array: Any) -> dict:
-    """An array as JSON: shape and a flat list of floats; a non-finite value is written
-    explicitly as the string "nan", "inf" or "-inf"."""
-    values = np.asarray(array, dtype=np.float64)
-    flat = [v if math.isfinite(v) else repr(v) for v in values.ravel().tolist()]
-    return {"shape": list(values.shape), "values": flat}
-
-
-def decode(content: Any, dtype, shape: tuple) -> np.ndarray:
-    """The inverse of :func:`_encode`; ValueError when malformed."""
-    if not isinstance(content, dict) or content.get("shape") != list(shape):
-        raise ValueError(f"an array of shape {shape} was expected")
-    values = content.get("values")
-    if not isinstance(values, list) or len(values) != math.prod(shape):
-        raise ValueError("wrong number of values")
-    for v in values:
-        if isinstance(v, bool) or not (isinstance(v, int | float) or v in ("nan", "inf", "-inf")):
-            raise ValueError(f"{v!r} is not a number")
-    return np.asarray([float(v) for v in values], dtype=np.float64).astype(dtype).reshape(shape)
-
-
-def _digest(array: Any) -> str:
-    a = np.ascontiguousarray(np.asarray(array))
-    h = hashlib.sha256()
-    h.update(a.dtype.str.encode())
-    h.update(repr(a.shape).encode())
-    h.update(a.tobytes())
-    return h.hexdigest()
 
 
 def damaged(file: Path, reason: str) -> CheckpointError:
@@ -151,30 +102,62 @@ def damaged(file: Path, reason: str) -> CheckpointError:
     )
 
 
-def _refuse_constant(name: str):
-    raise ValueError(f"{name} is not allowed")
+def _reason(err: Exception) -> str:
+    """The first line of a package error's message, as a clause."""
+    first = str(err).splitlines()[0].rstrip(".")
+    return first[:1].lower() + first[1:]
 
 
-def read_json(file: Path) -> dict:
+def read_checkpoint_json(file: Path, *, max_bytes: int) -> dict:
+    """A checkpoint's JSON file, size and depth bounded, format checked."""
     try:
-        with open(file, "rb") as handle:
-            content = json.loads(handle.read().decode("utf-8"), parse_constant=_refuse_constant)
-    except OSError as err:
-        raise damaged(file, f"it cannot be read ({err.strerror})") from err
-    except (UnicodeDecodeError, ValueError) as err:
-        raise damaged(file, f"it is not valid JSON ({err})") from err
+        content = read_json(file, max_bytes=max_bytes, follow_symlinks=False,
+                            error=CheckpointError, where=f"checkpoint {file.parent}")
+    except CheckpointError as err:
+        raise damaged(file, _reason(err)) from err
     if not isinstance(content, dict) or content.get("format") != FORMAT:
         raise damaged(file, "it is not a fisherwalk checkpoint file")
     if content.get("format_version") != FORMAT_VERSION:
-        raise damaged(file, f"format version {content.get('format_version')!r}, this "
+        raise damaged(file, f"format version {content.get('format_version')!r:.20}, this "
                              f"fisherwalk reads {FORMAT_VERSION}")
     if not isinstance(content.get("fingerprint"), str):
         raise damaged(file, "it has no fingerprint")
     return content
 
 
-def _whole(value: Any) -> bool:
-    return isinstance(value, int) and not isinstance(value, bool) and value >= 0
+def decode_state(content: Any, file: Path, dtype, chains: int, dim: int
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """The chains' (position, logdensity) stored in a checkpoint file, shapes checked
+    before allocating."""
+    if not isinstance(content, dict):
+        raise damaged(file, "the chains' state is missing")
+    where = f"checkpoint {file.parent}, file {file.name}"
+    name = np.dtype(dtype).name
+    try:
+        position = decode_array(content.get("position"), "position", where,
+                                max_size=chains * dim, shape=(chains, dim), dtype=name,
+                                error=CheckpointError)
+        logdensity = decode_array(content.get("logdensity"), "logdensity", where,
+                                  max_size=chains, shape=(chains,), dtype=name,
+                                  error=CheckpointError)
+    except CheckpointError as err:
+        raise damaged(file, f"the chains' state is malformed ({_reason(err)})") from err
+    return position, logdensity
+
+
+def _digest(array: Any) -> str:
+    a = np.ascontiguousarray(np.asarray(array))
+    h = hashlib.sha256()
+    h.update(a.dtype.str.encode())
+    h.update(repr(a.shape).encode())
+    h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _segment_bytes(chains: int, draws: int, dim: int, itemsize: int) -> int:
+    """An upper bound on the size of a segment file of ``draws`` draws (uncompressed
+    .npz: the arrays, their headers and the zip directory)."""
+    return chains * draws * (dim * itemsize + 3 * itemsize + 4) + 64 * 1024
 
 
 # ----------------------------------------------------------------------------- identity
@@ -198,13 +181,20 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
                    "shape_kind": str(tuning.shape_kind)},
         "digests": {"factor": _digest(tuning.factor),
                     "mode": _digest(walker.report.laplace.mode_flat),
-                    "states": _digest(positions) + _digest(logdensity)},
+                    "states": _digest(positions) + _digest(logdensity),
+                    "record": _record_digest(tuning_record(walker))},
     }
 
 
+def _record_digest(record: dict) -> str:
+    """SHA-256 of every field of a tuning record a resume uses (all but the notes and
+    the package version, which a rebuilt walker does not reproduce)."""
+    kept = {k: v for k, v in record.items() if k not in ("notes", "package_version")}
+    return hashlib.sha256(dumps(kept, sort_keys=True).encode("utf-8")).hexdigest()
+
+
 def _fingerprint(identity: dict) -> str:
-    text = json.dumps(identity, sort_keys=True, allow_nan=False, separators=(",", ":"))
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+    return hashlib.sha256(dumps(identity, sort_keys=True).encode("utf-8")).hexdigest()
 
 
 def _differences(there: dict, here: dict) -> list[str]:
@@ -227,23 +217,28 @@ def _differences(there: dict, here: dict) -> list[str]:
     digests = there.get("digests") or {}
     if there.get("tuning") != here["tuning"] or digests.get("factor") != here["digests"]["factor"]:
         old = there.get("tuning") or {}
-        out.append(f"another proposal (scale {old.get('scale')} in the checkpoint, "
-                   f"{here['tuning']['scale']} here)")
+        if old.get("scale") == here["tuning"]["scale"]:
+            out.append("another proposal (the same scale; the shape, the whitening or the "
+                       "target acceptance differs: another walker, or an edited run.json)")
+        else:
+            out.append(f"another proposal (scale {old.get('scale')} in the checkpoint, "
+                       f"{here['tuning']['scale']} here)")
     if digests.get("mode") != here["digests"]["mode"]:
         out.append("another Laplace mode (another model or data set?)")
+    if (digests.get("record") != here["digests"]["record"] and not out
+            and digests.get("factor") == here["digests"]["factor"]):
+        out.append("another tuning record (whitening, Fisher information, Cholesky factor or "
+                   "another field differs from this walker's)")
     if digests.get("states") != here["digests"]["states"]:
         out.append("other starting states of the chains (another start() or refine() call)")
     return out
 
 
 def _check_every(every: Any) -> float:
-    if (isinstance(every, bool) or not isinstance(every, int | float | np.number)
-            or not math.isfinite(every) or every < 0):
-        raise InputError(explain(f"checkpoint_every={every!r} is not a number of seconds >= 0.",
-                                 "walk(checkpoint_every=...)",
-                                 f"pass e.g. {DEFAULT_EVERY} (seconds), or 0 to save after "
-                                 "every chunk."))
-    return float(every)
+    return positive_number(every, "checkpoint_every", "walk(checkpoint_every=...)",
+                           allow_zero=True,
+                           todo=f"pass e.g. {DEFAULT_EVERY} (seconds), or 0 to save after "
+                                "every chunk.")
 
 
 # ----------------------------------------------------------------------------- the store
@@ -260,16 +255,23 @@ class Store:
         The run, as given to :func:`fisherwalk.walk`.
     every
         Seconds between saves (0: after every chunk).
+    reclaim
+        Break a stale lock (left by a run on this host that no longer runs).
+
+    The directory's lock is held from construction until :meth:`close` (call it in a
+    ``finally``).
 
     Raises
     ------
     CheckpointError
-        The path is a file or a directory of something else, or holds a checkpoint of
-        another run (the message says what differs), or is damaged.
+        The path is a file or a directory of something else, holds entries that are not
+        regular files, is being written by another run (or holds a stale lock and
+        ``reclaim`` is False), holds a checkpoint of another run (the message says what
+        differs), or is damaged.
     """
 
     def __init__(self, path, walker, rng_key, draws: int, thin: int, chunk: int, *,
-                 every: float = DEFAULT_EVERY):
+                 every: float = DEFAULT_EVERY, reclaim: bool = False):
         self.path = Path(path)
         self.every = _check_every(every)
         self.draws, self.chunk = int(draws), int(chunk)
@@ -277,24 +279,58 @@ class Store:
         self.fingerprint = _fingerprint(self.identity)
         self._done = 0
         self._segments = 0
+        self._digests: list[str] = []
         self._last = time.monotonic()
-        self._open(walker)
+        self.lock: Lock | None = None
+        self._open(walker, bool(reclaim))
 
     # -- opening
 
-    def _refuse(self, what: str, todo: str) -> CheckpointError:
-        return CheckpointError(explain(what, f"walk(checkpoint={os.fspath(self.path)!r})", todo))
+    def _where(self) -> str:
+        return f"walk(checkpoint={os.fspath(self.path)!r})"
 
-    def _open(self, walker) -> None:
+    def _refuse(self, what: str, todo: str) -> CheckpointError:
+        return CheckpointError(explain(what, self._where(), todo))
+
+    def close(self) -> None:
+        """Release the directory's lock (idempotent)."""
+        if self.lock is not None:
+            self.lock.release()
+
+    def _open(self, walker, reclaim: bool) -> None:
         p = self.path
-        if p.exists() and not p.is_dir():
+        if p.is_symlink() or (p.exists() and not p.is_dir()):
             raise self._refuse(
-                f"{p} is a file; a checkpoint is a directory.",
+                f"{p} is a file or a link; a checkpoint is a directory.",
                 "pass a directory path (e.g. 'run.ckpt') that does not exist yet or holds a "
                 "checkpoint of this run; the file is left untouched.")
+        if not p.exists():
+            try:
+                p.mkdir(parents=True)
+            except OSError as err:
+                raise self._refuse(f"The directory {p} cannot be created ({err.strerror}).",
+                                   "pass a path in a writable folder.") from err
+            fsync_folder(p.parent)
+        check_folder(p, error=CheckpointError, where=self._where())
+        self.lock = acquire_lock(p, break_stale=reclaim, error=CheckpointError,
+                                 where=self._where(),
+                                 break_hint="pass checkpoint_reclaim=True (to walk or resume)")
+        try:
+            if self.lock.broken is not None:
+                warnings.warn(f"The stale lock of {p} (process {self.lock.broken.pid}, "
+                              f"since {self.lock.broken.started}) was broken; this run "
+                              "continues the checkpoint.", FisherwalkWarning, stacklevel=4)
+            self._open_locked(walker)
+        except BaseException:
+            self.close()
+            raise
+
+    def _open_locked(self, walker) -> None:
+        p = self.path
+        names = check_folder(p, error=CheckpointError, where=self._where())
         run_file = p / RUN_FILE
-        if run_file.exists():
-            run = read_json(run_file)
+        if RUN_FILE in names:
+            run = read_checkpoint_json(run_file, max_bytes=2 * MAX_RECORD_BYTES)
             if run["fingerprint"] != self.fingerprint:
                 there = run.get("identity") if isinstance(run.get("identity"), dict) else {}
                 diffs = _differences(there, self.identity) or ["its fingerprint differs"]
@@ -308,53 +344,75 @@ class Store:
                     f"The checkpoint {p} belongs to another run: {'; '.join(diffs)}.",
                     f"pass another checkpoint path for this run, or delete {p} if its draws "
                     f"are no longer needed (a checkpoint is never overwritten).{hint}")
+            if _fingerprint(run.get("identity")) != self.fingerprint:
+                raise damaged(run_file, "its identity does not match its fingerprint")
             return
-        if p.is_dir():
-            others = sorted(f for f in os.listdir(p) if not _TMP_RE.match(f))
-            if others:
-                raise self._refuse(
-                    f"The directory {p} holds other files ({', '.join(others[:4])}) and no "
-                    f"{RUN_FILE}: it is not a fisherwalk checkpoint.",
-                    "pass a new directory path for the checkpoint; nothing was written.")
-        else:
-            p.mkdir(parents=True)
-            _fsync_dir(p.parent)
+        others = [n for n in names if n != LOCK_FILE and not _TMP_RE.match(n)]
+        if others:
+            raise self._refuse(
+                f"The directory {p} holds other files ({', '.join(others[:4])}) and no "
+                f"{RUN_FILE}: it is not a fisherwalk checkpoint.",
+                "pass a new directory path for the checkpoint; nothing was written.")
         run = {
             "format": FORMAT,
             "format_version": FORMAT_VERSION,
             "fingerprint": self.fingerprint,
             "identity": self.identity,
             "record": tuning_record(walker),
-            "start": {"position": _encode(walker.flat_positions()),
-                      "logdensity": _encode(walker.state.logdensity)},
+            "start": {"position": encode_array(walker.flat_positions()),
+                      "logdensity": encode_array(walker.state.logdensity)},
         }
-        _write_json(run_file, run)
+        write_json_atomic(run_file, run, indent=None, error=CheckpointError,
+                          where=self._where())
 
     # -- reading
 
-    def _read_state(self) -> dict | None:
+    def _read_state(self, chains: int, dim: int) -> dict | None:
         file = self.path / STATE_FILE
         if not file.exists():
             if any(_SEGMENT_RE.match(f) for f in os.listdir(self.path)):
                 raise damaged(file, "it is missing while segment files exist")
             return None  # the process stopped before its first save
-        state = read_json(file)
+        state = read_checkpoint_json(file, max_bytes=_MAX_STATE_BYTES)
         if state["fingerprint"] != self.fingerprint:
             raise damaged(file, "it was written for another run than run.json")
-        done, segments = state.get("done"), state.get("segments")
-        if not (_whole(done) and _whole(segments)) or done > self.draws:
-            raise damaged(file, f"done={done!r} and segments={segments!r} are not valid")
-        if (done % self.chunk and done != self.draws) or (done == 0) != (segments == 0):
+        done, digests = state.get("done"), state.get("digests")
+        try:
+            done = whole_number(done, "done", "state", minimum=0, maximum=self.draws,
+                                error=CheckpointError)
+        except CheckpointError as err:
+            raise damaged(file, f"done={done!r:.40} is not a number of draws") from err
+        if (not isinstance(digests, list) or len(digests) > self.draws
+                or state.get("segments") != len(digests)
+                or not all(isinstance(d, str) and re.fullmatch(r"[0-9a-f]{64}", d)
+                           for d in digests)):
+            raise damaged(file, "'digests' is not a list of SHA-256 digests")
+        if (done % self.chunk and done != self.draws) or (done == 0) != (not digests):
             raise damaged(file, f"done={done} is not a chunk boundary")
+        state["done"] = done
+        if done:
+            state["position"], state["logdensity"] = decode_state(
+                state, file, self._dtype, chains, dim)
         return state
 
-    def _load_segment(self, index: int, start: int, collector) -> int:
+    def _load_segment(self, index: int, start: int, digest: str, collector) -> int:
         file = self.path / _SEGMENT.format(index)
+        chains, draws, dim = collector.flat.shape
+        limit = _segment_bytes(chains, draws - start, dim, collector.flat.itemsize)
         if not file.exists():
             raise damaged(file, "the segment file is missing")
         try:
-            with np.load(file, allow_pickle=False) as data:
-                arrays = {name: data[name] for name in (*_ARRAYS, "start", "stop", "fingerprint")}
+            data = read_bytes(file, max_bytes=limit, follow_symlinks=False,
+                              error=CheckpointError, where=f"checkpoint {self.path}")
+        except CheckpointError as err:
+            raise damaged(file, _reason(err)) from err
+        if hashlib.sha256(data).hexdigest() != digest:
+            raise damaged(file, "its SHA-256 digest is not the one state.json recorded when "
+                                "it was written (the file was changed or replaced)")
+        try:
+            with np.load(io.BytesIO(data), allow_pickle=False) as content:
+                arrays = {name: content[name]
+                          for name in (*_ARRAYS, "start", "stop", "fingerprint")}
         except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
             raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
         if str(arrays["fingerprint"]) != self.fingerprint:
@@ -362,7 +420,6 @@ class Store:
         first, stop = int(arrays["start"]), int(arrays["stop"])
         if first != start or not start < stop <= self.draws:
             raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
-        chains, _, dim = collector.flat.shape
         for name, target in zip(_ARRAYS, (collector.flat, collector.logdensity, collector.accepted,
                                           collector.acceptance_rate, collector.faults),
                                 strict=True):
@@ -377,28 +434,25 @@ class Store:
     def restore(self, collector, state: ChainState) -> ChainState:
         """Fill ``collector`` with the saved draws; return the chains' state to continue
         from (``state``, the walker's own, when nothing was saved yet)."""
-        saved = self._read_state()
+        chains, _, dim = collector.flat.shape
+        self._dtype = collector.flat.dtype
+        saved = self._read_state(chains, dim)
         if saved is None:
             return state
-        done, segments = saved["done"], saved["segments"]
+        done, digests = saved["done"], saved["digests"]
         stop = 0
-        for index in range(segments):
-            stop = self._load_segment(index, stop, collector)
+        for index, digest in enumerate(digests):
+            stop = self._load_segment(index, stop, digest, collector)
         state_file = self.path / STATE_FILE
         if stop != done:
             raise damaged(state_file, f"it counts {done} draws, the segments hold {stop}")
-        chains, _, dim = collector.flat.shape
         if done:
-            try:
-                position = decode(saved.get("position"), collector.flat.dtype, (chains, dim))
-                logdensity = decode(saved.get("logdensity"), collector.flat.dtype, (chains,))
-            except ValueError as err:
-                raise damaged(state_file, f"the chains' state is malformed ({err})") from err
+            position, logdensity = saved["position"], saved["logdensity"]
             if not (np.array_equal(position, collector.flat[:, done - 1])
                     and np.array_equal(logdensity, collector.logdensity[:, done - 1])):
                 raise damaged(state_file, "the chains' state is not the last saved draw")
         collector.done = done
-        self._done, self._segments = done, segments
+        self._done, self._segments, self._digests = done, len(digests), list(digests)
         self._tidy()
         if not done:
             return state
@@ -433,15 +487,20 @@ class Store:
         arrays = {name: getattr(collector, name)[:, start:done] for name in _ARRAYS}
         arrays.update(start=np.int64(start), stop=np.int64(done),
                       fingerprint=np.array(self.fingerprint))
-        _write_atomic(self.path / _SEGMENT.format(index),
-                      lambda handle: np.savez(handle, **arrays))
-        _write_json(self.path / STATE_FILE, {
+        buffer = io.BytesIO()
+        np.savez(buffer, **arrays)
+        data = buffer.getvalue()
+        write_atomic(self.path / _SEGMENT.format(index), lambda handle: handle.write(data),
+                     error=CheckpointError, where=self._where())
+        digests = [*self._digests, hashlib.sha256(data).hexdigest()]
+        write_json_atomic(self.path / STATE_FILE, {
             "format": FORMAT,
             "format_version": FORMAT_VERSION,
             "fingerprint": self.fingerprint,
             "done": int(done),
-            "segments": index + 1,
-            "position": _encode(collector.flat[:, done - 1]),
-            "logdensity": _encode(collector.logdensity[:, done - 1]),
-        })
-        self._done, self._segments, self._last = done, index + 1, now
+            "segments": len(digests),
+            "digests": digests,
+            "position": encode_array(collector.flat[:, done - 1]),
+            "logdensity": encode_array(collector.logdensity[:, done - 1]),
+        }, indent=None, error=CheckpointError, where=self._where())
+        self._done, self._segments, self._digests, self._last = done, index + 1, digests, now

@@ -7,7 +7,11 @@ call (the chunk), steps per kept draw (the thinning), chains and dimension.
 
 The random numbers of step ``s`` come from a counter-based generator on the host
 (:func:`fisherwalk.base.keys.step_noise`), so a run gives the same draws however it is
-chunked or resumed.
+chunked or resumed. They are made in blocks of at most :data:`NOISE_BUDGET` numbers: a
+call whose ``draws x thin`` steps need more is split into several compiled calls (fewer
+kept draws each, or, when one kept draw alone needs more, a part of its ``thin`` steps
+each), so memory follows the kept draws, not the steps taken. The split does not change
+a single bit of the draws: each step reads its own numbers and does the same arithmetic.
 
 Scale adaptation (warm-up only; ``rate = 0`` switches it off) is a Robbins-Monro
 recursion on the log of the scale multiplier, driven by the acceptance probability
@@ -32,6 +36,7 @@ from ..base.meshes import chain_placement
 from . import proposal
 
 DEFAULT_CHUNK = 100  # kept draws per compiled call; warm-up uses the same, so one compile
+NOISE_BUDGET = 2**22  # random numbers per compiled call (32 MiB in float64)
 GAIN_EXPONENT = 0.6  # in (1/2, 1]: the Robbins-Monro conditions sum gain = inf, sum gain² < inf
 
 
@@ -64,14 +69,21 @@ class Chunk(NamedTuple):
     log_multiplier_path: jax.Array  # (draws,) log multiplier after each kept draw
 
 
-def _compiled(logdensity_flat: Callable) -> Callable:
+class Partial(NamedTuple):
+    """The accumulators of one kept draw whose ``thin`` steps span several calls."""
+
+    state: ChainState
+    log_multiplier: jax.Array  # ()
+    faults: jax.Array  # (chains,) int
+    accepted: jax.Array  # (chains,) count of accepted steps
+    rate_sum: jax.Array  # (chains,) sum of acceptance probabilities
+
+
+def _compiled(logdensity_flat: Callable) -> tuple[Callable, Callable]:
     vstep = jax.vmap(proposal.metropolis, in_axes=(0, 0, 0, None, None, None))
 
-    def advance(noise, uniform, state: ChainState, factor, control: Control):
-        # noise: (draws, thin, chains, d); uniform: (draws, thin, chains)
-        thin = noise.shape[1]
-
-        def one_step(carry, inputs):
+    def one_step(factor, control: Control):
+        def step(carry, inputs):
             flat_state, log_m, faults, n_acc, rate_sum = carry
             z, u, t = inputs
             new_state, info = vstep(proposal.FlatState(*flat_state), z, u, logdensity_flat,
@@ -86,6 +98,13 @@ def _compiled(logdensity_flat: Callable) -> Callable:
                 rate_sum + info.acceptance_rate,
             ), None
 
+        return step
+
+    def advance(noise, uniform, state: ChainState, factor, control: Control):
+        # noise: (draws, thin, chains, d); uniform: (draws, thin, chains)
+        thin = noise.shape[1]
+        step = one_step(factor, control)
+
         def kept(carry, inputs):
             flat_state, log_m = carry
             z, u, i = inputs
@@ -93,10 +112,10 @@ def _compiled(logdensity_flat: Callable) -> Callable:
             faults = jnp.zeros(z.shape[1], dtype=jnp.int32)
             carry = (flat_state, log_m, faults, zeros, zeros)
             if thin == 1:  # no inner loop: one step per kept draw
-                carry, _ = one_step(carry, (z[0], u[0], i))
+                carry, _ = step(carry, (z[0], u[0], i))
             else:
                 steps = i * thin + jnp.arange(thin)
-                carry, _ = jax.lax.scan(one_step, carry, (z, u, steps))
+                carry, _ = jax.lax.scan(step, carry, (z, u, steps))
             flat_state, log_m, faults, n_acc, rate_sum = carry
             out = (faults, flat_state.position, flat_state.logdensity, n_acc / thin,
                    rate_sum / thin, log_m)
@@ -108,31 +127,92 @@ def _compiled(logdensity_flat: Callable) -> Callable:
         )
         return Chunk(final, log_m, *outs)
 
-    return jax.jit(advance)
+    def advance_part(noise, uniform, part: Partial, factor, control: Control, first):
+        # noise: (steps, chains, d): steps first .. first + steps - 1 of one kept draw
+        steps = first + jnp.arange(noise.shape[0])
+        carry, _ = jax.lax.scan(one_step(factor, control), tuple(part), (noise, uniform, steps))
+        return Partial(*carry)
+
+    return jax.jit(advance), jax.jit(advance_part)
 
 
-def make_engine(logdensity_flat: Callable, chains: int, devices=None) -> Callable:
+def _pieces(total: int, size: int, *, shortest: int = 1) -> list[tuple[int, int]]:
+    """(offset, length) pieces of ``range(total)``, each at most ``size`` long, except
+    that a last piece shorter than ``shortest`` joins the one before it."""
+    pieces = [(k, min(size, total - k)) for k in range(0, total, size)]
+    if len(pieces) > 1 and pieces[-1][1] < shortest:
+        (offset, length), (_, rest) = pieces[-2], pieces.pop()
+        pieces[-1] = (offset, length + rest)
+    return pieces
+
+
+def make_engine(logdensity_flat: Callable, chains: int, devices=None, *,
+                budget: int | None = None) -> Callable:
     """Build ``engine(stream, first_step, state, factor, control, draws, thin=1) -> Chunk``.
 
     ``stream`` is a Philox key (:func:`fisherwalk.base.keys.stream`); ``first_step`` the global
-    index of the first step this call takes. Compiles once per (draws, thin) pair.
+    index of the first step this call takes. Compiles once per (draws, thin) pair. A call
+    needing more than ``budget`` random numbers is split (see the module docstring), so
+    its memory is bounded by the budget and the kept draws (default :data:`NOISE_BUDGET`).
     ``devices``: where the chains run (:func:`fisherwalk.base.meshes.chain_mesh`; None:
     automatic, one device = no placement).
     """
-    compiled = _compiled(logdensity_flat)
+    compiled, compiled_part = _compiled(logdensity_flat)
     placement = chain_placement(chains, devices)  # [devices] None on one device
+    budget = NOISE_BUDGET if budget is None else budget
+
+    def noise_for(stream, first: int, steps: int, dim: int, dtype):
+        return step_noise(stream, first, steps, chains, dim, dtype)
+
+    def whole(stream, first_step, state, factor, ctrl, draws, thin, dim, dtype) -> Chunk:
+        noise, uniform = noise_for(stream, first_step, draws * thin, dim, dtype)
+        inputs = (noise.reshape(draws, thin, chains, dim), uniform.reshape(draws, thin, chains),
+                  state, factor, ctrl)
+        if placement is None:
+            return compiled(*inputs)
+        return placement.gather(compiled(*placement.engine_inputs(*inputs)))  # [devices]
+
+    def by_parts(stream, first_step, state, factor, ctrl, thin, dim, dtype, size) -> Chunk:
+        """One kept draw whose thin steps are taken ``size`` at a time."""
+        zeros = np.zeros(chains, dtype=dtype)
+        part = Partial(state, jnp.asarray(ctrl.log_multiplier), np.zeros(chains, np.int32),
+                       zeros, zeros)
+        # Pieces of at least two steps: XLA compiles a one-step loop without the loop, and
+        # its rounding of the log density can then differ from the unsplit run's.
+        for offset, length in _pieces(thin, max(size, 2), shortest=2):
+            noise, uniform = noise_for(stream, first_step + offset, length, dim, dtype)
+            part = compiled_part(noise, uniform, part, factor, ctrl,
+                                 np.asarray(offset))
+        final = part.state
+        return Chunk(final, part.log_multiplier, part.faults[None], final.position[None],
+                     final.logdensity[None], (part.accepted / thin)[None],
+                     (part.rate_sum / thin)[None], part.log_multiplier[None])
 
     def engine(stream, first_step: int, state: ChainState, factor, control: Control,
                draws: int, thin: int = 1) -> Chunk:
         dim = np.shape(state.position)[1]
         dtype = np.asarray(state.logdensity).dtype
-        noise, uniform = step_noise(stream, first_step, draws * thin, chains, dim, dtype)
-        noise = noise.reshape(draws, thin, chains, dim)
-        uniform = uniform.reshape(draws, thin, chains)
-        if placement is None:
-            return compiled(noise, uniform, state, factor, control)
-        placed = placement.engine_inputs(noise, uniform, state, factor, control)  # [devices]
-        return placement.gather(compiled(*placed))  # [devices]
+        per_step = chains * (dim + 1)
+        if draws * thin * per_step <= budget:
+            return whole(stream, first_step, state, factor, control, draws, thin, dim, dtype)
+        per_call = budget // (thin * per_step)
+        if thin == 1:  # one step per kept draw: nothing smaller to split into
+            per_call = max(per_call, 1)
+        outs = []
+        ctrl = control
+        for offset, length in _pieces(draws, max(per_call, 1)):
+            first = first_step + offset * thin
+            if per_call >= 1:
+                out = whole(stream, first, state, factor, ctrl, length, thin, dim, dtype)
+            else:
+                out = by_parts(stream, first, state, factor, ctrl, thin, dim, dtype,
+                               max(budget // per_step, 1))
+            outs.append(out)
+            state = out.state
+            ctrl = ctrl._replace(log_multiplier=out.log_multiplier,
+                                 adapt_step=ctrl.adapt_step + length * thin)
+        joined = [jnp.concatenate(parts) for parts in zip(*(o[2:] for o in outs), strict=True)]
+        return Chunk(outs[-1].state, outs[-1].log_multiplier, *joined)
 
     engine.compiled = compiled
     engine.placement = placement  # [devices]

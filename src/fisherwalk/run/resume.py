@@ -12,19 +12,29 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..base.checks import whole_number
 from ..base.precision import x64_enabled
 from ..errors import CheckpointError, InputError, explain
 from ..results.trace import Trace
-from .checkpoint import DEFAULT_EVERY, RUN_FILE, STATE_FILE, damaged, decode, read_json
+from .checkpoint import (
+    DEFAULT_EVERY,
+    MAX_CHAINS,
+    RUN_FILE,
+    STATE_FILE,
+    damaged,
+    decode_state,
+    read_checkpoint_json,
+)
+from .memory import check_walk_memory
 from .sampling import walk
-from .tuningfile import walker_from_record
+from .tuningfile import MAX_DIM, MAX_RECORD_BYTES, walker_from_record
 
 __all__ = ["resume"]
 
 
 def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: bool | None = None,
-           checkpoint_every: float = DEFAULT_EVERY, pointwise: Callable | None = None,
-           derived: Callable | None = None) -> Trace:
+           checkpoint_every: float = DEFAULT_EVERY, checkpoint_reclaim: bool = False,
+           pointwise: Callable | None = None, derived: Callable | None = None) -> Trace:
     """Finish a checkpointed run from its directory alone and the model's log density.
 
     The walker is rebuilt from the tuning record stored in the checkpoint
@@ -46,6 +56,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         Progress bar, as in :func:`fisherwalk.walk`.
     checkpoint_every
         Seconds between saves (0: after every chunk).
+    checkpoint_reclaim
+        Break the directory's lock when it is stale (left by a run on this host that no
+        longer runs, e.g. killed); a lock of a running process is never broken.
     pointwise, derived
         As in :func:`fisherwalk.walk`; evaluated on all the kept draws at the end (they
         are not stored in the checkpoint).
@@ -57,8 +70,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     Raises
     ------
     CheckpointError
-        No checkpoint at ``path``, a damaged one, or a log density that does not
-        match the one the checkpoint was written with.
+        No checkpoint at ``path``, a damaged one (every field is checked before it is
+        used, sizes before anything is allocated), one another run is writing, or a log
+        density that does not match the one the checkpoint was written with.
     """
     directory = Path(path)
     run_file = directory / RUN_FILE
@@ -66,18 +80,26 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     if not run_file.is_file():
         raise CheckpointError(explain(f"There is no checkpoint at {directory} (no {RUN_FILE}).",
                                       where, "pass the directory given to walk(checkpoint=...)."))
-    run = read_json(run_file)
+    run = read_checkpoint_json(run_file, max_bytes=2 * MAX_RECORD_BYTES)
     identity, start = run.get("identity"), run.get("start")
+    if not isinstance(identity, dict) or not isinstance(start, dict):
+        raise damaged(run_file, "its identity or starting states are missing")
     try:
-        chains, dim = identity["chains"], identity["dim"]
-        dtype = np.dtype(identity["dtype"])
-        positions0 = decode(start["position"], dtype, (chains, dim))
-        logdensity0 = decode(start["logdensity"], dtype, (chains,))
-        key = jax.random.wrap_key_data(np.asarray(identity["key"]["data"], dtype=np.uint32),
-                                       impl=identity["key"]["impl"])
-        draws, thin, chunk = identity["draws"], identity["thin"], identity["chunk"]
-    except (KeyError, TypeError, ValueError) as err:
-        raise damaged(run_file, f"its identity or starting states are malformed ({err})") from err
+        chains = whole_number(identity.get("chains"), "chains", where, maximum=MAX_CHAINS,
+                              error=CheckpointError)
+        dim = whole_number(identity.get("dim"), "dim", where, maximum=MAX_DIM,
+                           error=CheckpointError)
+        draws = whole_number(identity.get("draws"), "draws", where, error=CheckpointError)
+        thin = whole_number(identity.get("thin"), "thin", where, error=CheckpointError)
+        chunk = whole_number(identity.get("chunk"), "chunk", where, error=CheckpointError)
+    except CheckpointError as err:
+        raise damaged(run_file, str(err).splitlines()[0].rstrip(".")) from err
+    if identity.get("dtype") not in ("float32", "float64"):
+        raise damaged(run_file, f"dtype {identity.get('dtype')!r:.40} is not float32 or float64")
+    dtype = np.dtype(identity["dtype"])
+    positions0, logdensity0 = decode_state(start, run_file, dtype, chains, dim)
+    key = _key(identity.get("key"), run_file)
+    check_walk_memory(draws, chains, dim, dtype=dtype, where=where, error=CheckpointError)
     if dtype == np.float64 and not x64_enabled():
         raise CheckpointError(explain(
             "The checkpoint was written in float64 and JAX now computes in float32.", where,
@@ -86,7 +108,7 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     try:
         walker = walker_from_record(run.get("record"), logdensity_fn, positions0, logdensity0,
                                     position=position)
-    except InputError as err:
+    except InputError as err:  # the record failed a check of tuningfile.read_record
         raise CheckpointError(explain(
             f"The walker cannot be rebuilt from {run_file}: {str(err).splitlines()[0]}",
             where, "pass position=<a position of the model> if the message asks for it; "
@@ -94,7 +116,22 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         )) from err
     _check_logdensity(directory, walker, positions0, logdensity0, where)
     return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
-                checkpoint_every=checkpoint_every, pointwise=pointwise, derived=derived)
+                checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,
+                pointwise=pointwise, derived=derived)
+
+
+def _key(content: Any, run_file: Path) -> jax.Array:
+    """The run's key from its stored implementation name and key data."""
+    if (not isinstance(content, dict) or not isinstance(content.get("impl"), str)
+            or not isinstance(content.get("data"), list) or not 1 <= len(content["data"]) <= 16
+            or not all(isinstance(v, int) and not isinstance(v, bool) and 0 <= v < 2**32
+                       for v in content["data"])):
+        raise damaged(run_file, "its random key is malformed")
+    try:
+        return jax.random.wrap_key_data(np.asarray(content["data"], dtype=np.uint32),
+                                        impl=content["impl"])
+    except (KeyError, TypeError, ValueError) as err:
+        raise damaged(run_file, f"its random key is malformed ({err})") from err
 
 
 def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str) -> None:
@@ -102,13 +139,10 @@ def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: s
     positions, stored = positions0, logdensity0
     state_file = directory / STATE_FILE
     if state_file.exists():
-        saved = read_json(state_file)
+        saved = read_checkpoint_json(state_file, max_bytes=2**31)
         if saved.get("done"):
-            try:
-                positions = decode(saved.get("position"), positions0.dtype, positions0.shape)
-                stored = decode(saved.get("logdensity"), positions0.dtype, logdensity0.shape)
-            except ValueError as err:
-                raise damaged(state_file, f"the chains' state is malformed ({err})") from err
+            positions, stored = decode_state(saved, state_file, positions0.dtype,
+                                             *positions0.shape)
     values = np.asarray(walker.evaluate(jnp.asarray(positions)))
     # Same model, same data: equal up to rounding of the sum (a different compilation
     # may order it differently), so allow sqrt(machine epsilon) relative to |log density|.

@@ -23,6 +23,7 @@ from . import derive, engine, plan
 from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
 from .gradient_run import gradient_chunks
+from .memory import check_walk_memory
 from .progress import progress_bar
 from .walker import Walker, continuable_state
 
@@ -81,6 +82,7 @@ def walk(
     progress: bool | None = None,
     checkpoint=None,
     checkpoint_every: float = 10.0,
+    checkpoint_reclaim: bool = False,
     pointwise: Callable | None = None,
     derived: Callable | None = None,
 ) -> Trace:
@@ -121,6 +123,11 @@ def walk(
     checkpoint_every
         Seconds between checkpoint saves (0: after every chunk); the end of the run and
         Ctrl-C always save.
+    checkpoint_reclaim
+        Break the checkpoint directory's lock when it is stale: left by a run on this
+        host that no longer runs (killed, or the machine restarted). A lock held by a
+        running process is never broken; by default a stale lock is refused with a
+        message naming its owner.
     pointwise
         ``pointwise(position) -> (n_obs,)``, the log likelihood of each observation;
         evaluated after sampling at the kept draws (in chunks, :mod:`fisherwalk.run.derive`)
@@ -144,6 +151,11 @@ def walk(
 
     Ctrl-C during a run without a checkpoint returns a Trace of the draws finished so
     far (``complete=False``) with a warning, instead of losing them.
+
+    Memory follows the kept draws, whatever ``thin`` is (the random numbers are made in
+    bounded blocks). A run whose kept draws and summary would not fit in the memory this
+    process can allocate is refused before anything is allocated
+    (:func:`fisherwalk.run.memory.check_walk_memory`).
     """
     planned = draws is None
     thin = whole_number(thin, "thin", "walk(thin=...)")
@@ -172,6 +184,7 @@ def walk(
     else:
         total = whole_number(draws, "draws", "walk(draws=...)")
     dtype = np.asarray(state.logdensity).dtype
+    check_walk_memory(total, chains, dim, dtype=dtype)
     collector = _Collector(chains, total, dim, dtype)
     if walker.gradient:
         def chunks(state, total, done):
@@ -187,8 +200,23 @@ def walk(
                               chunk=chunk, thin=thin, done=done)
     store = None
     if checkpoint is not None:
-        store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every)
-        state = store.restore(collector, state)
+        store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
+                      reclaim=checkpoint_reclaim)
+    try:
+        if store is not None:
+            state = store.restore(collector, state)
+        return _sample(walker, key, state, collector, store, chunks, planned, total, thin,
+                       chunk, progress, (ess_limit, rhat_limit, max_draws, max_seconds),
+                       pointwise, derived)
+    finally:
+        if store is not None:
+            store.close()
+
+
+def _sample(walker, key, state, collector, store, chunks, planned, total, thin, chunk,
+            progress, limits, pointwise, derived) -> Trace:
+    """The chunk loop of walk(): rounds (a planned run) or one fixed length."""
+    ess_limit, rhat_limit, max_draws, max_seconds = limits
     bar = progress_bar(total, progress, "sampling, round 1" if planned else "sampling")
     if bar is not None:
         bar.update(collector.done)
@@ -243,6 +271,11 @@ def walk(
     except KeyboardInterrupt:
         if store is not None:
             store.save(collector, state, force=True)
+            warnings.warn(
+                f"walk() was interrupted after {collector.done} of {total} draws per chain; "
+                f"they are saved in the checkpoint {store.path}: continue with "
+                f"fisherwalk.resume({str(store.path)!r}, logdensity_fn).",
+                FisherwalkWarning, stacklevel=3)
             raise
         collector.truncate()
         stopped = "interrupted"
@@ -251,7 +284,7 @@ def walk(
             "returned Trace holds them (complete=False). To make long runs resumable, pass "
             "draws=N and checkpoint='run.ckpt'.",
             FisherwalkWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
     finally:
         if bar is not None:

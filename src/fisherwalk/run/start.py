@@ -16,8 +16,9 @@ from typing import Any
 import jax
 import numpy as np
 
+from ..base.checks import spd_matrix, whole_number
 from ..base.keys import as_key, normals, stream
-from ..errors import FisherwalkWarning, InputError, explain
+from ..errors import FisherwalkWarning, InputError, explain, warn_user
 from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
@@ -38,73 +39,29 @@ __all__ = ["start", "proposal_shape", "tuning_for", "SHAPES", "LAPLACE_DRAWS"]
 
 SHAPES = ("fisher", "diagonal", "identity")
 LAPLACE_DRAWS = 500  # draws of N(mode, H⁻¹): chains start at some; all feed PSIS k̂
+LARGE_DIM = 1000  # from here on start() says up front what to expect (see _large_dim_note)
 
 
-def _validate_chains(chains) -> int:
-    if isinstance(chains, bool) or not isinstance(chains, int | np.integer) or chains < 1:
-        raise InputError(
-            explain(
-                f"chains={chains!r} is not a positive whole number.",
-                "start(chains=...)",
-                "use 1 or more chains; 4 (the default) or more lets R-hat compare chains.",
-            )
-        )
-    if chains == 1:
-        warnings.warn(
-            "chains=1: R-hat needs at least 2 chains to compare; with one chain it only "
-            "compares the chain's two halves, and a second mode or a stuck chain goes "
-            "unseen. Use chains=4 (the default) unless you know why one chain suffices.",
-            FisherwalkWarning, stacklevel=3)
-    return int(chains)
-
-
-def _user_shape(matrix, fit: LaplaceFit) -> jax.Array:
+def _user_shape(matrix, fit: LaplaceFit) -> np.ndarray:
     """A user's proposal covariance -> its lower Cholesky factor, validated."""
-    d = len(fit.names)
-    try:
-        cov = np.asarray(matrix, dtype=float)
-    except (TypeError, ValueError) as err:
-        raise InputError(explain(f"shape={type(matrix).__name__} is neither a known shape nor "
-                                 "a matrix.", "start(shape=...)",
-                                 f"use one of {', '.join(map(repr, SHAPES))}, or a (d, d) "
-                                 "covariance matrix.")) from err
-    where = "start(shape=<matrix>)"
-    if cov.shape != (d, d):
-        raise InputError(
-            explain(
-                f"The proposal covariance has shape {cov.shape}; expected ({d}, {d}) in the "
-                f"ravelled parameter order {', '.join(fit.names[:6])}{', ...' if d > 6 else ''}.",
-                where,
-                "pass a (d, d) covariance matrix for the proposal shape.",
-            )
-        )
-    if not np.isfinite(cov).all():
-        raise InputError(explain("The proposal covariance has non-finite entries.", where,
-                                 "pass a finite symmetric positive-definite matrix."))
-    asym = np.abs(cov - cov.T) / (np.abs(cov) + np.abs(cov.T) + 1e-300)
-    if asym.max() > 1e-8:
-        i, j = np.unravel_index(np.argmax(asym), asym.shape)
-        raise InputError(
-            explain(
-                f"The proposal covariance is not symmetric: entries ({fit.names[i]}, "
-                f"{fit.names[j]}) and ({fit.names[j]}, {fit.names[i]}) differ.",
-                where,
-                "pass a symmetric matrix, e.g. (M + M.T) / 2.",
-            )
-        )
-    eigval, eigvec = np.linalg.eigh(cov)
-    if eigval[0] <= 1e-12 * max(eigval[-1], 1e-300):
-        worst = np.argsort(-np.abs(eigvec[:, 0]))[:3]
-        raise InputError(
-            explain(
-                "The proposal covariance is not positive definite (smallest eigenvalue "
-                f"{eigval[0]:.3g}); the direction involves "
-                f"{', '.join(fit.names[k] for k in worst)}.",
-                where,
-                "pass a positive-definite covariance matrix.",
-            )
-        )
+    cov = spd_matrix(matrix, fit.names, "start(shape=<matrix>)", what="proposal covariance",
+                     todo="pass a positive-definite covariance matrix, or one of "
+                          f"{', '.join(map(repr, SHAPES))}.")
     return np.linalg.cholesky(cov).astype(np.asarray(fit.mode_flat).dtype)
+
+
+def _large_dim_note(dim: int) -> str:
+    """What to expect of random-walk Metropolis at a large dimension, and what to use."""
+    return (
+        f"{dim} parameters: the fit computes a {dim} x {dim} Hessian (about "
+        f"{dim * dim * 8 / 2**20:.0f} MiB per copy, and {dim} gradient evaluations), and a "
+        "random walk needs of the order of d steps per effectively independent draw (its "
+        "optimal step shrinks as 1/sqrt(d): Roberts, Gelman & Gilks 1997, Ann. Appl. "
+        "Probab. 7(1)), so expect a small ESS unless thin x draws is many times d. A "
+        "gradient-based sampler such as NUTS needs far fewer steps at this dimension "
+        "(of the order of d^(1/4) for HMC: Beskos, Pillai, Roberts, Sanz-Serna & Stuart "
+        "2013, Bernoulli 19(5A))."
+    )
 
 
 def proposal_shape(shape, fit: LaplaceFit) -> tuple[jax.Array, str]:
@@ -306,9 +263,21 @@ def start(
     >>> round(walker.tuning.target_acceptance, 2)
     0.31
     """
-    chains = _validate_chains(chains)
+    chains = whole_number(chains, "chains", "start(chains=...)",
+                          todo="use 1 or more chains; 4 (the default) or more lets R-hat "
+                               "compare chains.")
+    if chains == 1:
+        warn_user("chains=1: R-hat needs at least 2 chains to compare; with one chain it only "
+                  "compares the chain's two halves, and a second mode or a stuck chain goes "
+                  "unseen. Use chains=4 (the default) unless you know why one chain "
+                  "suffices.", FisherwalkWarning)
     sampler = check_sampler(sampler)
     key = as_key(rng_key, where="start(rng_key=...)")
+    dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
+        int(np.size(leaf)) for leaf in jax.tree.leaves(position))
+    large = [_large_dim_note(dim)] if dim >= LARGE_DIM else []
+    for message in large:  # before the fit, which is itself slow at this dimension
+        warn_user(message, FisherwalkWarning)
     bar = progress_bar(2, progress, "start: Laplace fit (compiling, searching)", unit="phase")
     if fit is None:
         key_restarts = jax.random.fold_in(key, 1) if restarts or scouts else None
@@ -326,6 +295,7 @@ def start(
                                     fit.modes_fisher, fit.names))
     for message in notes:  # other modes, a better restart: say it out loud
         warnings.warn(message, FisherwalkWarning, stacklevel=2)
+    notes = large + notes
     if kind != "fisher":
         notes.append(
             f"Proposal shape '{kind}': the spectrum of A = Sᵀ H S spans "

@@ -11,14 +11,18 @@ Loaded with :func:`load_tuning`, a record is a :class:`SavedTuning` (the
 then computes the spectrum of A = Sᵀ H_new S against the new Fisher information and
 chooses the scale for that spectrum (:func:`fisherwalk.optimal_scale`).
 
-JSON is plain: numbers are lists of floats (Python writes the shortest repr that reads
-back to the same double, so float64 arrays survive bit for bit), and NaN or infinity is
-refused, both when writing and when reading.
+JSON follows the package's one convention (:mod:`fisherwalk.base.jsonio`): numbers are
+nested lists of floats (the shortest repr, which reads back to the same double, so
+float64 arrays survive bit for bit). The tuning and the fit must be finite, both when
+writing and when reading; only the PSIS k̂ of the Laplace check may be ``"Infinity"``
+(too few finite draws). A record is read with its size, depth and dimension bounded
+before anything is allocated, and validated as :func:`fisherwalk.start` validates its
+inputs: a symmetric positive-definite Fisher information and proposal covariance,
+scale > 0, target acceptance in (0, 1).
 """
 
 from __future__ import annotations
 
-import json
 import math
 import os
 from collections.abc import Callable
@@ -30,6 +34,8 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base import pytrees
+from ..base.checks import positive_number, probability, spd_matrix, whole_number
+from ..base.jsonio import decode_array, decode_number, read_json, to_plain, write_json_atomic
 from ..base.pytrees import name_difference
 from ..errors import InputError, explain
 from ..fit.laplace import LaplaceFit
@@ -47,6 +53,8 @@ __all__ = [
 
 FORMAT = "fisherwalk-tuning"
 FORMAT_VERSION = 1
+MAX_DIM = 5000  # parameters in a record: five (d, d) matrices of JSON text, ~2.5 GB at 5000
+MAX_RECORD_BYTES = 2**31  # bytes of a record file, checked before it is read
 
 
 class SavedTuning(NamedTuple):
@@ -125,19 +133,26 @@ def _choice_record(choice: Any) -> dict | None:
 
 
 def _check_record(check: Any) -> dict | None:
-    """The PSIS check of the Laplace approximation (walker.LaplaceCheck) as numbers;
-    an infinite k̂ (too few finite draws) is written as null."""
+    """The PSIS check of the Laplace approximation (walker.LaplaceCheck) as numbers; an
+    infinite k̂ (too few finite draws) is written "Infinity" (:mod:`fisherwalk.base.jsonio`)."""
     if not isinstance(check, LaplaceCheck):
         return None
-    return {name: (float(v) if math.isfinite(v) else None) if isinstance(v, float) else int(v)
-            for name, v in check._asdict().items()}
+    return to_plain(check._asdict())
 
 
 def _laplace_check(values: Any) -> LaplaceCheck | None:
     if not isinstance(values, dict) or set(values) != set(LaplaceCheck._fields):
         return None
-    khat = values["khat"]
-    return LaplaceCheck(**{**values, "khat": math.inf if khat is None else float(khat)})
+    try:
+        khat = math.inf if values["khat"] is None else decode_number(
+            values["khat"], "check.khat", "tuning record")
+        threshold = decode_number(values["threshold"], "check.threshold", "tuning record")
+        draws = whole_number(values["draws"], "check.draws", "tuning record", minimum=0)
+        outside = whole_number(values["outside_support"], "check.outside_support",
+                               "tuning record", minimum=0)
+    except InputError:
+        return None
+    return LaplaceCheck(khat, threshold, draws, outside)
 
 
 def tuning_record(walker: Walker) -> dict:
@@ -206,26 +221,10 @@ def save_tuning(walker: Walker, path: str | os.PathLike) -> Path:
     Returns the path written. NaN and infinity are refused (:class:`InputError`).
     """
     record = tuning_record(walker)
-    path = Path(path)
-    text = json.dumps(record, allow_nan=False, indent=1)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        with open(tmp, "w", encoding="utf-8") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+    return write_json_atomic(path, record, indent=1, where=f"save_tuning({os.fspath(path)!r})")
 
 
 # ----------------------------------------------------------------------------- reading
-
-
-def _refuse_constant(name: str):
-    raise ValueError(f"the JSON holds {name}, which a record does not allow")
 
 
 def _bad(what: str, where: str) -> InputError:
@@ -247,14 +246,7 @@ def read_record(source: str | os.PathLike | dict) -> dict:
         record = source
     else:
         where = f"file {os.fspath(source)}"
-        try:
-            with open(source, encoding="utf-8") as handle:
-                record = json.load(handle, parse_constant=_refuse_constant)
-        except OSError as err:
-            raise InputError(explain(f"The record cannot be read ({err.strerror}).", where,
-                                     "check the path.")) from err
-        except ValueError as err:
-            raise _bad(f"The record is not valid JSON ({err}).", where) from err
+        record = read_json(source, max_bytes=MAX_RECORD_BYTES, where=where)
     if not isinstance(record, dict) or record.get("format") != FORMAT:
         raise _bad(f"This is not a fisherwalk tuning record (format {FORMAT!r} expected).",
                    where)
@@ -262,55 +254,63 @@ def read_record(source: str | os.PathLike | dict) -> dict:
         raise _bad(f"Record format version {record.get('format_version')!r}; this fisherwalk "
                    f"reads version {FORMAT_VERSION}.", where)
     dim, names = record.get("dim"), record.get("names")
-    if isinstance(dim, bool) or not isinstance(dim, int) or dim < 1:
-        raise _bad(f"Field 'dim' is {dim!r}, not a positive integer.", where)
+    dim = whole_number(dim, "dim", f"{where}, field 'dim'", maximum=MAX_DIM,
+                       todo="use a record written by fisherwalk.save_tuning, unedited.")
     if (not isinstance(names, list) or len(names) != dim
             or not all(isinstance(n, str) for n in names)):
         raise _bad(f"Field 'names' must list {dim} parameter names.", where)
-    try:
-        floating = np.dtype(record.get("dtype")).kind == "f"
-    except TypeError:
-        floating = False
-    if not floating:
-        raise _bad(f"Field 'dtype' is {record.get('dtype')!r}, not a floating dtype.", where)
+    if record.get("dtype") not in ("float32", "float64"):
+        raise _bad(f"Field 'dtype' is {record.get('dtype')!r:.40}, not float32 or float64.",
+                   where)
     tuning, fit = record.get("tuning"), record.get("laplace")
     if not isinstance(tuning, dict) or not isinstance(fit, dict):
         raise _bad("Fields 'tuning' and 'laplace' must be objects.", where)
-    matrices = [("tuning", "shape"), ("tuning", "factor"), ("tuning", "whitening"),
-                ("laplace", "fisher"), ("laplace", "cholesky")]
-    for part, field in matrices:
-        _number_array(record[part].get(field), (dim, dim), f"{part}.{field}", where)
-    _number_array(tuning.get("spectrum"), (dim,), "tuning.spectrum", where)
-    _number_array(fit.get("mode"), (dim,), "laplace.mode", where)
-    for part, field in [("tuning", "scale"), ("tuning", "target_acceptance"),
-                        ("tuning", "predicted_jump"), ("laplace", "logdensity"),
-                        ("laplace", "gradient_norm")]:
-        _number_array(record[part].get(field), (), f"{part}.{field}", where)
+    arrays = {}
+    for part, field, shape in [("tuning", "shape", (dim, dim)), ("tuning", "factor", (dim, dim)),
+                               ("tuning", "whitening", (dim, dim)),
+                               ("laplace", "fisher", (dim, dim)),
+                               ("laplace", "cholesky", (dim, dim)),
+                               ("tuning", "spectrum", (dim,)), ("laplace", "mode", (dim,)),
+                               ("tuning", "scale", ()), ("tuning", "target_acceptance", ()),
+                               ("tuning", "predicted_jump", ()), ("laplace", "logdensity", ()),
+                               ("laplace", "gradient_norm", ())]:
+        arrays[field] = decode_array(record[part].get(field), f"{part}.{field}", where,
+                                     max_size=dim * dim, shape=shape, finite=True)
     if not isinstance(tuning.get("shape_kind"), str):
         raise _bad("Field 'tuning.shape_kind' must be a string.", where)
-    shape = np.asarray(tuning["shape"])
-    expected = tuning["scale"] / math.sqrt(dim) * shape
+    _check_values(arrays, tuple(names), where)
+    expected = float(arrays["scale"]) / math.sqrt(dim) * arrays["shape"]
     rtol = 1e3 * float(np.finfo(np.dtype(record["dtype"])).eps)  # rounding of the dtype
-    if not np.allclose(tuning["factor"], expected, rtol=rtol, atol=1e-300):
+    if not np.allclose(arrays["factor"], expected, rtol=rtol, atol=1e-300):
         raise _bad("Fields 'tuning.factor', 'tuning.scale' and 'tuning.shape' disagree: the "
                    "factor must be (scale / sqrt(dim)) * shape.", where)
     return record
 
 
-def _number_array(value: Any, shape: tuple, field: str, where: str) -> np.ndarray:
-    def numbers(x) -> bool:
-        if isinstance(x, list):
-            return all(numbers(v) for v in x)
-        return isinstance(x, int | float) and not isinstance(x, bool)
+_TODO = "use a record written by fisherwalk.save_tuning, unedited."
 
-    if value is None or not numbers(value):
-        raise _bad(f"Field '{field}' must hold numbers (shape {shape}).", where)
-    array = np.asarray(value, dtype=np.float64)
-    if array.shape != shape:
-        raise _bad(f"Field '{field}' has shape {array.shape}; expected {shape}.", where)
-    if not np.isfinite(array).all():
-        raise _bad(f"Field '{field}' holds NaN or infinity.", where)
-    return array
+
+def _check_values(arrays: dict, names: tuple[str, ...], where: str) -> None:
+    """The checks start() makes on its inputs, applied to a record's numbers."""
+    positive_number(float(arrays["scale"]), "tuning.scale", where, todo=_TODO)
+    probability(float(arrays["target_acceptance"]), "tuning.target_acceptance", where,
+                todo=_TODO)
+    positive_number(float(arrays["gradient_norm"]), "laplace.gradient_norm", where,
+                    allow_zero=True, todo=_TODO)
+    fisher = spd_matrix(arrays["fisher"], names, f"{where}, field 'laplace.fisher'",
+                        what="Fisher information", todo=_TODO)
+    largest = float(np.max(np.abs(fisher)))
+    for field in ("laplace.cholesky", "tuning.whitening"):
+        factor = arrays[field.split(".")[1]]
+        if np.any(np.triu(factor, 1)) or not np.all(np.diag(factor) > 0):
+            raise _bad(f"Field '{field}' is not lower triangular with a positive diagonal.",
+                       where)
+    if not np.allclose(arrays["cholesky"] @ arrays["cholesky"].T, fisher, rtol=0,
+                       atol=1e-6 * largest):
+        raise _bad("Field 'laplace.cholesky' is not the Cholesky factor of 'laplace.fisher'.",
+                   where)
+    spd_matrix(arrays["shape"] @ arrays["shape"].T, names, f"{where}, field 'tuning.shape'",
+               what="proposal covariance (shape times its transpose)", todo=_TODO)
 
 
 def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:

@@ -1,0 +1,114 @@
+"""The command line fails before the work, not after it (issue 13, items 1, 2 and 4).
+
+Each case of the trial runs ``main`` in this process: the refusals must come before the
+Laplace fit (its narration line "[1/4] Laplace fit" never appears), with exit code 2 and
+a message instead of a traceback.
+"""
+
+import errno
+import tempfile
+import textwrap
+
+import numpy as np
+import pytest
+
+from fisherwalk.cli import command
+from fisherwalk.run import sampling
+
+MODEL = textwrap.dedent("""
+    import jax.numpy as jnp
+    import numpy as np
+
+    def logdensity(p):
+        return -0.5 * jnp.sum((p["x"] - 1.0) ** 2)
+
+    initial_position = {"x": np.zeros(2, np.float32)}
+""")
+
+
+@pytest.fixture
+def model(tmp_path):
+    path = tmp_path / "model.py"
+    path.write_text(MODEL)
+    return path
+
+
+def _main(capsys, *argv):
+    code = command.main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_out_is_a_file(model, tmp_path, capsys):
+    target = tmp_path / "afile"
+    target.write_text("keep")
+    code, out, err = _main(capsys, "run", model, "--out", target)
+    assert code == 2 and "is a file, not a folder" in err and "Traceback" not in err
+    assert "Laplace fit" not in out and target.read_text() == "keep"
+
+
+def test_out_cannot_be_created_under_a_file(model, tmp_path, capsys):
+    # As root, chmod does not stop writes; a path under a regular file cannot be created
+    # by anyone.
+    (tmp_path / "afile").write_text("")
+    code, out, err = _main(capsys, "run", model, "--out", tmp_path / "afile" / "results")
+    assert code == 2 and "cannot be created" in err and "Laplace fit" not in out
+
+
+def test_read_only_out_refused_before_the_fit(model, tmp_path, capsys, monkeypatch):
+    # A read-only folder, simulated: creating a file in it fails as it would without
+    # write permission.
+    def refuse(*args, **kwargs):
+        raise PermissionError(errno.EACCES, "Permission denied")
+
+    monkeypatch.setattr(tempfile, "mkstemp", refuse)
+    code, out, err = _main(capsys, "run", model, "--out", tmp_path / "results")
+    assert code == 2 and "not writable (Permission denied)" in err
+    assert "Laplace fit" not in out
+
+
+@pytest.mark.parametrize("option, value, message", [
+    ("--seed", "1e23", "--seed '1e23' is not a whole number"),
+    ("--seed", str(2**32), "out of range"),
+    ("--draws", "1e6", "--draws '1e6' is not a whole number"),
+    ("--chains", "0", "out of range"),
+    ("--draws", str(10**13), "need about"),
+])
+def test_numeric_options_refused_before_the_fit(model, tmp_path, capsys, option, value,
+                                                message):
+    code, out, err = _main(capsys, "run", model, "--out", tmp_path / "o", option, value)
+    assert code == 2 and message in err and "Traceback" not in err
+    assert "Laplace fit" not in out
+
+
+def test_operating_system_error_is_one_line(model, tmp_path, capsys, monkeypatch):
+    def refuse(path):
+        raise PermissionError(errno.EACCES, "Permission denied", str(path))
+
+    monkeypatch.setattr(command, "load_model", refuse)
+    code, _, err = _main(capsys, "run", model, "--out", tmp_path / "o")
+    assert code == 2 and err.strip() == f"fisherwalk run: Permission denied: {model}"
+
+
+def test_float32_model_and_ctrl_c_during_sampling(model, tmp_path, capsys, monkeypatch):
+    # Trial: a model file whose initial_position is float32 failed after the fit (carry
+    # dtypes), and Ctrl-C during sampling exited 0. Here the float32 model runs, and a
+    # Ctrl-C after three chunks of sampling keeps 300 draws, says so and exits 130.
+    real = sampling.run_chunks
+
+    def interrupted(*args, **kwargs):
+        for count, item in enumerate(real(*args, **kwargs)):
+            if count == 3:
+                raise KeyboardInterrupt
+            yield item
+
+    monkeypatch.setattr(sampling, "run_chunks", interrupted)
+    out_dir = tmp_path / "o"
+    with pytest.warns(Warning):  # the Float32Warning and walk()'s interruption warning
+        code, out, err = _main(capsys, "run", model, "--out", out_dir, "--chains", "2",
+                               "--draws", "1000", "--warmup", "100", "--quiet")
+    assert code == 130, err
+    assert "interrupted (Ctrl-C) after 300 of 1000 draws" in err
+    with np.load(out_dir / "draws.npz") as saved:
+        assert saved["draws"].shape == (2, 300, 2) and saved["draws"].dtype == np.float64
+    assert (out_dir / "record.json").exists()
