@@ -72,7 +72,7 @@ from .engine import ChainState
 from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
-           "decode_state", "damaged", "MAX_CHAINS"]
+           "decode_state", "damaged", "whitened_state", "MAX_CHAINS"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -84,7 +84,8 @@ _MAX_STATE_BYTES = 2**31
 _SEGMENT = "segment-{:06d}.npz"
 _SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
 _TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
-_ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults")
+_ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
+           "gradients")
 
 
 # ----------------------------------------------------------------------------- files
@@ -179,7 +180,7 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
         "tuning": {"scale": float(tuning.scale),
                    "target_acceptance": float(tuning.target_acceptance),
                    "shape_kind": str(tuning.shape_kind)},
-        "digests": {"factor": _digest(tuning.factor),
+        "digests": {"factor": _digest(np.asarray(tuning.shape) * float(tuning.scale)),
                     "mode": _digest(walker.report.laplace.mode_flat),
                     "states": _digest(positions) + _digest(logdensity),
                     "record": _record_digest(tuning_record(walker))},
@@ -360,7 +361,9 @@ class Store:
             "identity": self.identity,
             "record": tuning_record(walker),
             "start": {"position": encode_array(walker.flat_positions()),
-                      "logdensity": encode_array(walker.state.logdensity)},
+                      "logdensity": encode_array(walker.state.logdensity),
+                      "whitened": {f: encode_array(getattr(walker.state, f))
+                                   for f in walker.state._fields} if walker.gradient else None},
         }
         write_json_atomic(run_file, run, indent=None, error=CheckpointError,
                           where=self._where())
@@ -420,9 +423,8 @@ class Store:
         first, stop = int(arrays["start"]), int(arrays["stop"])
         if first != start or not start < stop <= self.draws:
             raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
-        for name, target in zip(_ARRAYS, (collector.flat, collector.logdensity, collector.accepted,
-                                          collector.acceptance_rate, collector.faults),
-                                strict=True):
+        for name in _ARRAYS:
+            target = getattr(collector, name)
             value = arrays[name]
             expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
             if value.shape != expected or value.dtype != target.dtype:
@@ -456,8 +458,14 @@ class Store:
         self._tidy()
         if not done:
             return state
+        if hasattr(state, "logdensity_grad"):  # a gradient sampler: its whitened state
+            return self._whitened(saved, state, chains, dim)
         return ChainState(jnp.asarray(collector.flat[:, done - 1]),
                           jnp.asarray(collector.logdensity[:, done - 1]))
+
+    def _whitened(self, saved: dict, state, chains: int, dim: int):
+        return whitened_state(saved.get("whitened"), state, chains, dim, str(self._dtype),
+                              self.path / STATE_FILE)
 
     def _tidy(self) -> None:
         """Remove temporary files and segments no state file counts (a process died
@@ -502,5 +510,22 @@ class Store:
             "digests": digests,
             "position": encode_array(collector.flat[:, done - 1]),
             "logdensity": encode_array(collector.logdensity[:, done - 1]),
+            # a gradient sampler's chains continue from their whitened state (position,
+            # log density, gradient), saved exactly so that a resume is bit-identical
+            "whitened": None if state is None or not hasattr(state, "logdensity_grad")
+            else {f: encode_array(getattr(state, f)) for f in state._fields},
         }, indent=None, error=CheckpointError, where=self._where())
         self._done, self._segments, self._digests, self._last = done, index + 1, digests, now
+
+
+def whitened_state(content, state, chains: int, dim: int, dtype: str, state_file: Path):
+    """A gradient sampler's whitened chain state (of ``state``'s type) from a checkpoint
+    file's exact record of it."""
+    if not isinstance(content, dict) or set(content) != set(state._fields):
+        raise damaged(state_file, "it lacks the gradient sampler's whitened state")
+    shapes = {"position": (chains, dim), "logdensity": (chains,),
+              "logdensity_grad": (chains, dim)}
+    parts = [decode_array(content[f], f"whitened.{f}", f"checkpoint {state_file.parent}",
+                          max_size=chains * dim, shape=shapes[f], dtype=dtype,
+                          finite=True, error=CheckpointError) for f in state._fields]
+    return type(state)(*parts)

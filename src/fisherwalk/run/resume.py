@@ -24,6 +24,7 @@ from .checkpoint import (
     damaged,
     decode_state,
     read_checkpoint_json,
+    whitened_state,
 )
 from .memory import check_walk_memory
 from .sampling import walk
@@ -114,6 +115,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
             where, "pass position=<a position of the model> if the message asks for it; "
                    "otherwise the file is damaged: delete the checkpoint to start afresh.",
         )) from err
+    if walker.gradient:  # the chains' exact whitened start (a refit would round it)
+        walker = walker._replace(state=whitened_state(
+            start.get("whitened"), walker.state, chains, dim, str(dtype), run_file))
     _check_logdensity(directory, walker, positions0, logdensity0, where)
     return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
                 checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,

@@ -39,7 +39,9 @@ from ..base.jsonio import decode_array, decode_number, read_json, to_plain, writ
 from ..base.pytrees import name_difference
 from ..errors import InputError, explain
 from ..fit.laplace import LaplaceFit
-from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble
+from ..theory.gradient import GRADIENT_SAMPLERS
+from .gradient_run import gradient_model, gradient_state
+from .walker import GradientTuning, LaplaceCheck, StartReport, Tuning, Walker, assemble
 
 __all__ = [
     "SavedTuning",
@@ -155,6 +157,12 @@ def _laplace_check(values: Any) -> LaplaceCheck | None:
     return LaplaceCheck(khat, threshold, draws, outside)
 
 
+def _factor(tuning) -> np.ndarray:
+    """(scale/√d)·S: the random walk's proposal factor; for a gradient sampler, whose
+    ``scale`` is its step size, the same formula keeps the record's one consistency check."""
+    return (float(tuning.scale) / math.sqrt(tuning.dim)) * np.asarray(tuning.shape)
+
+
 def tuning_record(walker: Walker) -> dict:
     """The walker's tuning and Laplace fit as a plain, JSON-ready dict.
 
@@ -188,13 +196,15 @@ def tuning_record(walker: Walker) -> dict:
         "package_version": _package_version(),
         "dim": int(tuning.dim),
         "names": list(walker.names),
-        "dtype": str(np.asarray(tuning.factor).dtype),
+        "dtype": str(np.asarray(tuning.shape).dtype),
         "structure": _structure(fit.mode),
         "tuning": {
+            "sampler": str(getattr(tuning, "sampler", "rwm")),
             "shape_kind": str(tuning.shape_kind),
-            "criterion": str(tuning.criterion),
+            "criterion": str(getattr(tuning, "criterion", "slowest")),
             "shape": _plain_array(tuning.shape, "shape"),
-            "factor": _plain_array(tuning.factor, "factor"),
+            # the random walk's proposal factor (l/√d)·S; a gradient sampler's step size
+            "factor": _plain_array(_factor(tuning), "factor"),
             "scale": _plain_number(tuning.scale, "scale"),
             "target_acceptance": _plain_number(tuning.target_acceptance, "target_acceptance"),
             "spectrum": _plain_array(tuning.spectrum, "spectrum"),
@@ -278,6 +288,9 @@ def read_record(source: str | os.PathLike | dict) -> dict:
                                      max_size=dim * dim, shape=shape, finite=True)
     if not isinstance(tuning.get("shape_kind"), str):
         raise _bad("Field 'tuning.shape_kind' must be a string.", where)
+    if tuning.get("sampler", "rwm") not in ("rwm", *GRADIENT_SAMPLERS):
+        raise _bad(f"Field 'tuning.sampler' is {tuning.get('sampler')!r:.40}, not a known "
+                   "sampler.", where)
     _check_values(arrays, tuple(names), where)
     expected = float(arrays["scale"]) / math.sqrt(dim) * arrays["shape"]
     rtol = 1e3 * float(np.finfo(np.dtype(record["dtype"])).eps)  # rounding of the dtype
@@ -336,8 +349,12 @@ def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
     def matrix(values):
         return np.asarray(values, dtype=dtype)
 
-    tuning = Tuning(matrix(t["shape"]), float(t["scale"]), matrix(t["whitening"]),
-                    str(t["shape_kind"]), str(t.get("criterion", "slowest")))
+    if t.get("sampler", "rwm") == "rwm":
+        tuning = Tuning(matrix(t["shape"]), float(t["scale"]), matrix(t["whitening"]),
+                        str(t["shape_kind"]), str(t.get("criterion", "slowest")))
+    else:
+        tuning = GradientTuning(str(t["sampler"]), float(t["scale"]), matrix(t["shape"]),
+                                matrix(t["whitening"]), str(t["shape_kind"]))
     return SavedTuning(tuning, tuple(record["names"]), record)
 
 
@@ -486,6 +503,9 @@ def walker_from_record(
     if logdensity is not None:
         logdensity = np.asarray(logdensity).astype(dtype, copy=False)
     walker = assemble(logdensity_fn, report, tuning, flat, logdensity)
+    if walker.gradient:
+        model = gradient_model(walker.model, tuning, mode_flat, flat.shape[0])
+        walker = walker._replace(model=model, state=gradient_state(model, flat, names))
     values = np.asarray(walker.state.logdensity)
     if values.shape != (flat.shape[0],) or not np.isfinite(values).all():
         raise InputError(explain(
