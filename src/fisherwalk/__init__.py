@@ -18,6 +18,7 @@ from .errors import (
 )
 from .fit.laplace import LaplaceFit, laplace
 from .results.trace import Trace
+from .run.blackjax_handoff import handoff
 from .run.resume import resume
 from .run.sampling import walk
 from .run.start import start
@@ -47,6 +48,7 @@ __all__ = [
     "resume",
     "save_tuning",
     "load_tuning",
+    "handoff",
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",

@@ -121,7 +121,8 @@ def _khat_words(khat: float, limit: float) -> str:
     return f"PSIS k̂ {khat:.2f} (threshold {limit:.2f})"
 
 
-def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = False):
+def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = False,
+                      squares: bool = False):
     """Whitened warm-up covariance C = Lᵀ Σ̂ L against the identity.
 
     Returns Σ̂, the spectrum of C, the band of eigenvalues Monte Carlo error allows
@@ -142,8 +143,11 @@ def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = F
     white = whitening.T @ cov @ whitening
     spectrum = np.linalg.eigvalsh(white)
     whitened = (kept - pooled.mean(axis=0)) @ whitening
-    n_eff = float(np.median(np.atleast_1d(ess_mean(whitened))))
-    n_eff = max(n_eff, 2.0)
+    # ``squares``: the ESS of the squared whitened coordinates (a gradient sampler's draws
+    # can be antithetic in the coordinates, ESS above the draws, while their squares, which
+    # carry the covariance, mix more slowly); never more than the draws.
+    n_eff = float(np.median(np.atleast_1d(ess_mean(whitened**2 if squares else whitened))))
+    n_eff = min(max(n_eff, 2.0), float(pooled.shape[0]))
     ratio = math.sqrt(d / n_eff)
     low = (1.0 - ratio) ** 2 if ratio < 1 else 0.0
     high = (1.0 + ratio) ** 2
@@ -189,7 +193,7 @@ def _refine_gradient(walker: Walker, key, steps: int, reshape: bool | None) -> W
                           half, names)
     within = len(getattr(fit, "modes_flat", ())) > 1
     cov, spectrum, bounds, n_eff, p_value = _covariance_check(
-        warm1.position, np.asarray(fit.cholesky), within=within)
+        warm1.position, np.asarray(fit.cholesky), within=within, squares=True)
     reasons = []
     if check.khat > check.threshold:
         reasons.append(f"PSIS k̂ = {check.khat:.2f} > {check.threshold:.2f}: the Laplace "

@@ -1,0 +1,99 @@
+"""The one-import swap for BlackJAX users: a warmed-up start and parameters in BlackJAX's form.
+
+``states, parameters = fisherwalk.handoff(blackjax.nuts, logdensity_fn, position, key)``
+replaces BlackJAX's window adaptation: fisherwalk fits the Laplace approximation, tunes
+the sampler from the Gaussian limit for this d and warms it up for at most 200 steps
+(:func:`fisherwalk.start`, :func:`fisherwalk.refine`). ``blackjax.nuts(logdensity_fn,
+**parameters)`` then runs in the user's own loop, with the Fisher metric as the dense
+``inverse_mass_matrix`` (HMC and NUTS follow the same paths on the original coordinates
+as fisherwalk's whitened loop; :mod:`fisherwalk.run.handoff`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import blackjax
+import jax
+import numpy as np
+
+from ..base.keys import as_key
+from ..errors import InputError, explain
+from ..theory.gradient import hmc_steps_law
+from .start import start
+from .warmup import refine
+
+__all__ = ["handoff"]
+
+
+def _kind(algorithm) -> str:
+    known = {"nuts": blackjax.nuts, "hmc": blackjax.hmc, "mala": blackjax.mala,
+             "rwm": blackjax.additive_step_random_walk}
+    for name, api in known.items():
+        if algorithm is api:
+            return name
+    if algorithm is blackjax.additive_step_random_walk.normal_random_walk:
+        return "rwm"
+    raise InputError(explain(
+        f"algorithm={algorithm!r:.60} is not one of BlackJAX's samplers this hand-off knows.",
+        "handoff(algorithm=...)",
+        "pass blackjax.nuts, blackjax.hmc or blackjax.additive_step_random_walk."))
+
+
+def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: int = 4,
+            **start_options) -> tuple[Any, dict]:
+    """Warmed-up BlackJAX states and the sampler's parameters in BlackJAX's own form.
+
+    Parameters
+    ----------
+    algorithm
+        ``blackjax.nuts``, ``blackjax.hmc`` or ``blackjax.additive_step_random_walk``
+        (the random walk; ``parameters`` then holds ``sigma``, the square-root factor,
+        for ``additive_step_random_walk.normal_random_walk``). ``blackjax.mala`` takes no
+        metric, so it is refused: use ``fisherwalk.start(..., sampler="mala")``, which runs
+        it on the whitened posterior.
+    logdensity_fn, position, rng_key, chains
+        As for :func:`fisherwalk.start`.
+    **start_options
+        Passed to :func:`fisherwalk.start` (e.g. ``fisher=``, ``restarts=``).
+
+    Returns
+    -------
+    states
+        One BlackJAX state per chain, batched along the first axis, at the end of the
+        warm-up (``jax.vmap(kernel.step)`` takes them as they are).
+    parameters
+        ``{"step_size", "inverse_mass_matrix"}`` (NUTS; HMC adds
+        ``"num_integration_steps"``, the rounded mean of the jittered count), or
+        ``{"sigma"}`` for the random walk.
+
+    Examples
+    --------
+    >>> states, parameters = fisherwalk.handoff(blackjax.nuts, logdensity, position, key)
+    >>> kernel = blackjax.nuts(logdensity, **parameters)  # then your own loop
+    """
+    kind = _kind(algorithm)
+    if kind == "mala":
+        raise InputError(explain(
+            "BlackJAX's MALA takes no metric, so the Fisher metric cannot be handed to it.",
+            "handoff(algorithm=blackjax.mala)",
+            'use fisherwalk.start(..., sampler="mala") (it runs MALA on the whitened '
+            "posterior), or hand off blackjax.nuts or blackjax.hmc instead."))
+    key = as_key(rng_key, where="handoff(rng_key=...)")
+    key_start, key_warm = jax.random.split(key)
+    walker = start(logdensity_fn, position, key_start, chains, sampler=kind, **start_options)
+    walker = refine(walker, key_warm, steps=200)
+    tuning = walker.tuning
+    if kind == "rwm":
+        return walker.states, {"sigma": np.asarray(tuning.factor)}
+    parameters = {"step_size": float(tuning.step_size),
+                  "inverse_mass_matrix": np.asarray(tuning.inverse_mass_matrix)}
+    if kind == "hmc":
+        values, probabilities = _steps_law(tuning.step_size)
+        parameters["num_integration_steps"] = int(round(float(values @ probabilities)))
+    return walker.states, parameters
+
+
+def _steps_law(step_size: float):
+    return hmc_steps_law(step_size)
