@@ -16,6 +16,7 @@ import socket
 import sys
 from pathlib import Path
 
+import blackjax
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -168,7 +169,21 @@ def _out_is_a_file(tmp):
 
 
 # (where, what is refused, call(tmp_path), exception, words the message must contain)
+def _kinked(x):  # finite everywhere; the gradient in x[1] is NaN wherever x[1] >= 1
+    return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[1], 0.0))
+
+
 CASES = [
+    ("start", "an unknown sampler",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, sampler="slice"),
+     fisherwalk.InputError, "sampler"),
+    ("start / refine", "a gradient that is not finite where a gradient sampler goes",
+     lambda t: fisherwalk.refine(fisherwalk.start(_kinked, jnp.zeros(2), KEY, sampler="nuts",
+                                                  progress=False), KEY, progress=False),
+     fisherwalk.ModelError, 'sampler="rwm"'),
+    ("handoff", "BlackJAX's MALA, which takes no metric",
+     lambda t: fisherwalk.handoff(blackjax.mala, _normal, jnp.zeros(2), KEY),
+     fisherwalk.InputError, "metric"),
     ("start / laplace", "a position leaf of integer dtype",
      lambda t: fisherwalk.start(_normal, jnp.zeros(2, dtype=jnp.int32), KEY),
      fisherwalk.InputError, "dtype"),

@@ -75,7 +75,7 @@ class _Say:
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
              warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
-             checkpoint=None, labels=None) -> RunResult:
+             checkpoint=None, labels=None, sampler: str = "rwm") -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
 
     ``draws=None`` plans the run length; ``labels`` (one per scalar parameter, e.g. a
@@ -94,7 +94,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
     say.busy("Laplace fit: mode search and Fisher information (includes compilation)")
     t = time.perf_counter()
     walker = fisherwalk.start(logdensity, position, k_start, chains, fisher=fisher,
-                              restarts=restarts, progress=progress)
+                              restarts=restarts, progress=progress, sampler=sampler)
     seconds["start"] = time.perf_counter() - t
 
     _say_fit(say, walker, seconds["start"])
@@ -141,8 +141,12 @@ def _say_fit(say: _Say, walker, seconds: float) -> None:
         say(f"      Laplace check: PSIS k̂ {check.khat:.2f} (limit {check.threshold:.2f}): "
             f"the Gaussian picture {verdict}")
     say(f"[2/4] tuning from the theory, d = {tuning.dim}")
-    say(f"      scale l = {tuning.scale:.3f}, step (l/√d)·S z with l/√d = "
-        f"{tuning.scale / math.sqrt(tuning.dim):.3f}, S Sᵀ = H⁻¹ ({tuning.shape_kind})")
+    if walker.gradient:
+        say(f"      sampler {tuning.sampler} (BlackJAX) on the posterior whitened by "
+            f"S Sᵀ = H⁻¹ ({tuning.shape_kind}); step size {tuning.step_size:.4g}")
+    else:
+        say(f"      scale l = {tuning.scale:.3f}, step (l/√d)·S z with l/√d = "
+            f"{tuning.scale / math.sqrt(tuning.dim):.3f}, S Sᵀ = H⁻¹ ({tuning.shape_kind})")
     say(f"      target acceptance {tuning.target_acceptance:.3f}; predicted jump "
         f"{tuning.predicted_jump:.3f} per step (squared, in sd of N(mode, H⁻¹))")
     for note in walker.report.notes:
@@ -245,6 +249,7 @@ def _options(args) -> dict:
     return {
         "seed": args.seed, "chains": args.chains, "draws": args.draws,
         "warmup_steps": args.warmup, "thin": args.thin, "shape": "fisher",
+        "sampler": getattr(args, "sampler", "rwm"),
         "criterion": "slowest",
         "laplace": {"max_iterations": defaults.get("max_iterations"),
                     "gradient_tolerance": defaults.get("gradient_tolerance") or math.sqrt(eps),
@@ -275,7 +280,8 @@ def _demo(args, argv) -> int:
         f"seed {args.seed}\n")
     result = workflow(scene.logdensity, scene.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup, say=say,
-                      thin=args.thin, restarts=args.restarts, labels=scene.names)
+                      thin=args.thin, restarts=args.restarts, labels=scene.names,
+                      sampler=args.sampler)
     print()
     print(str(result.summary))
     truth = _truth_table(scene, result.summary)
@@ -373,7 +379,8 @@ def _run(args, argv) -> int:
                       chains=args.chains, draws=args.draws, warmup=args.warmup,
                       fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
                       pointwise=model.pointwise if args.pointwise else None,
-                      derived=model.derived, checkpoint=checkpoint, labels=model.labels)
+                      derived=model.derived, checkpoint=checkpoint, labels=model.labels,
+                      sampler=args.sampler)
     print()
     print(str(result.summary))
     extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
@@ -466,6 +473,11 @@ def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
                      help="no progress bars and no step-by-step account; print the tables")
     sub.add_argument("--thin", default=1, metavar="N",
                      help="steps per kept draw (default 1: keep every step)")
+    sub.add_argument("--sampler", default="rwm",
+                     choices=("rwm", "mala", "hmc", "nuts", "auto"),
+                     help="the sampler: random-walk Metropolis (default), BlackJAX's MALA, "
+                          "HMC or NUTS on the whitened posterior, or auto (the one predicted "
+                          "to reach ESS 400 first)")
     sub.add_argument("--restarts", default=0, metavar="N",
                      help="extra mode searches from dispersed points before the Laplace fit "
                           "(default 0)")
