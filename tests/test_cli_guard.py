@@ -82,7 +82,7 @@ def test_numeric_options_refused_before_the_fit(model, tmp_path, capsys, option,
 
 
 def test_operating_system_error_is_one_line(model, tmp_path, capsys, monkeypatch):
-    def refuse(path):
+    def refuse(path, **_):
         raise PermissionError(errno.EACCES, "Permission denied", str(path))
 
     monkeypatch.setattr(command, "load_model", refuse)

@@ -88,6 +88,7 @@ import numpy as np
 from numpy.polynomial.legendre import leggauss
 from scipy import optimize, special, stats
 
+from ..base.checks import whole_number
 from ..errors import InputError, explain
 from .randomwalk import optimal_scale
 
@@ -134,17 +135,8 @@ class GradientChoice(NamedTuple):
 
 
 def _check_dim(dim: Any) -> int:
-    where = "dim (the number of scalar parameters)"
-    todo = "pass the number of scalar parameters, an integer >= 1."
-    if isinstance(dim, bool | np.bool_):
-        raise InputError(explain(f"dim={dim!r} is a boolean, not a dimension.", where, todo))
-    try:
-        d = operator.index(dim)
-    except TypeError:
-        raise InputError(explain(f"dim={dim!r} is not an integer.", where, todo)) from None
-    if d < 1:
-        raise InputError(explain(f"dim={d} is not a positive dimension.", where, todo))
-    return int(d)
+    return whole_number(dim, "dim", "dim (the number of scalar parameters)",
+                        todo="pass the number of scalar parameters, an integer >= 1.")
 
 
 def _check_sampler(sampler: Any, known: tuple[str, ...], where: str) -> str:

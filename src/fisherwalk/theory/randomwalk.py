@@ -50,7 +50,6 @@ for various Metropolis–Hastings algorithms", Statist. Sci. 16(4)).
 
 from __future__ import annotations
 
-import operator
 from functools import lru_cache
 from typing import Any, NamedTuple
 
@@ -58,6 +57,7 @@ import numpy as np
 from numpy.polynomial.legendre import leggauss
 from scipy import optimize, special
 
+from ..base.checks import whole_number
 from ..errors import FisherwalkError, InputError, explain
 
 __all__ = [
@@ -102,20 +102,8 @@ class ScaleCurve(NamedTuple):
 
 
 def _check_dim(dim: Any) -> int:
-    where = "dim (the number of scalar parameters)"
-    if isinstance(dim, bool | np.bool_):
-        raise InputError(explain(f"dim={dim!r} is a boolean, not a dimension.", where,
-                                 "pass the number of scalar parameters, an integer >= 1."))
-    try:
-        d = operator.index(dim)
-    except TypeError:
-        raise InputError(explain(f"dim={dim!r} is not an integer.", where,
-                                 "pass the number of scalar parameters, an integer >= 1.")
-                         ) from None
-    if d < 1:
-        raise InputError(explain(f"dim={d} is not a positive dimension.", where,
-                                 "pass the number of scalar parameters, an integer >= 1."))
-    return int(d)
+    return whole_number(dim, "dim", "dim (the number of scalar parameters)",
+                        todo="pass the number of scalar parameters, an integer >= 1.")
 
 
 def _check_spectrum(spectrum: Any, dim: int) -> np.ndarray | None:
