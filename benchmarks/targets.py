@@ -177,7 +177,7 @@ GRADIENT_REPEATS = 100  # costly_gradient: the exact gradient is computed this m
 
 
 def costly_gradient(n: int = 2000, d: int = 5, seed: int = 21) -> Target:
-    """``logistic-n2000-d5``'s posterior (same data), with a gradient ~100x its value's cost.
+    """``logistic-n2000-d5``'s posterior (same data), whose gradient is computed 100 times over.
 
     The log density is the same closed form; its derivative is given by a
     ``jax.custom_jvp`` whose rule computes the exact gradient Xᵀ(y − σ(Xβ)) − β/5²

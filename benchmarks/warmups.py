@@ -133,12 +133,14 @@ class CheesHmc:
                                                adaptation_info_fn=_KEEP)
 
         def adapt(key, positions):
+            # not wrapped in jax.jit: the parameters include the jitter functions, which
+            # a jitted function cannot return; run()'s lax.scan is compiled all the same
             (states, params), info = adaptation.run(
                 key, positions, CHEES_STEP_SIZE, optax.adam(CHEES_LEARNING_RATE), self.warmup,
                 max_sampling_steps=1_000_000)
             return states, params, info.info.num_integration_steps, info.info.acceptance_rate
 
-        self._adapt = jax.jit(adapt)
+        self._adapt = adapt
         self._params = None
         self._sample = jax.jit(self._sample_fn, static_argnames="steps")
 
