@@ -356,7 +356,7 @@ def render(results: dict) -> str:
     targets = results["targets"]
     samplers = [s for s in ORDER if s in results["samplers"]]
     parts = [
-        "# Benchmarks: fisherwalk and three other samplers, side by side",
+        "# Benchmarks: fisherwalk and other samplers, side by side",
         "",
         "Produced by the script, do not edit by hand. Command (from the repository root):",
         "",
@@ -618,7 +618,7 @@ def plot(results: dict, path: Path) -> None:
     import matplotlib.pyplot as plt
     import matplotlib.ticker
 
-    fig, axes = plt.subplots(1, 2, figsize=(11, 4.4))
+    fig, axes = plt.subplots(1, 2, figsize=(11, 6.0))
     colours = {"fisherwalk": "C0", "nuts": "C1", "adaptive": "C2", "textbook": "C3",
                "fisherwalk-mala": "C4", "fisherwalk-hmc": "C5", "fisherwalk-nuts": "C6",
                "fisherwalk-auto": "C9", "fisherwalk-nuts-64": "C6", "pathfinder": "C7",
@@ -686,8 +686,8 @@ def plot(results: dict, path: Path) -> None:
     handles, labels = axes[1].get_legend_handles_labels()
     if handles:
         fig.legend(handles, labels, loc="lower center", ncol=4, fontsize=7, frameon=False)
-    fig.suptitle(f"fisherwalk and three other samplers, 4 chains, {results['mode']} mode "
+    fig.suptitle(f"fisherwalk and other samplers, 4 chains, {results['mode']} mode "
                  f"(medians over {results['repeats']} repeat(s))", fontsize=10)
-    fig.tight_layout(rect=(0, 0.12, 1, 0.95))
+    fig.tight_layout(rect=(0, 0.26, 1, 0.95))
     fig.savefig(path, dpi=120)
     plt.close(fig)
