@@ -316,28 +316,38 @@ def raw_evaluation_seconds(logdensity_fn: Callable, point: np.ndarray, chains: i
 
 
 class FisherwalkSampler:
-    """fisherwalk with its defaults: start() + refine(), then walk() in rounds.
+    """fisherwalk: start(sampler=...) + refine(), then walk() in rounds.
 
     ``shape`` is start()'s proposal shape ("fisher", the default, "diagonal" or
-    "identity"). Evaluations before the first kept draw: the Laplace fit's
+    "identity"); ``sampler`` is start()'s sampler ("rwm", the default, "mala", "hmc",
+    "nuts" or "auto"). Evaluations before the first kept draw: the Laplace fit's
     value-and-gradient evaluations, one Hessian counted as d gradient evaluations
     (up to two more may be taken by the Newton polish: LaplaceFit does not say how many),
-    the draws of N(mode, H⁻¹) that seed the chains and the PSIS check, and the warm-up
-    steps.
+    the draws of N(mode, H⁻¹) that seed the chains and the PSIS check, and the warm-up:
+    for the random walk one evaluation per step and chain; for a gradient sampler the
+    warm-up's gradient evaluations as its dual-averaging runs counted them (read from the
+    warm-up's own result, see :func:`_counting_warmups`), one gradient per chain at the
+    chain starts, and for "auto" the timing of one batched value and one batched gradient
+    (8 calls each over the chains). Evaluations while sampling: one per step and chain
+    for the random walk, ``trace.gradients`` for a gradient sampler.
     """
 
-    key = "fisherwalk"
     name = "fisherwalk"
     chunk = 100  # fisherwalk.run.engine.DEFAULT_CHUNK
-    first_round = 500
 
     def __init__(self, logdensity_fn: Callable, dim: int, monitor: CompileMonitor,
-                 shape: str = "fisher", chains: int = 4):
+                 shape: str = "fisher", chains: int = 4, sampler: str = "rwm"):
         self.logdensity_fn = logdensity_fn
         self.dim = dim
         self.monitor = monitor
         self.shape = shape
         self.chains = chains
+        self.sampler = sampler
+        self.key = "fisherwalk" if sampler == "rwm" else f"fisherwalk-{sampler}"
+        if chains != 4:
+            self.key += f"-{chains}"
+        # a gradient sampler's draw carries far more ESS: its rounds start at one chunk
+        self.first_round = 500 if sampler == "rwm" else self.chunk
         self.walker = None
 
     def prepare(self, initial: np.ndarray, key):
@@ -350,31 +360,50 @@ class FisherwalkSampler:
         t0 = time.perf_counter()
         with self.monitor.window() as c_start:
             walker = start(self.logdensity_fn, jax.numpy.asarray(initial), k_start,
-                           chains=self.chains, shape=self.shape)
+                           chains=self.chains, shape=self.shape, sampler=self.sampler,
+                           progress=False)
         t1 = time.perf_counter()
-        with self.monitor.window() as c_refine:
+        with self.monitor.window() as c_refine, _counting_warmups() as warm_gradients:
             walker = refine(walker, k_refine, progress=False)
         t2 = time.perf_counter()
         fit = walker.report.laplace
         warm = walker.report.warmup
         steps = int(getattr(warm, "steps", 400))
-        evaluations = (fit.evaluations + self.dim + max(laplace_draws, self.chains)
-                       + steps * self.chains)
-        choice = walker.tuning.choice
+        gradient = bool(getattr(walker, "gradient", False))
+        picked = getattr(walker.tuning, "sampler", "rwm") if gradient else "rwm"
+        evaluations = fit.evaluations + self.dim + max(laplace_draws, self.chains)
+        if gradient:
+            counted = sum(warm_gradients)
+            evaluations += self.chains + counted
+        else:
+            evaluations += steps * self.chains
+        if self.sampler == "auto":
+            evaluations += 2 * 8 * self.chains
         info = {
             "start_seconds": t1 - t0, "refine_seconds": t2 - t1,
             "start_compile_seconds": c_start.seconds, "start_compiles": c_start.compiles,
             "refine_compile_seconds": c_refine.seconds, "refine_compiles": c_refine.compiles,
             "laplace_seconds": dict(getattr(fit, "seconds", {}) or {}),
             "laplace_evaluations": fit.evaluations,
-            "burn_in": steps, "acceptance_warmup": getattr(warm, "acceptance_final", None),
-            "target_acceptance": walker.tuning.target_acceptance,
-            "scale": walker.tuning.scale, "shape_kind": walker.tuning.shape_kind,
-            "efficiency": getattr(choice, "efficiency", None),
-            "slowest_jump": getattr(choice, "slowest_jump", None),
+            "burn_in": steps, "sampler": picked,
             "reshaped": bool(getattr(warm, "reshaped", False)),
             "khat": getattr(warm, "khat", None),
         }
+        if gradient:
+            info.update(step_size_start=getattr(warm, "scale_start", None),
+                        step_size=float(walker.tuning.step_size),
+                        target_acceptance=getattr(warm, "target_acceptance", None),
+                        acceptance_warmup=getattr(warm, "acceptance_final", None),
+                        warmup_gradients=int(sum(warm_gradients)),
+                        auto_note=next((n for n in walker.report.notes
+                                        if n.startswith("sampler='auto'")), None))
+        else:
+            choice = walker.tuning.choice
+            info.update(acceptance_warmup=getattr(warm, "acceptance_final", None),
+                        target_acceptance=walker.tuning.target_acceptance,
+                        scale=walker.tuning.scale, shape_kind=walker.tuning.shape_kind,
+                        efficiency=getattr(choice, "efficiency", None),
+                        slowest_jump=getattr(choice, "slowest_jump", None))
         self.walker = walker
         return Prepared(walker, int(evaluations), info)
 
@@ -385,7 +414,40 @@ class FisherwalkSampler:
 
         trace = walk(walker, jax.random.fold_in(key, first), draws=draws, progress=False)
         self.walker = trace.walker
-        return Advanced(trace.walker, trace.flat, trace.accepted, self.chains * draws)
+        if trace.gradients is not None:
+            evaluations = int(np.sum(trace.gradients))
+        else:
+            evaluations = self.chains * draws
+        return Advanced(trace.walker, trace.flat, trace.accepted, evaluations)
+
+
+@contextlib.contextmanager
+def _counting_warmups():
+    """Collect the gradient evaluations of every gradient warm-up run inside the block.
+
+    refine() does not report them, but each warm-up's own result does
+    (``GradientWarmup.gradients``); this wraps the function refine() calls so that the
+    results pass through unchanged and their counts land in the yielded list. Nothing
+    else changes: no extra evaluation, no change to the compiled programs.
+    """
+    counts: list[int] = []
+    try:
+        from fisherwalk.run import gradient_run
+    except ImportError:  # a package layout without gradient samplers: nothing to count
+        yield counts
+        return
+    original = gradient_run.warm_up
+
+    def counted(*args, **kwargs):
+        out = original(*args, **kwargs)
+        counts.append(int(np.sum(out.gradients)))
+        return out
+
+    gradient_run.warm_up = counted
+    try:
+        yield counts
+    finally:
+        gradient_run.warm_up = original
 
 
 def _median_seconds_per_step(call, chunk: int, budget: float) -> float:

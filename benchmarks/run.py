@@ -37,11 +37,17 @@ import baselines  # noqa: E402
 import harness  # noqa: E402
 import numpy as np  # noqa: E402
 import targets as target_defs  # noqa: E402
+import warmups  # noqa: E402
 
 SEED = 20_241  # the fixed key of every run: jax.random.key(SEED), folded with target and repeat
-SAMPLERS = ("fisherwalk", "nuts", "adaptive", "textbook")
+GRADIENT = ("mala", "hmc", "nuts", "auto")  # start(sampler=...) beside the random walk
+FISHERWALK = ("fisherwalk", *(f"fisherwalk-{s}" for s in GRADIENT), "fisherwalk-nuts-64")
+SAMPLERS = (*FISHERWALK, "nuts", "pathfinder", "chees", "chees-64", "adaptive", "textbook")
+# the default list: everything but the 64-chain runs, which are asked for by name
+DEFAULT_SAMPLERS = tuple(s for s in SAMPLERS if not s.endswith("-64"))
 RANDOM_WALKS = ("fisherwalk", "adaptive", "textbook")
 CACHE_TARGET = "logistic-n10000-d10"
+SHAPE_MAX_DIM = 50  # the random-walk shape experiments (issue 6) stop here: slow beyond
 
 
 class Mode:
@@ -69,8 +75,14 @@ class Mode:
 
 def make_sampler(which: str, target, monitor, shape: str = "fisher"):
     logdensity = target.make()  # a fresh closure: every run compiles afresh
-    if which == "fisherwalk":
-        return harness.FisherwalkSampler(logdensity, target.dim, monitor, shape=shape)
+    if which in FISHERWALK:
+        parts = which.split("-")
+        sampler = parts[1] if len(parts) > 1 else "rwm"
+        chains = int(parts[2]) if len(parts) > 2 else 4
+        return harness.FisherwalkSampler(logdensity, target.dim, monitor, shape=shape,
+                                         chains=chains, sampler=sampler)
+    if which in warmups.WARMUPS:
+        return warmups.WARMUPS[which](logdensity, target.dim)
     return baselines.BASELINES[which](logdensity, target.dim)
 
 
@@ -115,7 +127,8 @@ def run_target(index: int, target, mode: Mode, monitor, samplers) -> dict:
             if which == "fisherwalk":
                 out["engine_seconds_per_step"].append(
                     harness.engine_seconds_per_step(sampler.walker))
-        if target.family == "logistic" and "fisherwalk" in samplers and repeat == 0:
+        if (target.family == "logistic" and "fisherwalk" in samplers and repeat == 0
+                and target.dim <= SHAPE_MAX_DIM):
             fisher = [r for r in out["runs"] if r["sampler"] == "fisherwalk"][-1]
             for shape in ("diagonal", "identity"):
                 sampler = make_sampler("fisherwalk", target, monitor, shape=shape)
@@ -162,7 +175,7 @@ def run_references(dims, mode: Mode, monitor, samplers) -> list[dict]:
 # ----------------------------------------------------------------------------- cache probe
 
 
-def probe_cache(cache_dir: str) -> None:
+def probe_cache(cache_dir: str, sampler: str = "rwm") -> None:
     """Child process: start + refine + walk on the d = 10 target; print figures as JSON."""
     began = time.perf_counter()
     if cache_dir != "none":
@@ -180,25 +193,31 @@ def probe_cache(cache_dir: str) -> None:
     imported = time.perf_counter() - began
     t0 = time.perf_counter()
     with monitor.window() as compiled:
-        walker = start(logdensity, jax.numpy.asarray(target.initial), jax.random.key(SEED))
+        walker = start(logdensity, jax.numpy.asarray(target.initial), jax.random.key(SEED),
+                       sampler=sampler, progress=False)
         walker = refine(walker, jax.random.key(SEED + 1), progress=False)
         trace = walk(walker, jax.random.key(SEED + 2), draws=1000, progress=False)
     seconds = time.perf_counter() - t0
-    print(json.dumps({"seconds": seconds, "compile_seconds": compiled.seconds,
+    print(json.dumps({"seconds": seconds, "compile_seconds": compiled.seconds, "sampler": sampler,
                       "compiles": compiled.compiles, "cache_hits": len(hits),
                       "import_seconds": imported, "draws": int(trace.flat.shape[1])}))
 
 
-def run_cache_probes() -> dict:
-    """Three fresh processes: no cache, cache enabled (cold), cache enabled (warm)."""
+def run_cache_probes(samplers=()) -> dict:
+    """Three fresh processes: no cache, cache enabled (cold), cache enabled (warm); and one
+    more without the cache, with NUTS, when fisherwalk-nuts is among the samplers."""
     folder = tempfile.mkdtemp(prefix="fisherwalk-cache-")
     out = {"target": CACHE_TARGET}
     env = dict(os.environ)
+    probes = [("off", "none", "rwm"), ("cold", folder, "rwm"), ("warm", folder, "rwm")]
+    if "fisherwalk-nuts" in samplers:
+        probes.append(("nuts-off", "none", "nuts"))
     try:
-        for label, arg in (("off", "none"), ("cold", folder), ("warm", folder)):
+        for label, arg, sampler in probes:
             t0 = time.perf_counter()
             done = subprocess.run([sys.executable, str(Path(__file__).resolve()), "--probe-cache",
-                                   arg], capture_output=True, text=True, env=env, check=False)
+                                   arg, "--probe-sampler", sampler],
+                                  capture_output=True, text=True, env=env, check=False)
             wall = time.perf_counter() - t0
             if done.returncode != 0:
                 out[label] = {"error": done.stderr.strip().splitlines()[-1:]}
@@ -261,8 +280,9 @@ def parse(argv=None):
                         help="1 repeat, the smaller targets, runs stop at the answer")
     parser.add_argument("--targets", default=None,
                         help="comma-separated target names (default: all; --quick: the smaller)")
-    parser.add_argument("--samplers", default=",".join(SAMPLERS),
-                        help=f"comma-separated subset of {','.join(SAMPLERS)}")
+    parser.add_argument("--samplers", default=",".join(DEFAULT_SAMPLERS),
+                        help=f"comma-separated subset of {','.join(SAMPLERS)} (default: all "
+                             "but the 64-chain runs)")
     parser.add_argument("--repeats", type=int, default=None, help="override the repeats")
     parser.add_argument("--out", default=str(HERE), help="folder for RESULTS.md etc.")
     parser.add_argument("--no-cache-probe", action="store_true",
@@ -270,13 +290,14 @@ def parse(argv=None):
     parser.add_argument("--render", metavar="RESULTS_JSON", default=None,
                         help="only redo RESULTS.md and results.png from a results.json")
     parser.add_argument("--probe-cache", default=None, help=argparse.SUPPRESS)
+    parser.add_argument("--probe-sampler", default="rwm", help=argparse.SUPPRESS)
     return parser.parse_args(argv)
 
 
 def main(argv=None) -> int:
     args = parse(argv)
     if args.probe_cache is not None:
-        probe_cache(args.probe_cache)
+        probe_cache(args.probe_cache, args.probe_sampler)
         return 0
     if args.render is not None:
         write_outputs(json.loads(Path(args.render).read_text()), Path(args.out))
@@ -316,7 +337,7 @@ def main(argv=None) -> int:
     dims = {available[n].dim for n in names}
     results["references"] = run_references(dims, mode, monitor, samplers)
     if not args.no_cache_probe and "fisherwalk" in samplers:
-        results["cache"] = run_cache_probes()
+        results["cache"] = run_cache_probes(samplers)
     results["machine"]["load_average_end"] = list(os.getloadavg())
     results["seconds"] = time.perf_counter() - began
     out = Path(args.out)

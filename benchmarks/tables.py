@@ -8,8 +8,13 @@ from pathlib import Path
 import numpy as np
 
 NAMES = {"fisherwalk": "fisherwalk", "nuts": "BlackJAX NUTS", "adaptive": "adaptive Metropolis",
-         "textbook": "textbook RW"}
-ORDER = ("fisherwalk", "nuts", "adaptive", "textbook")
+         "textbook": "textbook RW", "fisherwalk-mala": "fisherwalk MALA",
+         "fisherwalk-hmc": "fisherwalk HMC", "fisherwalk-nuts": "fisherwalk NUTS",
+         "fisherwalk-auto": "fisherwalk auto", "fisherwalk-nuts-64": "fisherwalk NUTS 64 chains",
+         "pathfinder": "BlackJAX NUTS (Pathfinder)", "chees": "BlackJAX ChEES-HMC",
+         "chees-64": "BlackJAX ChEES-HMC 64 chains"}
+ORDER = ("fisherwalk", "fisherwalk-mala", "fisherwalk-hmc", "fisherwalk-nuts", "fisherwalk-auto",
+         "fisherwalk-nuts-64", "nuts", "pathfinder", "chees", "chees-64", "adaptive", "textbook")
 FEW_MICROSECONDS = 1e-5  # "a few µs": raw evaluations under 10 µs
 EXPENSIVE = 1e-4  # raw evaluations of 0.1 ms and more
 
@@ -122,6 +127,10 @@ def _table(header: list[str], rows: list[list[str]]) -> str:
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
     lines += ["| " + " | ".join(row) + " |" for row in rows]
     return "\n".join(lines)
+
+
+# the helpers other table modules (gradient_tables.py) use, under public names
+fmt, median_of, runs_of, markdown_table = _fmt, _median, _runs, _table
 
 
 # ----------------------------------------------------------------------------- goals
@@ -347,7 +356,7 @@ def render(results: dict) -> str:
     targets = results["targets"]
     samplers = [s for s in ORDER if s in results["samplers"]]
     parts = [
-        "# Benchmarks: fisherwalk and three other samplers, side by side",
+        "# Benchmarks: fisherwalk and other samplers, side by side",
         "",
         "Produced by the script, do not edit by hand. Command (from the repository root):",
         "",
@@ -382,7 +391,10 @@ def render(results: dict) -> str:
         "## Goals",
         "",
     ]
+    import gradient_tables
+
     rows = [[g, meas, verdict] for g, meas, verdict in goals(results)]
+    rows += [[g, meas, verdict] for g, meas, verdict in gradient_tables.goals(results)]
     parts += [_table(["goal", "measured", "verdict"], rows), ""]
     cross = crossovers(results)
     if cross:
@@ -592,6 +604,7 @@ def render(results: dict) -> str:
                   _table(["process", "start+refine+walk (s)", "compile (s)",
                           "compilations (cache loads included)", "cache hits",
                           "whole process (s)"], rows), ""]
+    parts += gradient_tables.section(results)
     return "\n".join(parts) + "\n"
 
 
@@ -605,8 +618,11 @@ def plot(results: dict, path: Path) -> None:
     import matplotlib.pyplot as plt
     import matplotlib.ticker
 
-    fig, axes = plt.subplots(1, 2, figsize=(11, 4.4))
-    colours = {"fisherwalk": "C0", "nuts": "C1", "adaptive": "C2", "textbook": "C3"}
+    fig, axes = plt.subplots(1, 2, figsize=(11, 6.0))
+    colours = {"fisherwalk": "C0", "nuts": "C1", "adaptive": "C2", "textbook": "C3",
+               "fisherwalk-mala": "C4", "fisherwalk-hmc": "C5", "fisherwalk-nuts": "C6",
+               "fisherwalk-auto": "C9", "fisherwalk-nuts-64": "C6", "pathfinder": "C7",
+               "chees": "C8", "chees-64": "C8"}
     families = (("logistic", "-", "o", "logistic regression"),
                 ("gauss", "--", "s", "Gaussian, condition 1e3"))
     for family, style, marker, label in families:
@@ -670,8 +686,8 @@ def plot(results: dict, path: Path) -> None:
     handles, labels = axes[1].get_legend_handles_labels()
     if handles:
         fig.legend(handles, labels, loc="lower center", ncol=4, fontsize=7, frameon=False)
-    fig.suptitle(f"fisherwalk and three other samplers, 4 chains, {results['mode']} mode "
+    fig.suptitle(f"fisherwalk and other samplers, 4 chains, {results['mode']} mode "
                  f"(medians over {results['repeats']} repeat(s))", fontsize=10)
-    fig.tight_layout(rect=(0, 0.12, 1, 0.95))
+    fig.tight_layout(rect=(0, 0.26, 1, 0.95))
     fig.savefig(path, dpi=120)
     plt.close(fig)

@@ -16,6 +16,10 @@ Families
 * ``skewed-n30-d3``: logistic regression with n = 30 and two covariates whose classes
   almost separate (a few overlapping points), prior N(0, 5^2): a skewed posterior far
   from its Laplace approximation.
+* ``costlygrad-n2000-d5``: the logistic regression of ``logistic-n2000-d5`` whose
+  gradient is made deliberately expensive (see :func:`costly_gradient`): a model where a
+  gradient costs tens of log densities, so that a random walk can beat the gradient
+  samplers on time.
 
 Everyone starts from the same ``initial`` position (the one a user would type:
 zeros for the regressions; the origin, 1 from the mean in every coordinate, for the
@@ -27,6 +31,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 
@@ -115,12 +120,17 @@ def _logistic_logdensity(x_np: np.ndarray, y_np: np.ndarray):
     return make
 
 
-def logistic(n: int, d: int, seed: int = 21) -> Target:
+def _logistic_data(n: int, d: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Design and labels of the logistic targets (fixed by n, d and seed)."""
     rng = np.random.default_rng(seed + 1000 * d + n)
     x = _design(rng, n, d)
     beta = _coefficients(rng, d, spread=1.5)
     prob = 1.0 / (1.0 + np.exp(-(x @ beta)))
-    y = (rng.uniform(size=n) < prob).astype(float)
+    return x, (rng.uniform(size=n) < prob).astype(float)
+
+
+def logistic(n: int, d: int, seed: int = 21) -> Target:
+    x, y = _logistic_data(n, d, seed)
     return Target(f"logistic-n{n}-d{d}", "logistic", d, n, _logistic_logdensity(x, y),
                   np.zeros(d), "logistic regression, correlated covariates (0.6^|i-j|)")
 
@@ -163,13 +173,67 @@ def skewed(seed: int = 41) -> Target:
                   "logistic regression, n = 30, nearly separated (skewed posterior)")
 
 
+GRADIENT_REPEATS = 100  # costly_gradient: the exact gradient is computed this many times
+
+
+def costly_gradient(n: int = 2000, d: int = 5, seed: int = 21) -> Target:
+    """``logistic-n2000-d5``'s posterior (same data), whose gradient is computed 100 times over.
+
+    The log density is the same closed form; its derivative is given by a
+    ``jax.custom_jvp`` whose rule computes the exact gradient Xᵀ(y − σ(Xβ)) − β/5²
+    ``GRADIENT_REPEATS`` times in a ``lax.fori_loop``, each pass fed the previous one's
+    result through a 1e-30 nudge of β so that XLA cannot hoist or merge the passes (the
+    nudge is below float64 resolution for any β not exactly zero, and at most 1e-30 off
+    at β = 0). What makes it expensive is therefore this deliberate repetition, nothing
+    inherent in the model: it stands in for models whose derivative needs a costly path
+    (an adjoint solve, an implicit function, a simulator with a differentiated
+    surrogate) while their value is cheap. The posterior, mode and Hessian are exactly
+    those of the logistic regression, so every sampler's answer is comparable.
+    """
+    x_np, y_np = _logistic_data(n, d, seed)
+
+    def make():
+        x = jnp.asarray(x_np)
+        y = jnp.asarray(y_np)
+
+        def value(beta):
+            eta = x @ beta
+            loglik = jnp.sum(y * eta - jnp.logaddexp(0.0, eta))
+            return loglik - 0.5 * jnp.sum(beta**2) / PRIOR_SD**2
+
+        def exact_gradient(beta):
+            return x.T @ (y - jax.nn.sigmoid(x @ beta)) - beta / PRIOR_SD**2
+
+        @jax.custom_jvp
+        def logdensity(beta):
+            return value(beta)
+
+        @logdensity.defjvp
+        def _jvp(primals, tangents):
+            (beta,), (dbeta,) = primals, tangents
+
+            def again(_, g):
+                return exact_gradient(beta + 1e-30 * g)
+
+            g = jax.lax.fori_loop(0, GRADIENT_REPEATS, again, jnp.zeros_like(beta))
+            return value(beta), g @ dbeta
+
+        return logdensity
+
+    return Target(f"costlygrad-n{n}-d{d}", "costly", d, n, make, np.zeros(d),
+                  f"logistic-n{n}-d{d}'s posterior; gradient computed {GRADIENT_REPEATS}x "
+                  "on purpose (costs tens of log densities)")
+
+
 def all_targets() -> dict[str, Target]:
     """Every benchmark target, smallest first within each family."""
     targets = [gaussian(2), gaussian(10), gaussian(50)]
-    targets += [logistic(n, d) for n, d in ((2000, 5), (10000, 10), (10000, 25), (20000, 50))]
-    targets += [poisson(), skewed()]
+    targets += [logistic(n, d) for n, d in ((2000, 5), (10000, 10), (10000, 25), (20000, 50),
+                                            (20000, 100), (20000, 200))]
+    targets += [poisson(), skewed(), costly_gradient()]
     return {t.name: t for t in targets}
 
 
 # --quick: the smaller targets (the cache probe runs on logistic-n10000-d10 anyway)
-QUICK = ("gauss-d2", "gauss-d10", "logistic-n2000-d5", "poisson-n5000-d8", "skewed-n30-d3")
+QUICK = ("gauss-d2", "gauss-d10", "logistic-n2000-d5", "poisson-n5000-d8", "skewed-n30-d3",
+         "costlygrad-n2000-d5")

@@ -5,8 +5,10 @@ The checks that can fail besides "it ran": a run that reports an answer must hav
 answer's definition on its own draws (bulk ESS >= 400, R-hat < 1.01: the working
 thresholds of Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, "Rank-normalization,
 folding, and localization: an improved R-hat for assessing convergence of MCMC",
-Bayesian Analysis 16(2)); the random walks' evaluation counts must be one per step per
-chain; every table must have as many cells per row as its header.
+Bayesian Analysis 16(2)); the random walks' and MALA's evaluation counts must be one per
+step per chain (MALA takes one gradient per step: Roberts & Tweedie 1996, Bernoulli 2(4)),
+HMC-family counts at least one gradient per step per chain; every table must have as
+many cells per row as its header.
 """
 
 from __future__ import annotations
@@ -20,7 +22,9 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 SCRIPT = ROOT / "benchmarks" / "run.py"
-SAMPLERS = {"fisherwalk", "nuts", "adaptive", "textbook"}
+SAMPLERS = {"fisherwalk", "fisherwalk-mala", "fisherwalk-nuts", "nuts", "pathfinder", "chees",
+            "adaptive", "textbook"}
+ONE_PER_STEP = {"fisherwalk", "fisherwalk-mala", "adaptive", "textbook"}
 
 
 @pytest.fixture(scope="module")
@@ -28,7 +32,7 @@ def quick_run(tmp_path_factory):
     out = tmp_path_factory.mktemp("bench")
     done = subprocess.run(
         [sys.executable, str(SCRIPT), "--quick", "--targets", "gauss-d2", "--out", str(out),
-         "--no-cache-probe"],
+         "--no-cache-probe", "--samplers", ",".join(sorted(SAMPLERS))],
         capture_output=True, text=True, timeout=600, cwd=ROOT, check=False,
     )
     assert done.returncode == 0, done.stderr[-3000:]
@@ -73,8 +77,10 @@ def test_reported_answers_meet_their_definition(quick_run):
             assert run["max_rhat"] < 1.01, run["sampler"]
             assert run["answer_draws"] <= run["draws"]
             assert run["answer_seconds"] >= run["prepare_seconds"]
-        if run["sampler"] != "nuts":
+        if run["sampler"] in ONE_PER_STEP:
             assert run["evaluations_sampling"] == 4 * run["draws"], run["sampler"]
+        else:  # a NUTS or HMC trajectory takes one gradient per leapfrog step, at least one
+            assert run["evaluations_sampling"] >= 4 * run["draws"], run["sampler"]
         assert 0.0 <= run["acceptance"] <= 1.0
     fisher = next(r for r in results["targets"][0]["runs"] if r["sampler"] == "fisherwalk")
     assert fisher["answer_reached"], "fisherwalk should answer on a 2-d Gaussian"
@@ -87,6 +93,7 @@ def test_results_markdown_is_well_formed(quick_run):
                     "## 3. Random walks against their limits", "## 4. Where fisherwalk"):
         assert heading in text
     assert "python benchmarks/run.py --quick --targets gauss-d2" in text
+    assert "## 7. Gradient samplers and BlackJAX's warm-ups" in text
     assert "jax " in text and "blackjax 1." in text
     tables = _tables(text)
     assert len(tables) >= 5
@@ -97,6 +104,10 @@ def test_results_markdown_is_well_formed(quick_run):
     assert len(answer) == 2 and answer[1][0] == "gauss-d2"
     assert "fisherwalk (s)" in answer[0] and "BlackJAX NUTS (s)" in answer[0]
     float(answer[1][answer[0].index("fisherwalk (s)")])  # a number, not a placeholder
+    float(answer[1][answer[0].index("fisherwalk MALA (s)")])
+    limits = next(t for t in tables if "limit ESS/grad" in t[0])
+    mala = next(row for row in limits if row[2] == "fisherwalk MALA")
+    float(mala[limits[0].index("median / limit")])  # the measured ratio is a number
 
 
 def test_plot_is_a_png(quick_run):
