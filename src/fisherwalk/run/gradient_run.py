@@ -43,6 +43,10 @@ __all__ = ["SAMPLER_CHOICES", "check_sampler", "gradient_tuning", "gradient_mode
 
 SAMPLER_CHOICES = ("rwm", "mala", "hmc", "nuts", "auto")
 ANSWER_ESS = 400.0  # bulk ESS per parameter that counts as an answer (Vehtari et al. 2021)
+# Extra compilation a gradient sampler's program costs over the random walk's, in seconds:
+# measured on this project's 2-core benchmark machine (benchmarks/RESULTS.md, --quick run:
+# time to answer at d <= 10, where compilation is most of it); our measurement, not a law.
+EXTRA_COMPILE_SECONDS = {"rwm": 0.0, "mala": 0.8, "hmc": 1.1, "nuts": 2.3}
 
 
 def check_sampler(sampler: Any) -> str:
@@ -157,8 +161,9 @@ def choose_sampler(model: Model, positions, dim: int) -> SamplerChoice:
     of a gradient sampler, one batched value-and-gradient per gradient evaluation. With
     the Gaussian-limit ESS per evaluation e_s at this d, the steps per chain to bulk ESS
     400 in the slowest of d parameters are 400 / (chains · e_s) (the chains pool their
-    draws), so the predicted time is that times the cost of one batched evaluation.
-    Compilation is left out: it is paid once and about equal for the four.
+    draws), so the predicted time is that times the cost of one batched evaluation, plus
+    the extra compilation of the sampler's program (:data:`EXTRA_COMPILE_SECONDS`), which
+    decides the choice at small d.
     """
     flat = _flat(model)
     positions = jax.device_put(np.asarray(positions))
@@ -171,13 +176,15 @@ def choose_sampler(model: Model, positions, dim: int) -> SamplerChoice:
     for sampler in ("rwm", *GRADIENT_SAMPLERS):
         per_eval = predicted_ess_per_evaluation(sampler, dim)
         cost = t_value if sampler == "rwm" else t_grad
-        seconds[sampler] = ANSWER_ESS / (chains * per_eval) * cost
+        seconds[sampler] = (ANSWER_ESS / (chains * per_eval) * cost
+                            + EXTRA_COMPILE_SECONDS[sampler])
     best = min(seconds, key=seconds.get)
     ratio = t_grad / max(t_value, 1e-12)
     listed = ", ".join(f"{s} {v:.3g} s" for s, v in sorted(seconds.items(), key=lambda x: x[1]))
     note = (f"sampler='auto' chose {best!r}: predicted time to bulk ESS 400 at d = {dim} is "
             f"{listed} (a gradient costs {ratio:.1f} log densities here; Gaussian-limit ESS "
-            "per evaluation from fisherwalk.theory.gradient).")
+            "per evaluation from fisherwalk.theory.gradient, plus each program's extra "
+            "compilation).")
     return SamplerChoice(best, seconds, t_value, t_grad, note)
 
 
