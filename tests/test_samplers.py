@@ -189,3 +189,16 @@ def test_a_nonfinite_gradient_is_refused_with_the_random_walk_as_the_way_out():
 def test_an_unknown_sampler_is_refused():
     with pytest.raises(fisherwalk.InputError, match="sampler"):
         fisherwalk.start(gaussian, jnp.zeros(4), jax.random.key(0), sampler="slice")
+
+
+def test_the_tuning_picture_of_a_gradient_sampler_plots_its_own_theory(runs):
+    pytest.importorskip("matplotlib")
+    from fisherwalk.results import plots
+    from fisherwalk.theory.gradient import step_acceptance
+
+    _, trace = runs["hmc"]
+    fig = plots.plot_tuning(trace)
+    line = fig.axes[0].lines[0]  # the predicted acceptance against the step size
+    steps, predicted = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+    np.testing.assert_allclose(predicted, step_acceptance("hmc", steps, 4), rtol=1e-12)
+    assert "HMC" in fig._suptitle.get_text()

@@ -197,6 +197,8 @@ def plot_tuning(trace, path=None):
 
     tuning = trace.walker.tuning
     warm = trace.walker.report.warmup
+    if hasattr(tuning, "sampler"):
+        return _plot_gradient_tuning(trace, path)
     dim = int(tuning.dim)
     spectrum = np.asarray(tuning.spectrum, dtype=float)
     matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6))
@@ -253,6 +255,48 @@ def plot_tuning(trace, path=None):
         f"{spectrum.min():.2g} to {spectrum.max():.2g}")
     fig.suptitle(f"Tuning for d = {dim}: {shape}\n"
                  "curves: Gaussian-limit predictions; diamonds: this walk", fontsize=11)
+    _save(fig, path)
+    return fig
+
+
+def _plot_gradient_tuning(trace, path=None):
+    """A gradient sampler's tuning picture: the acceptance the Gaussian limit predicts
+    against BlackJAX's step size on the whitened target N(0, I_d) (exact for MALA and HMC
+    with its jittered time, fisherwalk.theory.gradient; for NUTS the acceptance statistic of
+    the circle model, a rough guide), the theory step, the step after dual averaging and
+    the realised acceptance."""
+    from ..theory.gradient import step_acceptance
+
+    tuning = trace.walker.tuning
+    warm = trace.walker.report.warmup
+    dim, sampler = int(tuning.dim), tuning.sampler
+    chosen = float(warm.scale_start) if warm is not None else float(tuning.step_size)
+    refined = float(tuning.step_size)
+    limit = 1.95 if sampler != "mala" else 3.0 * max(chosen, refined)
+    grid = np.linspace(0.02, max(limit, 1.5 * max(chosen, refined)), 120)
+    curve = np.asarray(step_acceptance(sampler, grid, dim))
+    realised = float(np.mean(trace.acceptance_rate))
+    fig = _figure(7.6, 4.4)
+    ax = fig.subplots(1, 1)
+    ax.plot(grid, curve, color="#1b6ca8", lw=1.8, label="predicted acceptance")
+    ax.axvline(chosen, color="#6a4c93", ls="--", lw=1.0,
+               label=f"theory step for d = {dim}: {chosen:.4g}")
+    if warm is not None:
+        ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
+                   label=f"after dual averaging: {refined:.4g}")
+        ax.axhline(warm.target_acceptance, color="grey", ls=":", lw=1.0,
+                   label=f"target acceptance {warm.target_acceptance:.3f}")
+    else:
+        ax.set_title("no warm-up: the theory step", fontsize=9)
+    ax.plot([refined], [realised], "D", color="#d1495b", ms=8, zorder=4,
+            label=f"realised acceptance {realised:.3f}")
+    ax.set_ylim(0, 1)
+    ax.set_xlabel(f"step size (BlackJAX's step_size for {sampler})")
+    ax.set_ylabel("acceptance")
+    ax.legend(fontsize=8, loc="upper right")
+    fig.suptitle(f"Tuning of {sampler.upper()} for d = {dim}, posterior whitened by S Sᵀ "
+                 f"({tuning.shape_kind})\ncurve: Gaussian-limit prediction; diamond: this "
+                 "walk", fontsize=11)
     _save(fig, path)
     return fig
 
