@@ -297,16 +297,23 @@ class BlackjaxNuts:
         return Prepared((states, params), int(CHAINS + steps.sum()), info)
 
     def advance(self, state, key, first: int, draws: int) -> Advanced:
-        pieces, acc, steps = [], [], []
-        for k in range(0, draws, self.chunk):
-            state, (pos, rate, n) = self._sample(key, first + k, state, steps=self.chunk)
-            pieces.append(pos)
-            acc.append(rate)
-            steps.append(n)
-        positions = np.swapaxes(np.concatenate(jax.device_get(pieces)), 0, 1)
-        accepted = np.swapaxes(np.concatenate(jax.device_get(acc)), 0, 1)
-        evaluations = int(np.sum(jax.device_get(steps)))
-        return Advanced(state, positions, accepted, evaluations)
+        return advance_counting_steps(self._sample, state, key, first, draws, self.chunk)
 
 
 BASELINES = {"textbook": TextbookWalk, "adaptive": AdaptiveMetropolis, "nuts": BlackjaxNuts}
+
+
+def advance_counting_steps(sample: Callable, state, key, first: int, draws: int,
+                           chunk: int) -> Advanced:
+    """``draws`` kept draws in calls of ``sample(key, step, state, steps=chunk)``, which
+    returns ``(state, (positions, acceptance, integration steps))``; the evaluations are
+    the integration steps (one gradient each)."""
+    pieces, acc, steps = [], [], []
+    for k in range(0, draws, chunk):
+        state, (pos, rate, n) = sample(key, first + k, state, steps=chunk)
+        pieces.append(pos)
+        acc.append(rate)
+        steps.append(n)
+    positions = np.swapaxes(np.concatenate(jax.device_get(pieces)), 0, 1)
+    accepted = np.swapaxes(np.concatenate(jax.device_get(acc)), 0, 1)
+    return Advanced(state, positions, accepted, int(np.sum(jax.device_get(steps))))

@@ -35,7 +35,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from baselines import CHAINS, Advanced, Prepared, start_points
+from baselines import CHAINS, Advanced, Prepared, advance_counting_steps, start_points
 from blackjax.adaptation.base import get_filter_adapt_info_fn
 
 CHEES_LEARNING_RATE = 0.025  # Adam's rate in Hoffman, Radul & Sountsov (2021), from memory
@@ -44,12 +44,6 @@ CHEES_WARMUP = 1000  # chees_adaptation's run() default num_steps
 PATHFINDER_WARMUP = 400  # pathfinder_adaptation's run() default num_steps
 PATHFINDER_SAMPLES_PER_PATH = 200  # pathfinder_adaptation's default num_samples_per_path
 _KEEP = get_filter_adapt_info_fn(info_keys={"num_integration_steps", "acceptance_rate"})
-
-
-def _stack(pieces, acc, steps):
-    positions = np.swapaxes(np.concatenate(jax.device_get(pieces)), 0, 1)
-    accepted = np.swapaxes(np.concatenate(jax.device_get(acc)), 0, 1)
-    return positions, accepted, int(np.sum(jax.device_get(steps)))
 
 
 class PathfinderNuts:
@@ -106,13 +100,7 @@ class PathfinderNuts:
         return Prepared(carry, evaluations, info)
 
     def advance(self, state, key, first: int, draws: int) -> Advanced:
-        pieces, acc, steps = [], [], []
-        for k in range(0, draws, self.chunk):
-            state, (pos, rate, n) = self._sample(key, first + k, state, steps=self.chunk)
-            pieces.append(pos)
-            acc.append(rate)
-            steps.append(n)
-        return Advanced(state, *_stack(pieces, acc, steps))
+        return advance_counting_steps(self._sample, state, key, first, draws, self.chunk)
 
 
 class CheesHmc:
@@ -168,13 +156,7 @@ class CheesHmc:
         return Prepared(states, self.chains + int(steps.sum()), info)
 
     def advance(self, state, key, first: int, draws: int) -> Advanced:
-        pieces, acc, steps = [], [], []
-        for k in range(0, draws, self.chunk):
-            state, (pos, rate, n) = self._sample(key, first + k, state, steps=self.chunk)
-            pieces.append(pos)
-            acc.append(rate)
-            steps.append(n)
-        return Advanced(state, *_stack(pieces, acc, steps))
+        return advance_counting_steps(self._sample, state, key, first, draws, self.chunk)
 
 
 def chees_many(logdensity_fn: Callable, dim: int) -> CheesHmc:

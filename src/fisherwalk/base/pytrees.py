@@ -28,7 +28,9 @@ class Flat(NamedTuple):
     names: tuple[str, ...]  # d parameter names, e.g. "beta[3]", "sigma"
 
 
-def _path_name(path) -> str:
+def path_parts(path, *, index: str = "[{}]") -> list[str]:
+    """The entries of a pytree key path as text: dict keys and attribute names as they
+    are, sequence indices through ``index`` (``"[{}]"`` gives ``beta[3]``-style names)."""
     parts = []
     for entry in path:
         if isinstance(entry, jax.tree_util.DictKey):
@@ -36,9 +38,14 @@ def _path_name(path) -> str:
         elif isinstance(entry, jax.tree_util.GetAttrKey):
             parts.append(str(entry.name))
         elif isinstance(entry, jax.tree_util.SequenceKey):
-            parts.append(f"[{entry.idx}]")
+            parts.append(index.format(entry.idx))
         else:  # pragma: no cover - other key types
             parts.append(str(entry))
+    return parts
+
+
+def _path_name(path) -> str:
+    parts = path_parts(path)
     name = ""
     for part in parts:
         if part.startswith("["):

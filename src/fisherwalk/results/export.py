@@ -29,6 +29,7 @@ from typing import Any
 import jax
 import numpy as np
 
+from ..base.pytrees import path_parts
 from ..errors import InputError, explain
 
 __all__ = ["to_arviz", "leaf_variables", "settings"]
@@ -45,26 +46,12 @@ def _import_arviz():
     return arviz
 
 
-def _path_label(path) -> str:
-    parts = []
-    for entry in path:
-        if isinstance(entry, jax.tree_util.DictKey):
-            parts.append(str(entry.key))
-        elif isinstance(entry, jax.tree_util.GetAttrKey):
-            parts.append(str(entry.name))
-        elif isinstance(entry, jax.tree_util.SequenceKey):
-            parts.append(str(entry.idx))
-        else:  # pragma: no cover - other key types
-            parts.append(str(entry))
-    return ".".join(parts)
-
-
 def leaf_variables(tree: Any, *, bare: str) -> dict[str, np.ndarray]:
     """One named host array per leaf of ``tree``: ``{"beta": ..., "sigma": ...}``; a
     tuple position gives ``"0"``, ``"1"``; a bare array is named ``bare``."""
     out: dict[str, np.ndarray] = {}
     for path, leaf in jax.tree_util.tree_flatten_with_path(tree)[0]:
-        out[_path_label(path) or bare] = np.asarray(leaf)
+        out[".".join(path_parts(path, index="{}")) or bare] = np.asarray(leaf)
     return out
 
 

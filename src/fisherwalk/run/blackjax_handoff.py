@@ -90,10 +90,6 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     parameters = {"step_size": float(tuning.step_size),
                   "inverse_mass_matrix": np.asarray(tuning.inverse_mass_matrix)}
     if kind == "hmc":
-        values, probabilities = _steps_law(tuning.step_size)
+        values, probabilities = hmc_steps_law(tuning.step_size)
         parameters["num_integration_steps"] = int(round(float(values @ probabilities)))
     return walker.states, parameters
-
-
-def _steps_law(step_size: float):
-    return hmc_steps_law(step_size)

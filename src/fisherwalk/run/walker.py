@@ -32,6 +32,7 @@ import numpy as np
 from blackjax.mcmc.hmc import HMCState
 from blackjax.mcmc.mala import MALAState
 from blackjax.mcmc.random_walk import RWState
+from scipy.linalg import solve_triangular
 
 from ..base import pytrees
 from ..errors import InputError, SamplingError, explain
@@ -332,7 +333,11 @@ class Walker(NamedTuple):
         logdensity = jnp.asarray(self.state.logdensity)
         if not self.gradient:
             return RWState(positions, logdensity)
-        grads = jax.vmap(jax.grad(self.model.logdensity_fn))(positions)
+        # the state keeps ∇_z = Wᵀ ∇_θ (row form ∇_θ W): solve for ∇_θ on the host
+        whitening = np.asarray(self.model.engine.whitening)
+        grad_flat = solve_triangular(whitening, np.asarray(self.state.logdensity_grad).T,
+                                     lower=True, trans="T").T
+        grads = jax.tree.map(jnp.asarray, self.unravel_many(grad_flat))
         return _gradient_states(
             self.tuning.sampler, positions, logdensity, grads)
 
