@@ -60,6 +60,7 @@ def settings(trace) -> dict[str, Any]:
     from importlib.metadata import PackageNotFoundError, version
 
     tuning = trace.walker.tuning
+    parameter, value = tuning.parameter
     try:
         release = version("fisherwalk")
     except PackageNotFoundError:  # pragma: no cover - a source checkout
@@ -68,7 +69,7 @@ def settings(trace) -> dict[str, Any]:
         "created_by": "fisherwalk",
         "fisherwalk_version": release,
         "sampler": "random-walk Metropolis",
-        "scale": float(tuning.scale),
+        parameter: float(value),
         "target_acceptance": float(tuning.target_acceptance),
         "shape_kind": str(tuning.shape_kind),
         "thin": int(trace.thin),
