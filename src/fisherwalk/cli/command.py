@@ -252,7 +252,7 @@ def _options(args) -> dict:
     return {
         "seed": args.seed, "chains": args.chains, "draws": args.draws,
         "warmup_steps": args.warmup, "thin": args.thin, "shape": "fisher",
-        "sampler": getattr(args, "sampler", "rwm"),
+        "sampler": vars(args).get("sampler", registry.DEFAULT),
         "criterion": "slowest",
         "laplace": {"max_iterations": defaults.get("max_iterations"),
                     "gradient_tolerance": defaults.get("gradient_tolerance") or math.sqrt(eps),
