@@ -243,3 +243,49 @@ def test_a_family_defined_here_runs_through_the_whole_workflow(textbook, tmp_pat
     assert data.posterior["x"].shape == (2, 2000, 3)
     assert data.sample_stats.attrs["scale"] == walker.tuning.scale
     assert "textbook" in registry.choices()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", registry.gradient_names())
+def test_gradient_chains_go_over_devices_automatically(name):
+    # Before the registry a gradient walker had no device placement at all. Four host
+    # devices (a fresh process: XLA_FLAGS is read at jax's import). Tolerance as in
+    # tests/test_devices.py: the same keys per chain; a batch of 1 chain may be reduced in
+    # another order than a batch of 4 (about 1e-12), which travels with the chain.
+    import os
+    import subprocess
+    import sys
+    import textwrap
+    from pathlib import Path
+
+    code = textwrap.dedent(f"""
+        import json
+        import jax, jax.numpy as jnp, numpy as np
+        import fisherwalk as fw
+        from fisherwalk.run.devices import spread_chains, chain_devices
+        A = jnp.array({PRECISION.tolist()})
+        def ld(p):
+            x = p - jnp.array({MEAN.tolist()})
+            return -0.5 * x @ A @ x
+        w = fw.start(ld, jnp.zeros(3), jax.random.key(1), chains=4, sampler="{name}")
+        held = sorted(s.data.shape[0] for s in
+                      w.model.engine.run(jax.random.key(9), 0, w.state,
+                                         __import__("fisherwalk.run.gradient",
+                                         fromlist=["control"]).control(
+                                             w.tuning.step_size), 2).state.position
+                      .addressable_shards)
+        t4 = fw.walk(w, jax.random.key(3), draws=60)
+        t1 = fw.walk(spread_chains(w, 1), jax.random.key(3), draws=60)
+        print(json.dumps({{"auto": chain_devices(w), "held": held,
+                          "draws": float(np.abs(t4.flat - t1.flat).max())}}))
+    """)
+    root = Path(__file__).resolve().parents[1]
+    env = dict(os.environ, XLA_FLAGS="--xla_force_host_platform_device_count=4",
+               JAX_ENABLE_X64="1")
+    env["PYTHONPATH"] = os.pathsep.join([str(root / "src"), env.get("PYTHONPATH", "")])
+    done = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                          text=True, timeout=400)
+    assert done.returncode == 0, done.stderr[-3000:]
+    out = json.loads(done.stdout.strip().splitlines()[-1])
+    assert out["auto"] == 4 and out["held"] == [1, 1, 1, 1]
+    assert out["draws"] <= 1e-8
