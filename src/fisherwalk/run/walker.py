@@ -313,7 +313,7 @@ class Walker(NamedTuple):
         random walk with the proposal factor as ``sigma``; ``blackjax.hmc`` or
         ``blackjax.nuts`` with ``inverse_mass_matrix = S Sᵀ``; ``blackjax.mala`` on the
         log density as given (BlackJAX's MALA takes no metric: see
-        :func:`fisherwalk.blackjax_parameters` for the whitened problem)."""
+        :func:`fisherwalk.handoff` for the whitened problem)."""
         t = self.tuning
         if not self.gradient:
             return proposal.blackjax_algorithm(self.model.logdensity_fn, t.factor)
