@@ -5,6 +5,7 @@ The public names are the ones below; everything in the sub-packages (``base``,
 ``theory``, ``fit``, ``results``, ``run``, ``cli``) is internal and may change.
 """
 
+from .base.shards import sharded_logdensity
 from .errors import (
     CheckpointError,
     FisherwalkError,
@@ -17,13 +18,17 @@ from .errors import (
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
+from .results.report import Summary
 from .results.trace import Trace
 from .run.blackjax_handoff import handoff
+from .run.devices import spread_chains
+from .run.engine import ChainState
+from .run.plan import RunLength
 from .run.resume import resume
 from .run.sampling import walk
 from .run.start import start
 from .run.tuningfile import SavedTuning, load_tuning, save_tuning
-from .run.walker import Tuning, Walker
+from .run.walker import LaplaceCheck, StartReport, Tuning, Walker
 from .run.warmup import WarmupReport, refine
 from .theory.randomwalk import ScaleChoice, optimal_scale
 
@@ -49,13 +54,20 @@ __all__ = [
     "save_tuning",
     "load_tuning",
     "handoff",
+    "spread_chains",
+    "sharded_logdensity",
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",
     "SavedTuning",
     "Walker",
+    "ChainState",
+    "StartReport",
+    "LaplaceCheck",
     "WarmupReport",
     "Trace",
+    "RunLength",
+    "Summary",
     "FisherwalkError",
     "InputError",
     "ModelError",

@@ -1,4 +1,4 @@
-"""How a :class:`fisherwalk.report.Summary` is printed: header, tables, warnings.
+"""How a :class:`fisherwalk.Summary` is printed: header, tables, warnings.
 
 Every number a warning quotes is formatted here and in :mod:`fisherwalk.results.alerts` the
 same way (R-hat with enough decimals to sit on the right side of its threshold, ESS

@@ -41,10 +41,16 @@ GAIN_EXPONENT = 0.6  # in (1/2, 1]: the Robbins-Monro conditions sum gain = inf,
 
 
 class ChainState(NamedTuple):
-    """All chains' states, ravelled: the carry between chunks."""
+    """All chains' states, ravelled: the carry between chunks, for every sampler family.
 
-    position: jax.Array  # (chains, d)
+    The random walk carries position and log density; a gradient family (whose chains
+    run on the whitened posterior, :mod:`fisherwalk.run.gradient`) carries z, the log
+    density and its gradient with respect to z.
+    """
+
+    position: jax.Array  # (chains, d): theta (random walk) or whitened z (gradient families)
     logdensity: jax.Array  # (chains,)
+    logdensity_grad: jax.Array | None = None  # (chains, d) gradient w.r.t. z, or None
 
 
 class Control(NamedTuple):
@@ -86,8 +92,9 @@ def _compiled(logdensity_flat: Callable) -> tuple[Callable, Callable]:
         def step(carry, inputs):
             flat_state, log_m, faults, n_acc, rate_sum = carry
             z, u, t = inputs
-            new_state, info = vstep(proposal.FlatState(*flat_state), z, u, logdensity_flat,
-                                    factor, jnp.exp(log_m))
+            new_state, info = vstep(
+                proposal.FlatState(flat_state.position, flat_state.logdensity), z, u,
+                logdensity_flat, factor, jnp.exp(log_m))
             gain = control.rate * (control.adapt_step + t + 1.0) ** (-GAIN_EXPONENT)
             log_m = log_m + gain * (jnp.mean(info.acceptance_rate) - control.target)
             return (

@@ -48,20 +48,13 @@ from scipy.linalg import solve_triangular
 
 from ..base.meshes import chain_placement
 from ..theory.gradient import INTEGRATION_TIME
+from .engine import ChainState  # the one chain state: here z, log density, ∇_z
 
 MAX_INTEGRATION_STEPS = 1024  # HMC: cap on leapfrog steps per transition (NUTS's 2^10)
 # Dual averaging's gamma: Hoffman & Gelman (2014) use 0.05 with a step size from a doubling
 # heuristic; started at the theory value, 0.2 explores less (measured: see the warm-up).
 DUAL_AVERAGING_GAMMA = 0.2
 _HIGHEST = jax.lax.Precision.HIGHEST
-
-
-class ChainState(NamedTuple):
-    """All chains' states in whitened coordinates: the carry between calls."""
-
-    position: jax.Array  # (chains, d) z, with theta = mode + W z
-    logdensity: jax.Array  # (chains,) log density (finite at every kept state)
-    logdensity_grad: jax.Array  # (chains, d) gradient with respect to z (= Wᵀ ∇_theta)
 
 
 class StepControl(NamedTuple):
@@ -283,7 +276,7 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
         if placement is None:
             return compiled(rng_key, np.int64(first_step), state, control, mode_device,
                             whitening_device, draws=int(draws), thin=int(thin))
-        state = type(state)(*(placement.put(x, 0) for x in state))
+        state = jax.tree.map(lambda x: placement.put(x, 0), state)
         control = jax.tree.map(lambda x: placement.put(x, None), control)
         out = compiled(rng_key, np.int64(first_step), state, control, mode_device,
                        whitening_device, draws=int(draws), thin=int(thin))

@@ -303,7 +303,7 @@ def _show(bar, collector, total, elapsed, first_done, round_number, planned) -> 
 def _trace(walker, collector, state, thin, key, seconds, *, complete, length=None) -> Trace:
     flat = collector.flat
     tree = walker.unravel_many(flat) if flat.shape[1] else None
-    final = walker._replace(state=type(state)(*(np.asarray(part) for part in state)))
+    final = walker._replace(state=jax.tree.map(np.asarray, state))
     gradient = walker.family.evaluation == "gradient"
     return Trace(tree, collector.logdensity, collector.accepted, final, flat,
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,

@@ -207,4 +207,4 @@ def continuable_state(walker: Walker, where: str):
                 "start the chains where the log density is finite (fisherwalk.start does).",
             )
         )
-    return type(walker.state)(*(np.asarray(part) for part in walker.state))
+    return jax.tree.map(np.asarray, walker.state)

@@ -544,7 +544,7 @@ def predicted_ess_per_evaluation(sampler: str, dim: int) -> float:
     An evaluation is one log density for ``"rwm"`` and one gradient (with its value)
     for the others, so multiply by the measured cost of each to compare. For the
     gradient samplers this is ``optimal_gradient_step(sampler, dim).ess_per_gradient``.
-    For the random walk at its optimal matched scale (fisherwalk.scaling), with the
+    For the random walk at its optimal matched scale (fisherwalk.optimal_scale), with the
     exact ρ₁ = 1 − J/(2d): ESS per step (1 − ρ₁)/(1 + ρ₁). Its x_i² is not slower: in the
     diffusion limit (Roberts, Gelman & Gilks 1997) x_i² − 1 decays twice as fast as x_i.
     """

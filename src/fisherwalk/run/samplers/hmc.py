@@ -8,7 +8,7 @@ exact law of n). The compiled loop draws n once per step for all chains
 (:func:`fisherwalk.run.gradient.integration_steps`).
 
 One rule for a FIXED number of steps, wherever BlackJAX's own ``blackjax.hmc`` is handed
-the tuning (``walker.algorithm``, :func:`fisherwalk.blackjax_parameters`,
+the tuning (``walker.algorithm``, :func:`fisherwalk.run.handoff.blackjax_parameters`,
 :func:`fisherwalk.handoff`): :func:`fixed_integration_steps`, the expected jittered count
 at the tuned step, rounded.
 """

@@ -14,7 +14,6 @@ not on the original coordinates.
 from __future__ import annotations
 
 import blackjax
-import jax
 import jax.numpy as jnp
 from blackjax.mcmc.mala import MALAState
 
@@ -49,7 +48,8 @@ def _blackjax(logdensity_fn, tuning, engine):
 
 
 def _states(positions, logdensity, engine, state, unravel_many):
-    return MALAState(*(jax.numpy.asarray(part) for part in state))
+    return MALAState(*(jnp.asarray(part) for part in
+                       (state.position, state.logdensity, state.logdensity_grad)))
 
 
 FAMILY = step_family(
