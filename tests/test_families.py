@@ -121,6 +121,11 @@ def test_to_arviz_for_every_family(walkers, name):
     assert data.posterior["x"].shape == (2, 30, 3)
     parameter = walkers[name].family.parameter
     assert data.sample_stats.attrs[parameter] == getattr(walkers[name].tuning, parameter)
+    # HMC and NUTS carry their Hamiltonian, so that arviz.bfmi works (MALA has none)
+    assert (trace.energy is not None) == (name in ("hmc", "nuts"))
+    if trace.energy is not None:
+        import arviz
+        assert np.all(np.isfinite(arviz.bfmi(data)))
 
 
 @pytest.mark.parametrize("name", FAMILIES)

@@ -118,6 +118,8 @@ def to_arviz(trace):
     divergent = getattr(trace, "divergent", None)  # gradient samplers will carry it
     if divergent is not None:
         stats["diverging"] = np.asarray(divergent, dtype=bool)
+    if trace.energy is not None:  # HMC and NUTS: what arviz.bfmi reads
+        stats["energy"] = np.asarray(trace.energy)
     groups: dict[str, Any] = {"posterior": posterior, "sample_stats": stats}
     dims = {}
     if trace.pointwise is not None:

@@ -236,19 +236,32 @@ def control(*, log_multiplier=0.0, target=0.0, rate=0.0, adapt_step=0, dtype=np.
     )
 
 
+def chunk_loop(call: Callable, carry, draws: int, *, chunk: int = DEFAULT_CHUNK,
+               thin: int = 1, done: int = 0) -> Iterator[tuple[int, object]]:
+    """The one chunk loop of every family: kept draws ``done .. draws`` in calls of ``chunk``.
+
+    ``call(first_step, carry, draws, thin) -> (output, carry)`` advances the chains by one
+    compiled call starting at global step ``first_step`` (so that a family's random
+    numbers can belong to the step alone); ``carry`` is what the next call continues from
+    (the chains' state, and whatever adapts). Yields ``(keep, output)`` per call, ``keep``
+    being how many of the call's draws belong to the run (the last call may overshoot).
+    ``done`` must be a multiple of ``chunk``.
+    """
+    for k in range(-(-done // chunk), -(-draws // chunk)):
+        out, carry = call(k * chunk * thin, carry, chunk, thin)
+        yield min(chunk, draws - k * chunk), out
+
+
 def run_chunks(engine: Callable, noise_key, state: ChainState, factor, ctrl: Control,
                draws: int, *, chunk: int = DEFAULT_CHUNK, thin: int = 1,
                done: int = 0) -> Iterator[tuple[int, Chunk]]:
-    """The one chunk loop: advance kept draws ``done .. draws`` in calls of ``chunk``.
+    """The random walk's chunks (:func:`chunk_loop`): between calls the chains continue
+    from the call's end and the adaptation from its multiplier and step count, all on the
+    device."""
+    def call(first, carry, n, steps_per_draw):
+        state, ctrl = carry
+        out = engine(noise_key, first, state, factor, ctrl, n, steps_per_draw)
+        return out, (out.state, ctrl._replace(log_multiplier=out.log_multiplier,
+                                              adapt_step=ctrl.adapt_step + n * steps_per_draw))
 
-    Yields ``(keep, chunk_output)`` per call, ``keep`` being how many of the call's
-    draws belong to the run (the last call may overshoot). Between calls the chains
-    continue from the call's end and the adaptation continues from its multiplier and
-    step count, all on the device. ``done`` must be a multiple of ``chunk``.
-    """
-    for k in range(-(-done // chunk), -(-draws // chunk)):
-        out = engine(noise_key, k * chunk * thin, state, factor, ctrl, chunk, thin)
-        yield min(chunk, draws - k * chunk), out
-        state = out.state
-        ctrl = ctrl._replace(log_multiplier=out.log_multiplier,
-                             adapt_step=ctrl.adapt_step + chunk * thin)
+    return chunk_loop(call, (state, ctrl), draws, chunk=chunk, thin=thin, done=done)

@@ -77,6 +77,7 @@ class GradientChunk(NamedTuple):
     gradients: jax.Array  # (draws, chains) int: gradient evaluations over the thin steps
     faults: jax.Array  # (draws, chains) int: flagged transitions (module docstring)
     step_size: jax.Array  # (draws,) step size used at the last step of each kept draw
+    energy: jax.Array  # (draws, chains) Hamiltonian energy at the kept state (HMC, NUTS; MALA NaN)
 
 
 class GradientEngine(NamedTuple):
@@ -189,34 +190,35 @@ def _compiled(transition: Callable, logdensity_flat: Callable, chains: int, targ
         vstep = jax.vmap(transition, in_axes=(0, 0, None, None, None))
 
         def one_step(carry, step):
-            chain, ctrl, acc, div, grads, faults = carry
+            chain, ctrl, acc, div, grads, faults, _ = carry
             eps = jnp.where(ctrl.adapt, jnp.exp(ctrl.dual.log_step_size), ctrl.step_size)
             key_jitter, keys = step_keys(rng_key, step, chains)
             n_steps = integration_steps(key_jitter, eps)
-            new, (rate, divergent, n_grad, fault) = vstep(keys, tuple(chain), logp, eps, n_steps)
+            new, (rate, divergent, n_grad, fault, energy) = vstep(keys, tuple(chain), logp, eps,
+                                                                   n_steps)
             updated = dual_update(ctrl.dual, jnp.mean(rate))
             dual = jax.tree.map(lambda a, b: jnp.where(ctrl.adapt, a, b).astype(b.dtype),
                                 updated, ctrl.dual)
             carry = (ChainState(*new), ctrl._replace(dual=dual), acc + rate,
                      div + divergent.astype(jnp.int32), grads + n_grad,
-                     faults + fault.astype(jnp.int32))
+                     faults + fault.astype(jnp.int32), energy.astype(acc.dtype))
             return carry, eps
 
         def kept(carry, index):
             chain, ctrl = carry
             zeros = jnp.zeros(chains, dtype=chain.logdensity.dtype)
             counts = jnp.zeros(chains, dtype=jnp.int32)
-            inner = (chain, ctrl, zeros, counts, counts, counts)
+            inner = (chain, ctrl, zeros, counts, counts, counts, zeros)
             if thin == 1:  # no inner loop: one step per kept draw
                 inner, eps = one_step(inner, first_step + index)
             else:
                 steps = first_step + index * thin + jnp.arange(thin)
                 inner, eps = jax.lax.scan(one_step, inner, steps)
                 eps = eps[-1]
-            chain, ctrl, acc, div, grads, faults = inner
+            chain, ctrl, acc, div, grads, faults, energy = inner
             theta = mode + jnp.dot(chain.position, whitening.T, precision=_HIGHEST)
             return (chain, ctrl), (theta, chain.logdensity, acc / thin, div, grads, faults,
-                                   eps)
+                                   eps, energy)
 
         (final, ctrl), outs = jax.lax.scan(kept, (state, control), jnp.arange(draws))
         return GradientChunk(final, ctrl, *outs)
@@ -237,7 +239,8 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
     transition
         ``transition(max_num_doublings)`` returns one chain's step with the family's
         BlackJAX kernel: ``step(key, state, logp, step_size, n_steps) -> (new state
-        fields, (acceptance rate, divergent, gradient evaluations, fault))``, ``n_steps``
+        fields, (acceptance rate, divergent, gradient evaluations, fault, energy))``, the
+        energy being the Hamiltonian at the state kept (NaN for a kernel without one), ``n_steps``
         being HMC's jittered leapfrog count (:func:`integration_steps`; ignored by the
         kernels that do not take it). The families define theirs
         (:mod:`fisherwalk.run.samplers`).

@@ -27,9 +27,9 @@ from .progress import progress_bar
 from .walker import Walker, continuable_state
 
 _FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")  # what a chunk may carry (the last two: gradient samplers only)
+           "gradients", "energy")  # what a chunk may carry (the last three: gradient families)
 _ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")
+           "gradients", "energy")
 
 
 class _Collector:
@@ -43,11 +43,14 @@ class _Collector:
         self.faults = np.zeros((chains, draws), dtype=np.int32)
         self.divergent = np.zeros((chains, draws), dtype=np.int32)
         self.gradients = np.zeros((chains, draws), dtype=np.int32)
+        self.energy = np.full((chains, draws), np.nan, dtype=dtype)
+        self.has_energy = False  # set when a chunk carries the Hamiltonian (HMC, NUTS)
         self.done = 0
 
     def add(self, chunk: Chunk, keep: int) -> None:
         s = slice(self.done, self.done + keep)
         names = [n for n in _FIELDS if getattr(chunk, n, None) is not None]
+        self.has_energy = self.has_energy or "energy" in names
         host = jax.device_get(tuple(getattr(chunk, n) for n in names))
         for name, value in zip(names, host, strict=True):
             getattr(self, "flat" if name == "position" else name)[:, s] = np.swapaxes(
@@ -309,4 +312,5 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
                  complete, length=length,
                  divergent=collector.divergent if gradient else None,
-                 gradients=collector.gradients if gradient else None)
+                 gradients=collector.gradients if gradient else None,
+                 energy=collector.energy if collector.has_energy else None)

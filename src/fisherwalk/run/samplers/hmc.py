@@ -36,7 +36,10 @@ def kernel(max_num_doublings: int):
         metric = jnp.ones_like(state[0])
         new, info = build(key, HMCState(*state), logp, step_size, metric, n_steps)
         fault = jnp.isnan(info.proposal.logdensity)
-        return tuple(new), (info.acceptance_rate, info.is_divergent, n_steps, fault)
+        # info.energy is the trajectory end's; a rejected step keeps the start's
+        start = -state[1] + 0.5 * jnp.sum(info.momentum**2)
+        energy = jnp.where(info.is_accepted, info.energy, start)
+        return tuple(new), (info.acceptance_rate, info.is_divergent, n_steps, fault, energy)
 
     return step
 

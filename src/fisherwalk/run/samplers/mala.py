@@ -32,7 +32,9 @@ def kernel(max_num_doublings: int):
     def step(key, state, logp, step_size, n_steps):
         new, info = build(key, MALAState(*state), logp, step_size)
         fault = info.acceptance_rate == 0
-        return tuple(new), (info.acceptance_rate, jnp.zeros((), bool), jnp.int32(1), fault)
+        no_energy = jnp.full((), jnp.nan, new.logdensity.dtype)  # MALA has no Hamiltonian
+        return tuple(new), (info.acceptance_rate, jnp.zeros((), bool), jnp.int32(1), fault,
+                            no_energy)
 
     return step
 
@@ -65,4 +67,5 @@ FAMILY = step_family(
     blackjax_parameters=lambda tuning: {"step_size": float(tuning.step_size)},
     blackjax_api=blackjax.mala,
     blackjax_takes_metric=False,
+    energy=False,
 )

@@ -31,7 +31,7 @@ def kernel(max_num_doublings: int):
         fault = (jnp.isnan(info.trajectory_leftmost_state.logdensity)
                  | jnp.isnan(info.trajectory_rightmost_state.logdensity))
         return tuple(new), (info.acceptance_rate, info.is_divergent,
-                            info.num_integration_steps.astype(jnp.int32), fault)
+                            info.num_integration_steps.astype(jnp.int32), fault, info.energy)
 
     return step
 

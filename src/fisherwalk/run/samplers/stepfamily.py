@@ -23,7 +23,7 @@ from scipy.linalg import solve_triangular
 
 from ...theory.gradient import optimal_gradient_step, predicted_ess_per_evaluation
 from .. import gradient
-from ..engine import DEFAULT_CHUNK
+from ..engine import DEFAULT_CHUNK, chunk_loop
 from ..gradient_checks import check_gradients
 from ..stepsize import warm_up
 from .family import Family, Phase, Settled
@@ -42,6 +42,7 @@ class ChunkView(NamedTuple):
     faults: Any  # (draws, chains) flagged transitions
     divergent: Any  # (draws, chains) divergent transitions
     gradients: Any  # (draws, chains) gradient evaluations
+    energy: Any = None  # (draws, chains) Hamiltonian energy at the kept draw (HMC, NUTS)
 
 
 def _engine(name: str, kernel: Callable):
@@ -62,17 +63,26 @@ def _positions(engine, state) -> np.ndarray:
     return engine.mode + np.asarray(state.position) @ np.asarray(engine.whitening).T
 
 
+def _chunks_with(energy: bool):
+    def chunks(engine, tuning, key, state, draws, chunk, thin, done):
+        for keep, view in _chunks(engine, tuning, key, state, draws, chunk, thin, done):
+            yield keep, view if energy else view._replace(energy=None)
+    return chunks
+
+
 def _chunks(engine, tuning, key, state, draws, chunk, thin, done):
     """walk()'s chunks: step ``s`` takes its randomness from ``fold_in(key, 0)`` and s."""
     run_key = jax.random.fold_in(key, 0)
     dtype = np.asarray(state.logdensity).dtype
     ctrl = gradient.control(tuning.step_size, adapt=False, dtype=dtype)
-    for k in range(-(-done // chunk), -(-draws // chunk)):
-        out = engine.run(run_key, k * chunk * thin, state, ctrl, chunk, thin)
-        state = out.state
-        yield min(chunk, draws - k * chunk), ChunkView(
-            out.state, out.position, out.logdensity, out.acceptance_rate,
-            out.acceptance_rate, out.faults, out.divergent, out.gradients)
+
+    def call(first, state, n, steps_per_draw):
+        out = engine.run(run_key, first, state, ctrl, n, steps_per_draw)
+        return ChunkView(out.state, out.position, out.logdensity, out.acceptance_rate,
+                         out.acceptance_rate, out.faults, out.divergent, out.gradients,
+                         out.energy), out.state
+
+    return chunk_loop(call, state, draws, chunk=chunk, thin=thin, done=done)
 
 
 def _phase(context, key, state, steps) -> Phase:
@@ -138,8 +148,10 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
                 target_acceptance: Callable[[Any], float], blackjax: Callable,
                 blackjax_states: Callable, blackjax_parameters: Callable,
                 blackjax_api: Any, blackjax_takes_metric: bool = True,
-                words: Callable[[Any], str] = lambda tuning: "") -> Family:
-    """A gradient family from its kernel, its target and its BlackJAX form."""
+                words: Callable[[Any], str] = lambda tuning: "",
+                energy: bool = True) -> Family:
+    """A gradient family from its kernel, its target and its BlackJAX form; ``energy``:
+    whether its kernel has a Hamiltonian (HMC, NUTS), which walk() then records."""
     def choice(tuning):
         return optimal_gradient_step(name, tuning.dim)
 
@@ -157,7 +169,7 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
         ess_per_step=ess_per_step,
         ess_per_evaluation=lambda dim: predicted_ess_per_evaluation(name, dim),
         describe=_describe(name, words), engine=engine, init=_init, positions=_positions,
-        chunks=_chunks, stores_state=True, phase=_phase, reshape=_reshape(engine),
+        chunks=_chunks_with(energy), stores_state=True, phase=_phase, reshape=_reshape(engine),
         settle=_settle, covariance_of_squares=True, blackjax=blackjax,
         blackjax_states=blackjax_states, blackjax_parameters=blackjax_parameters,
         blackjax_api=blackjax_api, blackjax_takes_metric=blackjax_takes_metric,
