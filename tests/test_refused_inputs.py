@@ -278,6 +278,8 @@ CASES = [
      _tuning_asymmetric, fisherwalk.InputError, "not symmetric"),
     ("load_tuning / resume", "a tuning record with a scale that is not positive",
      _tuning_edited("scale", -1.0), fisherwalk.InputError, "tuning.scale"),
+    ("load_tuning / resume", "a tuning record naming a sampler family that is not registered",
+     _tuning_edited("sampler", "slice"), fisherwalk.InputError, "registered sampler family"),
     ("load_tuning / resume", "a tuning record with a target acceptance outside (0, 1)",
      _tuning_edited("target_acceptance", 7.5), fisherwalk.InputError,
      "tuning.target_acceptance"),

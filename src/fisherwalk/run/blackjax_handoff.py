@@ -74,7 +74,7 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     if not family.blackjax_takes_metric:
         raise InputError(explain(
             f"BlackJAX's {family.label} takes no metric, so the Fisher metric cannot be "
-            "handed to it.", "handoff(algorithm=...)",
+            "handed to it.", f"handoff(algorithm=blackjax.{family.name})",
             f'use fisherwalk.start(..., sampler="{family.name}") (it runs on the whitened '
             "posterior), or hand off blackjax.nuts or blackjax.hmc instead."))
     key = as_key(rng_key, where="handoff(rng_key=...)")
