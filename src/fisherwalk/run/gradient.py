@@ -43,12 +43,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from blackjax.adaptation.step_size import DualAveragingAdaptationState
-from scipy.linalg import cholesky as _host_cholesky
-from scipy.linalg import solve_triangular
 
 from ..base.meshes import chain_placement
 from ..theory.gradient import INTEGRATION_TIME
 from .engine import ChainState  # the one chain state: here z, log density, ∇_z
+from .metric import to_whitened, whitening_factor  # noqa: F401  (re-exported: older callers)
 
 MAX_INTEGRATION_STEPS = 1024  # HMC: cap on leapfrog steps per transition (NUTS's 2^10)
 # Dual averaging's gamma: Hoffman & Gelman (2014) use 0.05 with a step size from a doubling
@@ -94,27 +93,6 @@ class GradientEngine(NamedTuple):
     evaluate: Callable  # (m, d) original positions -> (log density (m,), gradient (m, d))
     transition: Callable  # one chain's step (the family's kernel, see make_gradient_engine)
     placement: Any = None  # where the chains run (base.meshes.ChainPlacement; None: one device)
-
-
-def whitening_factor(cholesky) -> np.ndarray:
-    """W = lower Cholesky factor of H⁻¹ from L (L Lᵀ = H), computed on the host.
-
-    H⁻¹ = L⁻ᵀ L⁻¹ is formed by one triangular solve; W is what BlackJAX computes from a
-    dense ``inverse_mass_matrix`` (``metrics.gaussian_euclidean``), which makes the
-    whitened chains match BlackJAX's original-coordinate ones key for key.
-    """
-    chol = np.asarray(cholesky)
-    shape = solve_triangular(chol, np.eye(chol.shape[0], dtype=chol.dtype), lower=True).T
-    inverse = shape @ shape.T
-    return _host_cholesky(0.5 * (inverse + inverse.T), lower=True)
-
-
-def to_whitened(positions, mode, whitening) -> np.ndarray:
-    """(..., d) original positions -> whitened z = W⁻¹ (theta - mode), on the host."""
-    centred = np.asarray(positions) - np.asarray(mode)
-    flat = centred.reshape(-1, centred.shape[-1])
-    z = solve_triangular(np.asarray(whitening), flat.T, lower=True).T
-    return z.reshape(centred.shape)
 
 
 def whitened_logdensity(logdensity_flat: Callable, *, record: Callable | None = None):
@@ -227,7 +205,7 @@ def _compiled(transition: Callable, logdensity_flat: Callable, chains: int, targ
 
 
 def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Callable, mode,
-                         cholesky, chains: int, *, target_acceptance: float,
+                         whitening, chains: int, *, target_acceptance: float,
                          max_num_doublings: int = 10, gamma: float = DUAL_AVERAGING_GAMMA,
                          devices: Any = None) -> GradientEngine:
     """Build a gradient sampler's compiled loop (compiles once per (draws, thin) pair).
@@ -246,8 +224,9 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
         (:mod:`fisherwalk.run.samplers`).
     logdensity_flat
         The log posterior on the ravelled position, ``(d,) -> scalar``; pure JAX.
-    mode, cholesky
-        The Laplace fit: mode (d,) and lower L with L Lᵀ = H.
+    mode, whitening
+        The centre (d,) and the metric's whitening factor W (lower, W Wᵀ = the inverse
+        mass matrix; :meth:`fisherwalk.run.metric.Metric.factor`): theta = mode + W z.
     chains
         Number of chains.
     target_acceptance
@@ -268,7 +247,7 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
         (``rng_key`` a typed JAX key), and returns a :class:`GradientChunk`.
     """
     mode = np.asarray(mode)
-    whitening = whitening_factor(cholesky).astype(mode.dtype)
+    whitening = np.asarray(whitening).astype(mode.dtype)
     step = transition(int(max_num_doublings))
     compiled = _compiled(step, logdensity_flat, chains, float(target_acceptance),
                          float(gamma))

@@ -22,9 +22,9 @@ from .gradient import (
     StepControl,
     integration_steps,
     step_keys,
-    to_whitened,
     whitened_logdensity,
 )
+from .metric import to_whitened
 
 
 def _nonfinite_message(names, theta, value, grad) -> str:

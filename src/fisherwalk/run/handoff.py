@@ -17,7 +17,8 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from ..errors import InputError, explain
-from .gradient import whitened_logdensity, whitening_factor
+from .gradient import whitened_logdensity
+from .metric import whitening_factor
 from .samplers import registry
 from .tuning import Tuning
 

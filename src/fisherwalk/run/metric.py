@@ -18,15 +18,37 @@ from __future__ import annotations
 from typing import NamedTuple
 
 import numpy as np
+from scipy.linalg import cholesky as _host_cholesky
 from scipy.linalg import solve_triangular
 
-__all__ = ["Metric", "spectrum_of"]
+__all__ = ["Metric", "spectrum_of", "whitening_factor", "to_whitened"]
 
 
 def spectrum_of(shape, cholesky) -> np.ndarray:
     """Eigenvalues of A = Sᵀ P S with P = L Lᵀ: the squared singular values of Lᵀ S."""
     m = np.asarray(cholesky).T @ np.asarray(shape)
     return np.sort(np.linalg.svd(m, compute_uv=False) ** 2)
+
+
+def whitening_factor(cholesky) -> np.ndarray:
+    """W = lower Cholesky factor of H⁻¹ from L (L Lᵀ = H), computed on the host.
+
+    H⁻¹ = L⁻ᵀ L⁻¹ is formed by one triangular solve; W is what BlackJAX computes from a
+    dense ``inverse_mass_matrix`` (``metrics.gaussian_euclidean``), which makes the
+    whitened chains match BlackJAX's original-coordinate ones key for key.
+    """
+    chol = np.asarray(cholesky)
+    shape = solve_triangular(chol, np.eye(chol.shape[0], dtype=chol.dtype), lower=True).T
+    inverse = shape @ shape.T
+    return _host_cholesky(0.5 * (inverse + inverse.T), lower=True)
+
+
+def to_whitened(positions, mode, whitening) -> np.ndarray:
+    """(..., d) original positions -> whitened z = W⁻¹ (theta - mode), on the host."""
+    centred = np.asarray(positions) - np.asarray(mode)
+    flat = centred.reshape(-1, centred.shape[-1])
+    z = solve_triangular(np.asarray(whitening), flat.T, lower=True).T
+    return z.reshape(centred.shape)
 
 
 class Metric(NamedTuple):
@@ -58,12 +80,15 @@ class Metric(NamedTuple):
             return np.asarray(self.whitening)
         return np.linalg.cholesky(np.linalg.inv(self.inverse_mass_matrix))
 
+    def factor(self, matched: bool) -> np.ndarray:
+        """W, lower, W Wᵀ = S Sᵀ: the whitening map theta = mode + W z of the samplers
+        that run on z (from the precision's factor, as BlackJAX takes it from a dense
+        inverse mass matrix)."""
+        return whitening_factor(self.precision_cholesky(matched))
+
     def whiten(self, positions, mode, factor) -> np.ndarray:
         """(..., d) theta -> z = W⁻¹ (theta - mode), W = ``factor`` (lower), on the host."""
-        centred = np.asarray(positions) - np.asarray(mode)
-        flat = centred.reshape(-1, centred.shape[-1])
-        z = solve_triangular(np.asarray(factor), flat.T, lower=True).T
-        return z.reshape(centred.shape)
+        return to_whitened(positions, mode, factor)
 
     def unwhiten(self, z, mode, factor) -> np.ndarray:
         """(..., d) z -> theta = mode + W z, on the host."""

@@ -15,6 +15,7 @@ import numpy as np
 from ...errors import InputError, explain
 from ...theory.gradient import optimal_gradient_step
 from .. import gradient
+from ..metric import whitening_factor
 from . import hmc, mala, nuts, randomwalk
 from .family import Family
 
@@ -88,9 +89,9 @@ def gradient_engine(name: str, logdensity_flat, mode, cholesky, chains: int, *,
                                  f"use one of {', '.join(map(repr, gradient_names()))}."))
     if target_acceptance is None:
         target_acceptance = optimal_gradient_step(name, int(np.shape(mode)[0])).acceptance
-    return gradient.make_gradient_engine(name, entry.kernel, logdensity_flat, mode, cholesky,
-                                         chains, target_acceptance=target_acceptance,
-                                         **options)
+    return gradient.make_gradient_engine(name, entry.kernel, logdensity_flat, mode,
+                                         whitening_factor(cholesky), chains,
+                                         target_acceptance=target_acceptance, **options)
 
 
 def gradient_names() -> tuple[str, ...]:

@@ -49,7 +49,7 @@ def _engine(name: str, kernel: Callable):
     def build(flat_logdensity, tuning, mode_flat, chains, devices=None):
         return gradient.make_gradient_engine(
             name, kernel, flat_logdensity, np.asarray(mode_flat),
-            tuning.metric.precision_cholesky(tuning.matched), int(chains),
+            tuning.metric.factor(tuning.matched), int(chains),
             target_acceptance=tuning.choice.acceptance, devices=devices)
     return build
 
