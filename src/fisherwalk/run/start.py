@@ -240,7 +240,8 @@ def start(
         Sanz-Serna & Stuart 2013, Bernoulli 19(5A) for HMC; Hoffman & Gelman 2014, JMLR
         15 for NUTS, whose step then starts dual averaging), or ``"auto"``: time one
         batched log density and one batched gradient here and pick the sampler predicted
-        to reach bulk ESS 400 first (the report says why).
+        to reach bulk ESS 400 first (the report says why). The choices are the registered
+        sampler families (:mod:`fisherwalk.run.samplers.registry`) and ``"auto"``.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 

@@ -3,10 +3,11 @@
 A :class:`Walker` holds all the chains of a run (not one chain). It is three pieces of
 data and the closures made once from the user's log density:
 
-- ``state``: the chains' positions ravelled to (chains, d) and their log densities
-  (chains,), the engine's own form;
-- ``tuning``: the proposal (:class:`Tuning`: the shape S, the scale l, the precision
-  factor the walker believes in); everything else about it is derived;
+- ``state``: the one :class:`~fisherwalk.run.engine.ChainState` (positions ravelled to
+  (chains, d), log densities (chains,), and for a gradient family the whitened position
+  and its gradient), the family's own form;
+- ``tuning``: the sampler family by name, its metric and its own tuned parameter
+  (:class:`Tuning`); everything else about it is derived by the family;
 - ``report``: how the walker was obtained (:class:`StartReport`: the Laplace fit, the
   check of it, notes, and the warm-up report once :func:`fisherwalk.refine` ran);
 - ``model``: the closures (:class:`Model`), built by :func:`assemble`, which
@@ -68,10 +69,9 @@ class Model(NamedTuple):
 class Walker(NamedTuple):
     """All the chains of a run: their state, the proposal they use, and how they got it.
 
-    ``state`` is the engine's own form (ravelled positions, log densities). For a
-    BlackJAX loop of your own, ``algorithm`` is BlackJAX's additive-step random walk
-    with this proposal and ``states`` the batched ``RWState`` in your pytree, ready for
-    ``jax.vmap(walker.algorithm.step)``.
+    ``state`` is the family's own form. For a BlackJAX loop of your own, ``algorithm`` is
+    the family's BlackJAX sampler with this tuning and ``states`` its batched states,
+    ready for ``jax.vmap(walker.algorithm.step)``.
     """
 
     state: Any  # the family's chain state (random walk: ravelled position, logdensity)
