@@ -369,8 +369,8 @@ class FisherwalkSampler:
         fit = walker.report.laplace
         warm = walker.report.warmup
         steps = int(getattr(warm, "steps", 400))
-        gradient = bool(getattr(walker, "gradient", False))
-        picked = getattr(walker.tuning, "sampler", "rwm") if gradient else "rwm"
+        gradient = walker.family.evaluation == "gradient"
+        picked = walker.tuning.sampler
         evaluations = fit.evaluations + self.dim + max(laplace_draws, self.chains)
         if gradient:
             counted = sum(warm_gradients)
@@ -390,7 +390,7 @@ class FisherwalkSampler:
             "khat": getattr(warm, "khat", None),
         }
         if gradient:
-            info.update(step_size_start=getattr(warm, "scale_start", None),
+            info.update(step_size_start=getattr(warm, "tuned_start", None),
                         step_size=float(walker.tuning.step_size),
                         target_acceptance=getattr(warm, "target_acceptance", None),
                         acceptance_warmup=getattr(warm, "acceptance_final", None),
@@ -432,22 +432,22 @@ def _counting_warmups():
     """
     counts: list[int] = []
     try:
-        from fisherwalk.run import gradient_run
+        from fisherwalk.run.samplers import stepfamily
     except ImportError:  # a package layout without gradient samplers: nothing to count
         yield counts
         return
-    original = gradient_run.warm_up
+    original = stepfamily.warm_up
 
     def counted(*args, **kwargs):
         out = original(*args, **kwargs)
         counts.append(int(np.sum(out.gradients)))
         return out
 
-    gradient_run.warm_up = counted
+    stepfamily.warm_up = counted
     try:
         yield counts
     finally:
-        gradient_run.warm_up = original
+        stepfamily.warm_up = original
 
 
 def _median_seconds_per_step(call, chunk: int, budget: float) -> float:

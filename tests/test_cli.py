@@ -69,7 +69,8 @@ def test_demo_record_has_what_reproduction_needs(demo_run):
     assert record["tuning"]["dim"] == 8
     assert 0 < record["tuning"]["tuning"]["target_acceptance"] < 1
     assert record["warmup"]["steps"] == 200
-    assert record["warmup"]["scale_final"] == pytest.approx(record["tuning"]["tuning"]["scale"])
+    assert record["warmup"]["tuned"] == "scale"
+    assert record["warmup"]["tuned_final"] == pytest.approx(record["tuning"]["tuning"]["scale"])
     assert record["summary"]["chains"] == 2 and record["summary"]["draws"] == 300
     assert record["sampling"]["run_length"]["planned"] is False  # --draws was given
     scene = scenarios.logistic()

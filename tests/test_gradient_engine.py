@@ -16,10 +16,12 @@ from fisherwalk.errors import ModelError
 from fisherwalk.results.diagnostics import mcse_mean
 from fisherwalk.run import gradient, handoff, stepsize
 from fisherwalk.run.gradient_checks import check_gradients
+from fisherwalk.run.samplers import registry
 from fisherwalk.theory.gradient import hmc_steps_law, optimal_gradient_step
 
 CHAINS = 4
 DIM = 5
+SAMPLERS = registry.gradient_names()  # every registered gradient family
 # Every sampler aims at its finite-d theory target (fisherwalk.theory.gradient): MALA and
 # HMC at the optimum for d = 5, NUTS at BlackJAX's 0.8.
 TARGETS = {"mala": None, "hmc": None, "nuts": None}
@@ -55,16 +57,16 @@ def _choice(sampler):
 
 @pytest.fixture(scope="module")
 def engines():
-    return {s: gradient.make_gradient_engine(s, LOGDENSITY, MEAN, CHOLESKY, CHAINS,
+    return {s: registry.gradient_engine(s, LOGDENSITY, MEAN, CHOLESKY, CHAINS,
                                              target_acceptance=TARGETS[s])
-            for s in gradient.SAMPLERS}
+            for s in SAMPLERS}
 
 
 @pytest.fixture(scope="module")
 def runs(engines):
     """Warm-up (200 steps) then 1000 sampling steps per chain, for every sampler."""
     out = {}
-    for k, sampler in enumerate(gradient.SAMPLERS):
+    for k, sampler in enumerate(SAMPLERS):
         engine, choice = engines[sampler], _choice(sampler)
         state = check_gradients(engine, _starts(k))
         warm = stepsize.warm_up(engine, jax.random.key(10 + k), state, choice.step_size)
@@ -86,7 +88,7 @@ def _chunk_fields(chunks):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+@pytest.mark.parametrize("sampler", SAMPLERS)
 def test_chunking_does_not_change_the_draws(engines, sampler):
     # Step s draws only from fold_in(key, s): one call of 20 kept draws must equal calls
     # of 7 and 13, bit for bit, adaptation included (its state is carried as data).
@@ -123,7 +125,7 @@ def test_thinning_keeps_every_thin_th_state(engines):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+@pytest.mark.parametrize("sampler", SAMPLERS)
 def test_acceptance_after_warm_up_matches_the_target(runs, sampler):
     # The realised acceptance at the warmed-up step size against the target dual averaging
     # aimed for. Tolerance: 4 x the combined Monte Carlo error of the sampling phase's mean
@@ -137,7 +139,7 @@ def test_acceptance_after_warm_up_matches_the_target(runs, sampler):
         rates.mean(), warm.target_acceptance, tolerance)
 
 
-@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+@pytest.mark.parametrize("sampler", SAMPLERS)
 def test_dual_averaging_recovers_from_a_poor_start(engines, sampler):
     # Started at a third of the theory step (acceptance near 1), the warm-up's pooled
     # acceptance over its second half must reach the target within 4 of its Monte Carlo
@@ -150,7 +152,7 @@ def test_dual_averaging_recovers_from_a_poor_start(engines, sampler):
     assert warm.step_size > 2.0 * warm.start_step_size
 
 
-@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+@pytest.mark.parametrize("sampler", SAMPLERS)
 def test_posterior_means_within_four_mcse(runs, sampler):
     # Exact mean of the Gaussian; MCSE of each coordinate's mean from the draws' ESS.
     _, cat, _ = runs[sampler]
@@ -193,7 +195,7 @@ def test_nonfinite_gradient_at_the_mode_is_refused():
     def logdensity(x):  # |b| = sqrt(b²): finite value, gradient 0/0 = NaN at b = 0
         return -0.5 * jnp.sum(x**2) + jnp.sqrt(x[1] ** 2)
 
-    engine = gradient.make_gradient_engine("nuts", logdensity, np.zeros(3), np.eye(3), CHAINS)
+    engine = registry.gradient_engine("nuts", logdensity, np.zeros(3), np.eye(3), CHAINS)
     with pytest.raises(ModelError) as info:
         check_gradients(engine, np.full((CHAINS, 3), 0.5), names=("a", "b", "c"))
     message = str(info.value)
@@ -202,12 +204,12 @@ def test_nonfinite_gradient_at_the_mode_is_refused():
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+@pytest.mark.parametrize("sampler", SAMPLERS)
 def test_nonfinite_gradient_along_the_warm_up_is_refused(sampler):
     def logdensity(x):  # finite value everywhere; gradient NaN in c wherever c >= 1
         return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[2], 0.0))
 
-    engine = gradient.make_gradient_engine(sampler, logdensity, np.zeros(3), np.eye(3),
+    engine = registry.gradient_engine(sampler, logdensity, np.zeros(3), np.eye(3),
                                            CHAINS)
     starts = np.random.default_rng(7).standard_normal((CHAINS, 3))
     starts[:, 2] = -np.abs(starts[:, 2])  # finite gradients at the starts
@@ -232,14 +234,12 @@ def _plain_loop(algorithm, positions, keys):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("sampler", gradient.SAMPLERS)
+@pytest.mark.parametrize("sampler", SAMPLERS)
 def test_blackjax_parameters_run_in_a_plain_loop(runs, sampler):
     # The returned dict in BlackJAX's own call, from the warmed-up chains; the exact mean
     # within 4 MCSE. MALA runs on the whitened density (BlackJAX's MALA has no metric).
     warm, _, state = runs[sampler]
-    parameters = handoff.blackjax_parameters(
-        sampler, warm.step_size, CHOLESKY,
-        integration_steps=hmc_steps_law(warm.step_size)[0][[0, -1]])
+    parameters = handoff.blackjax_parameters(sampler, warm.step_size, CHOLESKY)
     keys = jax.random.split(jax.random.key(30), 1000)
     if sampler == "mala":
         logdensity_z, to_original = handoff.whitened_problem(LOGDENSITY, MEAN, CHOLESKY)

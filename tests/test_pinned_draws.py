@@ -16,6 +16,7 @@ import hashlib
 import jax
 import jax.numpy as jnp
 import numpy as np
+import pytest
 
 import fisherwalk as fw
 
@@ -82,3 +83,39 @@ PINNED = {
 
 def test_draws_match_the_pinned_run(tmp_path):
     assert pipeline(tmp_path) == PINNED
+
+
+def gradient_pipeline(sampler: str, tmp_path, *, checkpoint: bool = False) -> dict[str, str]:
+    """start, refine and walk of a gradient sampler (and a checkpoint/resume if asked)."""
+    out = {}
+    walker = fw.start(logdensity, POSITION, jax.random.key(21), chains=2, sampler=sampler)
+    out["start"] = _digest(walker.flat_positions(), walker.states.logdensity,
+                           walker.tuning.step_size)
+    walker = fw.refine(walker, jax.random.key(22), steps=200)
+    out["refine"] = _digest(walker.flat_positions(), walker.tuning.step_size)
+    trace = fw.walk(walker, jax.random.key(23), draws=60, thin=2)
+    out["walk"] = _digest(trace.flat, trace.logdensity)
+    if checkpoint:
+        ckpt = tmp_path / f"{sampler}.ckpt"
+        first = fw.walk(walker, jax.random.key(24), draws=80, chunk=40, checkpoint=ckpt)
+        again = fw.resume(ckpt, logdensity)
+        out["checkpoint"] = _digest(first.flat, again.flat)
+    return out
+
+
+# Computed on commit 3b99e9f (before the samplers became one family in a registry), same
+# machine kind and rounding as PINNED above.
+PINNED_GRADIENT = {
+    "mala": {"start": "9b8878e07dd99959", "refine": "e0666ef69d480469",
+             "walk": "0fd9aafbfc1992e1"},
+    "hmc": {"start": "e97ed7268ec4f0b7", "refine": "7785796ea20a5728",
+            "walk": "d5a11999069865dd"},
+    "nuts": {"start": "7d68e5f1684ac100", "refine": "f7c5d3bced7bd989",
+             "walk": "24e87142041c5346", "checkpoint": "1fa8e2f532c3de31"},
+}
+
+
+@pytest.mark.parametrize("sampler", sorted(PINNED_GRADIENT))
+def test_gradient_draws_match_the_pinned_run(sampler, tmp_path):
+    got = gradient_pipeline(sampler, tmp_path, checkpoint=sampler == "nuts")
+    assert got == PINNED_GRADIENT[sampler]

@@ -87,12 +87,7 @@ def _fisherwalk_types(value, seen: set, depth: int = 0) -> set[type]:
     return found
 
 
-@pytest.mark.parametrize("sampler", [
-    "rwm",
-    # two chain-state types until the sampler family has one (issue 18); strict, so that
-    # this mark must go when they are one
-    pytest.param("nuts", marks=pytest.mark.xfail(strict=True, reason="two ChainState types")),
-])
+@pytest.mark.parametrize("sampler", ["rwm", "nuts"])
 def test_every_type_a_user_receives_is_exported(sampler):
     def logdensity(theta):
         return -0.5 * jnp.sum((theta - 1.0) ** 2 / jnp.array([1.0, 4.0]))

@@ -28,7 +28,7 @@ from .run.resume import resume
 from .run.sampling import walk
 from .run.start import start
 from .run.tuningfile import SavedTuning, load_tuning, save_tuning
-from .run.walker import GradientTuning, LaplaceCheck, StartReport, Tuning, Walker
+from .run.walker import LaplaceCheck, StartReport, Tuning, Walker
 from .run.warmup import WarmupReport, refine
 from .theory.randomwalk import ScaleChoice, optimal_scale
 
@@ -59,7 +59,6 @@ __all__ = [
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",
-    "GradientTuning",
     "SavedTuning",
     "Walker",
     "ChainState",

@@ -153,7 +153,7 @@ class ChainPlacement:
                                    (np.shape(noise)[2:], str(np.asarray(noise).dtype)))
             self.checked = True
         return (self.put(noise, 2), self.put(uniform, 2),
-                type(state)(*(self.put(x, 0) for x in state)), self.put(factor, None),
+                jax.tree.map(lambda x: self.put(x, 0), state), self.put(factor, None),
                 type(control)(*(self.put(x, None) for x in control)))
 
     def gather(self, tree):

@@ -34,6 +34,7 @@ from ..base.jsonio import dumps
 from ..errors import FisherwalkError, InputError, ModelFileError, explain
 from ..run.memory import check_walk_memory
 from ..run.plan import MAX_DRAWS
+from ..run.samplers import registry
 from . import compilecache, resumable
 from .modelfile import load_model
 from .runrecord import RunResult, build_record, run_keys, sha256_file, write_outputs
@@ -141,12 +142,13 @@ def _say_fit(say: _Say, walker, seconds: float) -> None:
         say(f"      Laplace check: PSIS k̂ {check.khat:.2f} (limit {check.threshold:.2f}): "
             f"the Gaussian picture {verdict}")
     say(f"[2/4] tuning from the theory, d = {tuning.dim}")
-    if walker.gradient:
-        say(f"      sampler {tuning.sampler} (BlackJAX) on the posterior whitened by "
-            f"S Sᵀ = H⁻¹ ({tuning.shape_kind}); step size {tuning.step_size:.4g}")
-    else:
+    if tuning.scale is not None:  # a family tuned by its scale l (the random walk)
         say(f"      scale l = {tuning.scale:.3f}, step (l/√d)·S z with l/√d = "
             f"{tuning.scale / math.sqrt(tuning.dim):.3f}, S Sᵀ = H⁻¹ ({tuning.shape_kind})")
+    else:
+        name, value = tuning.parameter
+        say(f"      sampler {tuning.sampler} (BlackJAX) on the posterior whitened by "
+            f"S Sᵀ = H⁻¹ ({tuning.shape_kind}); {name.replace('_', ' ')} {value:.4g}")
     say(f"      target acceptance {tuning.target_acceptance:.3f}; predicted jump "
         f"{tuning.predicted_jump:.3f} per step (squared, in sd of N(mode, H⁻¹))")
     for note in walker.report.notes:
@@ -156,8 +158,9 @@ def _say_fit(say: _Say, walker, seconds: float) -> None:
 def _say_warmup(say: _Say, walker, seconds: float, chains: int) -> None:
     warm = walker.report.warmup
     say(_step(f"[3/4] warm-up, {warm.steps} steps x {chains} chains", seconds))
-    ratio = warm.scale_final / warm.scale_start
-    say(f"      scale {warm.scale_start:.3f} -> {warm.scale_final:.3f} (x{ratio:.2f}); "
+    ratio = warm.tuned_final / warm.tuned_start
+    say(f"      {warm.tuned.replace('_', ' ')} {warm.tuned_start:.4g} -> {warm.tuned_final:.4g} "
+        f"(x{ratio:.2f}); "
         f"acceptance {warm.acceptance_final:.3f} vs target {warm.target_acceptance:.3f}")
     low, high = warm.spectrum_bounds
     spec = np.asarray(warm.covariance_spectrum)
@@ -249,7 +252,7 @@ def _options(args) -> dict:
     return {
         "seed": args.seed, "chains": args.chains, "draws": args.draws,
         "warmup_steps": args.warmup, "thin": args.thin, "shape": "fisher",
-        "sampler": getattr(args, "sampler", "rwm"),
+        "sampler": vars(args).get("sampler", registry.DEFAULT),
         "criterion": "slowest",
         "laplace": {"max_iterations": defaults.get("max_iterations"),
                     "gradient_tolerance": defaults.get("gradient_tolerance") or math.sqrt(eps),
@@ -474,7 +477,7 @@ def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
     sub.add_argument("--thin", default=1, metavar="N",
                      help="steps per kept draw (default 1: keep every step)")
     sub.add_argument("--sampler", default="rwm",
-                     choices=("rwm", "mala", "hmc", "nuts", "auto"),
+                     choices=registry.choices(),
                      help="the sampler: random-walk Metropolis (default), BlackJAX's MALA, "
                           "HMC or NUTS on the whitened posterior, or auto (the one predicted "
                           "to reach ESS 400 first)")

@@ -60,6 +60,7 @@ def settings(trace) -> dict[str, Any]:
     from importlib.metadata import PackageNotFoundError, version
 
     tuning = trace.walker.tuning
+    parameter, value = tuning.parameter
     try:
         release = version("fisherwalk")
     except PackageNotFoundError:  # pragma: no cover - a source checkout
@@ -68,7 +69,7 @@ def settings(trace) -> dict[str, Any]:
         "created_by": "fisherwalk",
         "fisherwalk_version": release,
         "sampler": "random-walk Metropolis",
-        "scale": float(tuning.scale),
+        parameter: float(value),
         "target_acceptance": float(tuning.target_acceptance),
         "shape_kind": str(tuning.shape_kind),
         "thin": int(trace.thin),
@@ -117,6 +118,8 @@ def to_arviz(trace):
     divergent = getattr(trace, "divergent", None)  # gradient samplers will carry it
     if divergent is not None:
         stats["diverging"] = np.asarray(divergent, dtype=bool)
+    if trace.energy is not None:  # HMC and NUTS: what arviz.bfmi reads
+        stats["energy"] = np.asarray(trace.energy)
     groups: dict[str, Any] = {"posterior": posterior, "sample_stats": stats}
     dims = {}
     if trace.pointwise is not None:

@@ -197,12 +197,12 @@ def plot_tuning(trace, path=None):
 
     tuning = trace.walker.tuning
     warm = trace.walker.report.warmup
-    if hasattr(tuning, "sampler"):
+    if tuning.scale is None:  # a family tuned by its step size
         return _plot_gradient_tuning(trace, path)
     dim = int(tuning.dim)
     spectrum = np.asarray(tuning.spectrum, dtype=float)
     matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6))
-    chosen = float(warm.scale_start) if warm is not None else float(tuning.scale)
+    chosen = float(warm.tuned_start) if warm is not None else float(tuning.scale)
     refined = float(tuning.scale)
     top = max(3.0 * max(chosen, refined), 6.0)
     grid = np.linspace(0.05, top, 240)
@@ -265,14 +265,15 @@ def _plot_gradient_tuning(trace, path=None):
     with its jittered time, fisherwalk.theory.gradient; for NUTS the acceptance statistic of
     the circle model, a rough guide), the theory step, the step after dual averaging and
     the realised acceptance."""
-    from ..theory.gradient import step_acceptance
+    from ..theory.gradient import stable_step_limit, step_acceptance
 
     tuning = trace.walker.tuning
     warm = trace.walker.report.warmup
     dim, sampler = int(tuning.dim), tuning.sampler
-    chosen = float(warm.scale_start) if warm is not None else float(tuning.step_size)
+    chosen = float(warm.tuned_start) if warm is not None else float(tuning.step_size)
     refined = float(tuning.step_size)
-    limit = 1.95 if sampler != "mala" else 3.0 * max(chosen, refined)
+    stable = stable_step_limit(sampler)  # leapfrog: the curve ends just short of ε = 2
+    limit = 0.975 * stable if math.isfinite(stable) else 3.0 * max(chosen, refined)
     grid = np.linspace(0.02, max(limit, 1.5 * max(chosen, refined)), 120)
     curve = np.asarray(step_acceptance(sampler, grid, dim))
     realised = float(np.mean(trace.acceptance_rate))

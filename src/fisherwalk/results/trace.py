@@ -42,6 +42,7 @@ class Trace(NamedTuple):
     length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
     divergent: np.ndarray | None = None  # (chains, draws) divergent transitions (HMC, NUTS)
     gradients: np.ndarray | None = None  # (chains, draws) gradient evaluations (gradient samplers)
+    energy: np.ndarray | None = None  # (chains, draws) Hamiltonian energy (HMC, NUTS)
 
     @property
     def names(self) -> tuple[str, ...]:

@@ -14,27 +14,24 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import Any
 
-import blackjax
 import jax
-import numpy as np
 
 from ..base.keys import as_key
 from ..errors import InputError, explain
-from ..theory.gradient import hmc_steps_law
+from .samplers import registry
 from .start import start
 from .warmup import refine
 
 __all__ = ["handoff"]
 
 
-def _kind(algorithm) -> str:
-    known = {"nuts": blackjax.nuts, "hmc": blackjax.hmc, "mala": blackjax.mala,
-             "rwm": blackjax.additive_step_random_walk}
-    for name, api in known.items():
-        if algorithm is api:
-            return name
-    if algorithm is blackjax.additive_step_random_walk.normal_random_walk:
-        return "rwm"
+def _family(algorithm):
+    """The registered family whose BlackJAX constructor ``algorithm`` is."""
+    for name in registry.names():
+        family = registry.family(name)
+        api = family.blackjax_api
+        if algorithm is api or algorithm is getattr(api, "normal_random_walk", None):
+            return family
     raise InputError(explain(
         f"algorithm={algorithm!r:.60} is not one of BlackJAX's samplers this hand-off knows.",
         "handoff(algorithm=...)",
@@ -73,23 +70,16 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     >>> states, parameters = fisherwalk.handoff(blackjax.nuts, logdensity, position, key)
     >>> kernel = blackjax.nuts(logdensity, **parameters)  # then your own loop
     """
-    kind = _kind(algorithm)
-    if kind == "mala":
+    family = _family(algorithm)
+    if not family.blackjax_takes_metric:
         raise InputError(explain(
-            "BlackJAX's MALA takes no metric, so the Fisher metric cannot be handed to it.",
-            "handoff(algorithm=blackjax.mala)",
-            'use fisherwalk.start(..., sampler="mala") (it runs MALA on the whitened '
+            f"BlackJAX's {family.label} takes no metric, so the Fisher metric cannot be "
+            "handed to it.", "handoff(algorithm=...)",
+            f'use fisherwalk.start(..., sampler="{family.name}") (it runs on the whitened '
             "posterior), or hand off blackjax.nuts or blackjax.hmc instead."))
     key = as_key(rng_key, where="handoff(rng_key=...)")
     key_start, key_warm = jax.random.split(key)
-    walker = start(logdensity_fn, position, key_start, chains, sampler=kind, **start_options)
+    walker = start(logdensity_fn, position, key_start, chains, sampler=family.name,
+                   **start_options)
     walker = refine(walker, key_warm, steps=200)
-    tuning = walker.tuning
-    if kind == "rwm":
-        return walker.states, {"sigma": np.asarray(tuning.factor)}
-    parameters = {"step_size": float(tuning.step_size),
-                  "inverse_mass_matrix": np.asarray(tuning.inverse_mass_matrix)}
-    if kind == "hmc":
-        values, probabilities = hmc_steps_law(tuning.step_size)
-        parameters["num_integration_steps"] = int(round(float(values @ probabilities)))
-    return walker.states, parameters
+    return walker.states, family.blackjax_parameters(walker.tuning)

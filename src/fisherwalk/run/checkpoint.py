@@ -168,6 +168,7 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
     positions = np.asarray(walker.flat_positions())
     logdensity = np.asarray(walker.state.logdensity)
     tuning = walker.tuning
+    name, value = tuning.parameter
     return {
         "draws": int(draws),
         "thin": int(thin),
@@ -177,10 +178,11 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
         "names": list(walker.names),
         "dtype": str(logdensity.dtype),
         "key": {"impl": str(jax.random.key_impl(key)), "data": key_data(key).tolist()},
-        "tuning": {"scale": float(tuning.scale),
+        # the family's own parameter by its own name (the record digest names the family)
+        "tuning": {name: value,
                    "target_acceptance": float(tuning.target_acceptance),
                    "shape_kind": str(tuning.shape_kind)},
-        "digests": {"factor": _digest(np.asarray(tuning.shape) * float(tuning.scale)),
+        "digests": {"factor": _digest(np.asarray(tuning.shape) * value),
                     "mode": _digest(walker.report.laplace.mode_flat),
                     "states": _digest(positions) + _digest(logdensity),
                     "record": _record_digest(tuning_record(walker))},
@@ -283,6 +285,9 @@ class Store:
         self._digests: list[str] = []
         self._last = time.monotonic()
         self.lock: Lock | None = None
+        # a family whose chain state holds more than the kept draw (a gradient family's
+        # whitened position, log density and gradient) has it saved whole, exactly
+        self._whole_state = bool(walker.family.stores_state)
         self._open(walker, bool(reclaim))
 
     # -- opening
@@ -363,7 +368,8 @@ class Store:
             "start": {"position": encode_array(walker.flat_positions()),
                       "logdensity": encode_array(walker.state.logdensity),
                       "whitened": {f: encode_array(getattr(walker.state, f))
-                                   for f in walker.state._fields} if walker.gradient else None},
+                                   for f in walker.state._fields}
+                                  if walker.family.stores_state else None},
         }
         write_json_atomic(run_file, run, indent=None, error=CheckpointError,
                           where=self._where())
@@ -458,7 +464,7 @@ class Store:
         self._tidy()
         if not done:
             return state
-        if hasattr(state, "logdensity_grad"):  # a gradient sampler: its whitened state
+        if self._whole_state:  # the family's whole chain state, saved exactly
             return self._whitened(saved, state, chains, dim)
         return ChainState(jnp.asarray(collector.flat[:, done - 1]),
                           jnp.asarray(collector.logdensity[:, done - 1]))
@@ -510,9 +516,9 @@ class Store:
             "digests": digests,
             "position": encode_array(collector.flat[:, done - 1]),
             "logdensity": encode_array(collector.logdensity[:, done - 1]),
-            # a gradient sampler's chains continue from their whitened state (position,
+            # a gradient family's chains continue from their whitened state (position,
             # log density, gradient), saved exactly so that a resume is bit-identical
-            "whitened": None if state is None or not hasattr(state, "logdensity_grad")
+            "whitened": None if state is None or not self._whole_state
             else {f: encode_array(getattr(state, f)) for f in state._fields},
         }, indent=None, error=CheckpointError, where=self._where())
         self._done, self._segments, self._digests, self._last = done, index + 1, digests, now

@@ -20,8 +20,7 @@ from __future__ import annotations
 from typing import Any
 
 from ..base.meshes import chain_mesh
-from .engine import make_engine
-from .walker import Walker, continuable_state
+from .walker import Walker, continuable_state, with_engine
 
 __all__ = ["spread_chains", "chain_devices"]
 
@@ -55,16 +54,12 @@ def spread_chains(walker: Walker, devices: Any = None) -> Walker:
     continuable_state(walker, "spread_chains(walker=...)")
     chains = walker.chains
     chain_mesh(chains, devices)  # refuse bad input here, with this function's name
-    model = walker.model
-
-    def flat_logdensity(vector):
-        return model.logdensity_fn(model.unravel(vector))
-
-    engine = make_engine(flat_logdensity, chains, devices)
-    return walker._replace(model=model._replace(engine=engine))
+    model = with_engine(walker.model, walker.tuning, walker.report.laplace.mode_flat, chains,
+                        devices)  # the walker's own family's loop, placed
+    return walker._replace(model=model)
 
 
 def chain_devices(walker: Walker) -> int:
     """How many devices the walker's chains run on (1: no placement)."""
-    placement = getattr(walker.engine, "placement", None)
+    placement = walker.engine.placement
     return 1 if placement is None else placement.devices

@@ -41,10 +41,16 @@ GAIN_EXPONENT = 0.6  # in (1/2, 1]: the Robbins-Monro conditions sum gain = inf,
 
 
 class ChainState(NamedTuple):
-    """All chains' states, ravelled: the carry between chunks."""
+    """All chains' states, ravelled: the carry between chunks, for every sampler family.
 
-    position: jax.Array  # (chains, d)
+    The random walk carries position and log density; a gradient family (whose chains
+    run on the whitened posterior, :mod:`fisherwalk.run.gradient`) carries z, the log
+    density and its gradient with respect to z.
+    """
+
+    position: jax.Array  # (chains, d): theta (random walk) or whitened z (gradient families)
     logdensity: jax.Array  # (chains,)
+    logdensity_grad: jax.Array | None = None  # (chains, d) gradient w.r.t. z, or None
 
 
 class Control(NamedTuple):
@@ -86,8 +92,9 @@ def _compiled(logdensity_flat: Callable) -> tuple[Callable, Callable]:
         def step(carry, inputs):
             flat_state, log_m, faults, n_acc, rate_sum = carry
             z, u, t = inputs
-            new_state, info = vstep(proposal.FlatState(*flat_state), z, u, logdensity_flat,
-                                    factor, jnp.exp(log_m))
+            new_state, info = vstep(
+                proposal.FlatState(flat_state.position, flat_state.logdensity), z, u,
+                logdensity_flat, factor, jnp.exp(log_m))
             gain = control.rate * (control.adapt_step + t + 1.0) ** (-GAIN_EXPONENT)
             log_m = log_m + gain * (jnp.mean(info.acceptance_rate) - control.target)
             return (
@@ -229,19 +236,32 @@ def control(*, log_multiplier=0.0, target=0.0, rate=0.0, adapt_step=0, dtype=np.
     )
 
 
+def chunk_loop(call: Callable, carry, draws: int, *, chunk: int = DEFAULT_CHUNK,
+               thin: int = 1, done: int = 0) -> Iterator[tuple[int, object]]:
+    """The one chunk loop of every family: kept draws ``done .. draws`` in calls of ``chunk``.
+
+    ``call(first_step, carry, draws, thin) -> (output, carry)`` advances the chains by one
+    compiled call starting at global step ``first_step`` (so that a family's random
+    numbers can belong to the step alone); ``carry`` is what the next call continues from
+    (the chains' state, and whatever adapts). Yields ``(keep, output)`` per call, ``keep``
+    being how many of the call's draws belong to the run (the last call may overshoot).
+    ``done`` must be a multiple of ``chunk``.
+    """
+    for k in range(-(-done // chunk), -(-draws // chunk)):
+        out, carry = call(k * chunk * thin, carry, chunk, thin)
+        yield min(chunk, draws - k * chunk), out
+
+
 def run_chunks(engine: Callable, noise_key, state: ChainState, factor, ctrl: Control,
                draws: int, *, chunk: int = DEFAULT_CHUNK, thin: int = 1,
                done: int = 0) -> Iterator[tuple[int, Chunk]]:
-    """The one chunk loop: advance kept draws ``done .. draws`` in calls of ``chunk``.
+    """The random walk's chunks (:func:`chunk_loop`): between calls the chains continue
+    from the call's end and the adaptation from its multiplier and step count, all on the
+    device."""
+    def call(first, carry, n, steps_per_draw):
+        state, ctrl = carry
+        out = engine(noise_key, first, state, factor, ctrl, n, steps_per_draw)
+        return out, (out.state, ctrl._replace(log_multiplier=out.log_multiplier,
+                                              adapt_step=ctrl.adapt_step + n * steps_per_draw))
 
-    Yields ``(keep, chunk_output)`` per call, ``keep`` being how many of the call's
-    draws belong to the run (the last call may overshoot). Between calls the chains
-    continue from the call's end and the adaptation continues from its multiplier and
-    step count, all on the device. ``done`` must be a multiple of ``chunk``.
-    """
-    for k in range(-(-done // chunk), -(-draws // chunk)):
-        out = engine(noise_key, k * chunk * thin, state, factor, ctrl, chunk, thin)
-        yield min(chunk, draws - k * chunk), out
-        state = out.state
-        ctrl = ctrl._replace(log_multiplier=out.log_multiplier,
-                             adapt_step=ctrl.adapt_step + chunk * thin)
+    return chunk_loop(call, (state, ctrl), draws, chunk=chunk, thin=thin, done=done)

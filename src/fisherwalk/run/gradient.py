@@ -36,35 +36,25 @@ apart).
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import blackjax
 import jax
 import jax.numpy as jnp
 import numpy as np
 from blackjax.adaptation.step_size import DualAveragingAdaptationState
-from blackjax.mcmc.hmc import HMCState
-from blackjax.mcmc.mala import MALAState
 from scipy.linalg import cholesky as _host_cholesky
 from scipy.linalg import solve_triangular
 
-from ..errors import InputError, explain
-from ..theory.gradient import INTEGRATION_TIME, optimal_gradient_step
+from ..base.meshes import chain_placement
+from ..theory.gradient import INTEGRATION_TIME
+from .engine import ChainState  # the one chain state: here z, log density, ∇_z
 
-SAMPLERS = ("mala", "hmc", "nuts")
 MAX_INTEGRATION_STEPS = 1024  # HMC: cap on leapfrog steps per transition (NUTS's 2^10)
 # Dual averaging's gamma: Hoffman & Gelman (2014) use 0.05 with a step size from a doubling
 # heuristic; started at the theory value, 0.2 explores less (measured: see the warm-up).
 DUAL_AVERAGING_GAMMA = 0.2
 _HIGHEST = jax.lax.Precision.HIGHEST
-
-
-class ChainState(NamedTuple):
-    """All chains' states in whitened coordinates: the carry between calls."""
-
-    position: jax.Array  # (chains, d) z, with theta = mode + W z
-    logdensity: jax.Array  # (chains,) log density (finite at every kept state)
-    logdensity_grad: jax.Array  # (chains, d) gradient with respect to z (= Wᵀ ∇_theta)
 
 
 class StepControl(NamedTuple):
@@ -87,12 +77,13 @@ class GradientChunk(NamedTuple):
     gradients: jax.Array  # (draws, chains) int: gradient evaluations over the thin steps
     faults: jax.Array  # (draws, chains) int: flagged transitions (module docstring)
     step_size: jax.Array  # (draws,) step size used at the last step of each kept draw
+    energy: jax.Array  # (draws, chains) Hamiltonian energy at the kept state (HMC, NUTS; MALA NaN)
 
 
 class GradientEngine(NamedTuple):
     """A sampler's compiled loop and what it needs (build with :func:`make_gradient_engine`)."""
 
-    sampler: str  # "mala", "hmc" or "nuts"
+    sampler: str  # the family's name in the registry (fisherwalk.run.samplers)
     chains: int
     mode: np.ndarray  # (d,)
     whitening: np.ndarray  # (d, d) W, lower, W Wᵀ = H⁻¹
@@ -101,6 +92,8 @@ class GradientEngine(NamedTuple):
     logdensity_flat: Callable  # the user's log density on the ravelled position
     run: Callable  # (rng_key, first_step, state, control, draws, thin=1) -> GradientChunk
     evaluate: Callable  # (m, d) original positions -> (log density (m,), gradient (m, d))
+    transition: Callable  # one chain's step (the family's kernel, see make_gradient_engine)
+    placement: Any = None  # where the chains run (base.meshes.ChainPlacement; None: one device)
 
 
 def whitening_factor(cholesky) -> np.ndarray:
@@ -185,49 +178,9 @@ def integration_steps(key_jitter, step_size):
     return jnp.clip(n, 1, MAX_INTEGRATION_STEPS).astype(jnp.int32)
 
 
-def make_transition(sampler: str, max_num_doublings: int) -> Callable:
-    """One chain's step with BlackJAX's kernel.
-
-    Returns ``step(key, state, logp, step_size, n_steps) -> (new state fields,
-    (acceptance rate, divergent, gradient evaluations, fault))``; ``n_steps`` is HMC's
-    leapfrog count (ignored by MALA and NUTS).
-    """
-    if sampler == "mala":
-        kernel = blackjax.mala.build_kernel()
-
-        def step(key, state, logp, step_size, n_steps):
-            new, info = kernel(key, MALAState(*state), logp, step_size)
-            fault = info.acceptance_rate == 0
-            return tuple(new), (info.acceptance_rate, jnp.zeros((), bool), jnp.int32(1), fault)
-
-    elif sampler == "hmc":
-        kernel = blackjax.hmc.build_kernel()
-
-        def step(key, state, logp, step_size, n_steps):
-            metric = jnp.ones_like(state[0])
-            new, info = kernel(key, HMCState(*state), logp, step_size, metric, n_steps)
-            fault = jnp.isnan(info.proposal.logdensity)
-            return tuple(new), (info.acceptance_rate, info.is_divergent, n_steps, fault)
-
-    else:
-        kernel = blackjax.nuts.build_kernel()
-
-        def step(key, state, logp, step_size, n_steps):
-            metric = jnp.ones_like(state[0])
-            new, info = kernel(key, HMCState(*state), logp, step_size, metric,
-                               max_num_doublings)
-            fault = (jnp.isnan(info.trajectory_leftmost_state.logdensity)
-                     | jnp.isnan(info.trajectory_rightmost_state.logdensity))
-            return tuple(new), (info.acceptance_rate, info.is_divergent,
-                                info.num_integration_steps.astype(jnp.int32), fault)
-
-    return step
-
-
-def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: float,
-              max_num_doublings: int, gamma: float) -> Callable:
+def _compiled(transition: Callable, logdensity_flat: Callable, chains: int, target: float,
+              gamma: float) -> Callable:
     whitened = whitened_logdensity(logdensity_flat)
-    transition = make_transition(sampler, max_num_doublings)
     _, dual_update, _ = blackjax.adaptation.step_size.dual_averaging_adaptation(target, gamma=gamma)
 
     def run(rng_key, first_step, state, control, mode, whitening, draws, thin):
@@ -237,34 +190,35 @@ def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: floa
         vstep = jax.vmap(transition, in_axes=(0, 0, None, None, None))
 
         def one_step(carry, step):
-            chain, ctrl, acc, div, grads, faults = carry
+            chain, ctrl, acc, div, grads, faults, _ = carry
             eps = jnp.where(ctrl.adapt, jnp.exp(ctrl.dual.log_step_size), ctrl.step_size)
             key_jitter, keys = step_keys(rng_key, step, chains)
             n_steps = integration_steps(key_jitter, eps)
-            new, (rate, divergent, n_grad, fault) = vstep(keys, tuple(chain), logp, eps, n_steps)
+            new, (rate, divergent, n_grad, fault, energy) = vstep(keys, tuple(chain), logp, eps,
+                                                                   n_steps)
             updated = dual_update(ctrl.dual, jnp.mean(rate))
             dual = jax.tree.map(lambda a, b: jnp.where(ctrl.adapt, a, b).astype(b.dtype),
                                 updated, ctrl.dual)
             carry = (ChainState(*new), ctrl._replace(dual=dual), acc + rate,
                      div + divergent.astype(jnp.int32), grads + n_grad,
-                     faults + fault.astype(jnp.int32))
+                     faults + fault.astype(jnp.int32), energy.astype(acc.dtype))
             return carry, eps
 
         def kept(carry, index):
             chain, ctrl = carry
             zeros = jnp.zeros(chains, dtype=chain.logdensity.dtype)
             counts = jnp.zeros(chains, dtype=jnp.int32)
-            inner = (chain, ctrl, zeros, counts, counts, counts)
+            inner = (chain, ctrl, zeros, counts, counts, counts, zeros)
             if thin == 1:  # no inner loop: one step per kept draw
                 inner, eps = one_step(inner, first_step + index)
             else:
                 steps = first_step + index * thin + jnp.arange(thin)
                 inner, eps = jax.lax.scan(one_step, inner, steps)
                 eps = eps[-1]
-            chain, ctrl, acc, div, grads, faults = inner
+            chain, ctrl, acc, div, grads, faults, energy = inner
             theta = mode + jnp.dot(chain.position, whitening.T, precision=_HIGHEST)
             return (chain, ctrl), (theta, chain.logdensity, acc / thin, div, grads, faults,
-                                   eps)
+                                   eps, energy)
 
         (final, ctrl), outs = jax.lax.scan(kept, (state, control), jnp.arange(draws))
         return GradientChunk(final, ctrl, *outs)
@@ -272,16 +226,24 @@ def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: floa
     return jax.jit(run, static_argnames=("draws", "thin"))
 
 
-def make_gradient_engine(sampler: str, logdensity_flat: Callable, mode, cholesky,
-                         chains: int, *, target_acceptance: float | None = None,
-                         max_num_doublings: int = 10,
-                         gamma: float = DUAL_AVERAGING_GAMMA) -> GradientEngine:
+def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Callable, mode,
+                         cholesky, chains: int, *, target_acceptance: float,
+                         max_num_doublings: int = 10, gamma: float = DUAL_AVERAGING_GAMMA,
+                         devices: Any = None) -> GradientEngine:
     """Build a gradient sampler's compiled loop (compiles once per (draws, thin) pair).
 
     Parameters
     ----------
     sampler
-        ``"mala"``, ``"hmc"`` or ``"nuts"``.
+        The family's name (for messages and records).
+    transition
+        ``transition(max_num_doublings)`` returns one chain's step with the family's
+        BlackJAX kernel: ``step(key, state, logp, step_size, n_steps) -> (new state
+        fields, (acceptance rate, divergent, gradient evaluations, fault, energy))``, the
+        energy being the Hamiltonian at the state kept (NaN for a kernel without one), ``n_steps``
+        being HMC's jittered leapfrog count (:func:`integration_steps`; ignored by the
+        kernels that do not take it). The families define theirs
+        (:mod:`fisherwalk.run.samplers`).
     logdensity_flat
         The log posterior on the ravelled position, ``(d,) -> scalar``; pure JAX.
     mode, cholesky
@@ -289,11 +251,14 @@ def make_gradient_engine(sampler: str, logdensity_flat: Callable, mode, cholesky
     chains
         Number of chains.
     target_acceptance
-        What dual averaging aims for; default: the Gaussian-limit value of the sampler
-        (MALA 0.574, Roberts & Rosenthal 1998; HMC 0.651, Beskos et al. 2013) and
-        BlackJAX's NUTS default 0.8.
+        What dual averaging aims for (the family's Gaussian-limit value: MALA 0.574,
+        Roberts & Rosenthal 1998; HMC 0.651, Beskos et al. 2013; BlackJAX's NUTS 0.8).
     max_num_doublings
         NUTS's cap on tree doublings (BlackJAX's default, 10).
+    devices
+        Where the chains run (:func:`fisherwalk.base.meshes.chain_mesh`; None: automatic,
+        one device = no placement): the state's chain axis is split over the mesh and
+        XLA partitions the vmapped kernels.
 
     Returns
     -------
@@ -302,25 +267,28 @@ def make_gradient_engine(sampler: str, logdensity_flat: Callable, mode, cholesky
         chain ``draws * thin`` steps in one call, starting at global step ``first_step``
         (``rng_key`` a typed JAX key), and returns a :class:`GradientChunk`.
     """
-    if sampler not in SAMPLERS:
-        raise InputError(explain(f"sampler={sampler!r} is not a gradient sampler.",
-                                 "make_gradient_engine(sampler=...)",
-                                 f"use one of {', '.join(map(repr, SAMPLERS))}."))
     mode = np.asarray(mode)
     whitening = whitening_factor(cholesky).astype(mode.dtype)
-    if target_acceptance is None:
-        target_acceptance = optimal_gradient_step(sampler, mode.shape[0]).acceptance
-    compiled = _compiled(sampler, logdensity_flat, chains, float(target_acceptance),
-                         int(max_num_doublings), float(gamma))
+    step = transition(int(max_num_doublings))
+    compiled = _compiled(step, logdensity_flat, chains, float(target_acceptance),
+                         float(gamma))
+    placement = chain_placement(chains, devices)
     mode_device, whitening_device = jax.device_put(mode), jax.device_put(whitening)
 
     def run(rng_key, first_step, state, control, draws: int, thin: int = 1) -> GradientChunk:
-        return compiled(rng_key, np.int64(first_step), state, control, mode_device,
-                        whitening_device, draws=int(draws), thin=int(thin))
+        if placement is None:
+            return compiled(rng_key, np.int64(first_step), state, control, mode_device,
+                            whitening_device, draws=int(draws), thin=int(thin))
+        state = jax.tree.map(lambda x: placement.put(x, 0), state)
+        control = jax.tree.map(lambda x: placement.put(x, None), control)
+        out = compiled(rng_key, np.int64(first_step), state, control, mode_device,
+                       whitening_device, draws=int(draws), thin=int(thin))
+        return placement.gather(out)
 
     evaluate = jax.jit(jax.vmap(jax.value_and_grad(logdensity_flat)))
     return GradientEngine(sampler, int(chains), mode, whitening, float(target_acceptance),
-                          int(max_num_doublings), logdensity_flat, run, evaluate)
+                          int(max_num_doublings), logdensity_flat, run, evaluate, step,
+                          placement)
 
 
 def control(step_size: float, *, adapt: bool = False,

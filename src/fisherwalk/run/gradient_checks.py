@@ -21,7 +21,6 @@ from .gradient import (
     GradientEngine,
     StepControl,
     integration_steps,
-    make_transition,
     step_keys,
     to_whitened,
     whitened_logdensity,
@@ -86,7 +85,7 @@ def replay_step(engine: GradientEngine, rng_key: jax.Array, step: int, chain: in
     key_jitter, keys = step_keys(rng_key, step, engine.chains)
     eps = jnp.asarray(step_size, dtype=engine.mode.dtype)
     n_steps = integration_steps(key_jitter, eps)
-    transition = make_transition(engine.sampler, engine.max_num_doublings)
+    transition = engine.transition
     result = transition(keys[chain], (z, value, grad_z), lambda x: logp(x, mode, whitening),
                         eps, n_steps)
     jax.block_until_ready(result)

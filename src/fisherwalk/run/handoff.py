@@ -17,7 +17,9 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from ..errors import InputError, explain
-from .gradient import SAMPLERS, whitened_logdensity, whitening_factor
+from .gradient import whitened_logdensity, whitening_factor
+from .samplers import registry
+from .tuning import Tuning
 
 _HIGHEST = jax.lax.Precision.HIGHEST
 
@@ -44,32 +46,31 @@ def whitened_problem(logdensity_flat: Callable, mode, cholesky) -> tuple[Callabl
 
 
 def blackjax_parameters(sampler: str, step_size: float, cholesky, *,
-                        integration_steps=(1, 1), max_num_doublings: int = 10) -> dict:
+                        max_num_doublings: int = 10) -> dict:
     """Tuned parameters in BlackJAX's own form, for a user's loop.
 
     ``blackjax.nuts(logdensity_fn, **parameters)`` and ``blackjax.hmc(logdensity_fn,
     **parameters)`` then run with the Fisher metric ``inverse_mass_matrix = H⁻¹`` (dense)
     on the ORIGINAL coordinates; the step size is the one tuned here (the same in both
-    coordinates, see the module docstring). HMC gets a fixed ``num_integration_steps``,
-    the middle of the jittered range ``integration_steps`` (for the jitter itself use
+    coordinates, see the module docstring). HMC gets a fixed ``num_integration_steps``
+    by the HMC family's one rule (:func:`fisherwalk.run.samplers.hmc.fixed_integration_steps`:
+    the expected jittered count at ``step_size``, rounded; for the jitter itself use
     ``blackjax.dynamic_hmc`` with ``integration_steps_fn``). ``blackjax.mala`` takes no
     mass matrix: its parameters hold for the WHITENED log density
     ``z -> log pi(mode + W z)`` (:func:`whitened_problem` returns it and the map back).
     """
-    if sampler not in SAMPLERS:
+    gradients = registry.gradient_names()
+    if sampler not in gradients:
         raise InputError(explain(f"sampler={sampler!r} is not a gradient sampler.",
                                  "blackjax_parameters(sampler=...)",
-                                 f"use one of {', '.join(map(repr, SAMPLERS))}."))
-    if sampler == "mala":
-        return {"step_size": float(step_size)}
+                                 f"use one of {', '.join(map(repr, gradients))}."))
+    family = registry.family(sampler)
     chol = np.asarray(cholesky)
     shape = solve_triangular(chol, np.eye(chol.shape[0], dtype=chol.dtype), lower=True).T
-    inverse = shape @ shape.T
-    parameters = {"step_size": float(step_size),
-                  "inverse_mass_matrix": jnp.asarray(0.5 * (inverse + inverse.T))}
-    if sampler == "nuts":
+    tuning = Tuning(shape, None, chol, "fisher", sampler=sampler, step_size=float(step_size))
+    parameters = family.blackjax_parameters(tuning)
+    if "inverse_mass_matrix" in parameters:
+        parameters["inverse_mass_matrix"] = jnp.asarray(parameters["inverse_mass_matrix"])
+    if "max_num_doublings" in parameters:
         parameters["max_num_doublings"] = int(max_num_doublings)
-    else:
-        low, high = integration_steps
-        parameters["num_integration_steps"] = int(round(0.5 * (low + high)))
     return parameters

@@ -38,7 +38,6 @@ import numpy as np
 from scipy.stats import chi2
 
 from ..results.diagnostics import ess_bulk, ess_tail, rhat
-from ..theory.randomwalk import expected_jump
 
 __all__ = ["RunLength", "predicted_ess_per_step", "first_round", "next_total", "stalled", "verdict",
            "ESS_LIMIT", "RHAT_LIMIT", "MAX_DRAWS", "MAX_SECONDS"]
@@ -83,19 +82,12 @@ class RunLength(NamedTuple):
 
 
 def predicted_ess_per_step(tuning) -> float:
-    """Predicted bulk ESS per step of one chain in its slowest direction, J / (4 - J).
-
-    For a gradient sampler: its Gaussian-limit ESS per gradient times the gradients per
-    step (:func:`fisherwalk.theory.gradient.optimal_gradient_step`), capped at 1 (a step
-    can be antithetic, but the plan should not count on it)."""
-    if hasattr(tuning, "sampler"):
-        choice = tuning.choice
-        return float(min(choice.ess_per_gradient * choice.gradients_per_step, 1.0))
-    spectrum = None if tuning.matched else tuning.spectrum
-    jumps = expected_jump(float(tuning.scale), tuning.dim, spectrum, per_direction=True)
-    slowest = float(np.min(jumps))
-    slowest = min(max(slowest, 1e-12), 2.0)
-    return slowest / (4.0 - slowest)
+    """Predicted bulk ESS per step of one chain in its slowest direction, from the tuning's
+    family (:mod:`fisherwalk.run.samplers`): the random walk's J / (4 - J) at its scale;
+    a gradient family's Gaussian-limit ESS per gradient times the gradients per step
+    (:func:`fisherwalk.theory.gradient.optimal_gradient_step`), capped at 1 (a step can
+    be antithetic, but the plan should not count on it)."""
+    return float(tuning.family.ess_per_step(tuning))
 
 
 def _rhat_ess(dim: int, chains: int, rhat_limit: float) -> float:

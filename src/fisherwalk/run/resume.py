@@ -115,7 +115,7 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
             where, "pass position=<a position of the model> if the message asks for it; "
                    "otherwise the file is damaged: delete the checkpoint to start afresh.",
         )) from err
-    if walker.gradient:  # the chains' exact whitened start (a refit would round it)
+    if walker.family.stores_state:  # the chains' exact start (a refit would round it)
         walker = walker._replace(state=whitened_state(
             start.get("whitened"), walker.state, chains, dim, str(dtype), run_file))
     _check_logdensity(directory, walker, positions0, logdensity0, where)

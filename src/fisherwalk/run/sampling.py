@@ -16,21 +16,20 @@ import jax
 import numpy as np
 
 from ..base.checks import positive_number, whole_number
-from ..base.keys import as_key, key_data, stream
+from ..base.keys import as_key, key_data
 from ..errors import FisherwalkWarning, InputError, explain
 from ..results.trace import Trace
-from . import derive, engine, plan
+from . import derive, plan
 from .checkpoint import Store
-from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
-from .gradient_run import gradient_chunks
+from .engine import DEFAULT_CHUNK, Chunk
 from .memory import check_walk_memory
 from .progress import progress_bar
 from .walker import Walker, continuable_state
 
 _FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")  # what a chunk may carry (the last two: gradient samplers only)
+           "gradients", "energy")  # what a chunk may carry (the last three: gradient families)
 _ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")
+           "gradients", "energy")
 
 
 class _Collector:
@@ -44,11 +43,14 @@ class _Collector:
         self.faults = np.zeros((chains, draws), dtype=np.int32)
         self.divergent = np.zeros((chains, draws), dtype=np.int32)
         self.gradients = np.zeros((chains, draws), dtype=np.int32)
+        self.energy = np.full((chains, draws), np.nan, dtype=dtype)
+        self.has_energy = False  # set when a chunk carries the Hamiltonian (HMC, NUTS)
         self.done = 0
 
     def add(self, chunk: Chunk, keep: int) -> None:
         s = slice(self.done, self.done + keep)
         names = [n for n in _FIELDS if getattr(chunk, n, None) is not None]
+        self.has_energy = self.has_energy or "energy" in names
         host = jax.device_get(tuple(getattr(chunk, n) for n in names))
         for name, value in zip(names, host, strict=True):
             getattr(self, "flat" if name == "position" else name)[:, s] = np.swapaxes(
@@ -186,18 +188,10 @@ def walk(
     dtype = np.asarray(state.logdensity).dtype
     check_walk_memory(total, chains, dim, dtype=dtype)
     collector = _Collector(chains, total, dim, dtype)
-    if walker.gradient:
-        def chunks(state, total, done):
-            return gradient_chunks(walker.model, walker.tuning, jax.random.fold_in(key, 0),
-                                   state, total, chunk=chunk, thin=thin, done=done)
-    else:
-        ctrl = jax.device_put(engine.control(dtype=dtype))  # moved to the device once
-        noise_key = stream(key, 0)
-        factor = jax.device_put(walker.tuning.factor)
+    family, engine = walker.family, walker.model.engine
 
-        def chunks(state, total, done):
-            return run_chunks(walker.engine, noise_key, state, factor, ctrl, total,
-                              chunk=chunk, thin=thin, done=done)
+    def chunks(state, total, done):
+        return family.chunks(engine, walker.tuning, key, state, total, chunk, thin, done)
     store = None
     if checkpoint is not None:
         store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
@@ -228,11 +222,7 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
         while True:
             for keep, out in chunks(state, total, collector.done):
                 collector.add(out, keep)
-                if keep == chunk or walker.gradient:  # continue from the chunk's end
-                    state = out.state
-                else:
-                    last = collector.done - 1
-                    state = ChainState(collector.flat[:, last], collector.logdensity[:, last])
+                state = out.state  # the family's chunks end a last, short one at its last draw
                 if store is not None:
                     store.save(collector, state)
                 elapsed = time.perf_counter() - began
@@ -316,10 +306,11 @@ def _show(bar, collector, total, elapsed, first_done, round_number, planned) -> 
 def _trace(walker, collector, state, thin, key, seconds, *, complete, length=None) -> Trace:
     flat = collector.flat
     tree = walker.unravel_many(flat) if flat.shape[1] else None
-    final = walker._replace(state=type(state)(*(np.asarray(part) for part in state)))
-    gradient = walker.gradient
+    final = walker._replace(state=jax.tree.map(np.asarray, state))
+    gradient = walker.family.evaluation == "gradient"
     return Trace(tree, collector.logdensity, collector.accepted, final, flat,
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
                  complete, length=length,
                  divergent=collector.divergent if gradient else None,
-                 gradients=collector.gradients if gradient else None)
+                 gradients=collector.gradients if gradient else None,
+                 energy=collector.energy if collector.has_energy else None)

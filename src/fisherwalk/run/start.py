@@ -23,17 +23,19 @@ from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
-from .gradient_run import (
-    check_sampler,
-    choose_sampler,
-    gradient_model,
-    gradient_state,
-    gradient_tuning,
-    integration_time_words,
-)
 from .progress import progress_bar
+from .samplers import registry
+from .samplers.auto import choose_sampler
 from .tuningfile import SavedTuning, check_tuning
-from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
+from .walker import (
+    LaplaceCheck,
+    StartReport,
+    Tuning,
+    Walker,
+    assemble,
+    flat_logdensity,
+    make_model,
+)
 
 __all__ = ["start", "proposal_shape", "tuning_for", "SHAPES", "LAPLACE_DRAWS"]
 
@@ -99,8 +101,8 @@ def tuning_for(shape, shape_kind: str, cholesky, *, criterion: str = "slowest") 
     spectrum of A = Sᵀ H S (see :func:`fisherwalk.optimal_scale`).
     """
     shape, cholesky = np.asarray(shape), np.asarray(cholesky)
-    draft = Tuning(shape, 1.0, cholesky, shape_kind, criterion)
-    return draft._replace(scale=float(draft.choice.scale))
+    draft = Tuning(shape, None, cholesky, shape_kind, criterion)
+    return draft.family.initial(draft)
 
 
 def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
@@ -271,7 +273,7 @@ def start(
                   "compares the chain's two halves, and a second mode or a stuck chain goes "
                   "unseen. Use chains=4 (the default) unless you know why one chain "
                   "suffices.", FisherwalkWarning)
-    sampler = check_sampler(sampler)
+    sampler = registry.check_sampler(sampler)
     key = as_key(rng_key, where="start(rng_key=...)")
     dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
         int(np.size(leaf)) for leaf in jax.tree.leaves(position))
@@ -312,23 +314,19 @@ def start(
     if len(fit.modes_flat) > 1:
         positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
         notes.append(note)
-    if sampler == "auto":
-        picked = choose_sampler(model, positions, len(fit.names))
+    if sampler == registry.AUTO:
+        picked = choose_sampler(flat_logdensity(model), positions, len(fit.names))
         sampler = picked.sampler
         notes.append(picked.note)
-    if sampler != "rwm":
-        tuning = gradient_tuning(sampler, shape_matrix, fit.cholesky, kind)
-        model = gradient_model(model, tuning, fit.mode_flat, chains)
-        state = gradient_state(model, positions, fit.names)
-        notes.append(f"Sampler {sampler!r}: BlackJAX's kernel on the whitened posterior "
-                     f"(metric S Sᵀ, '{kind}'); theory step size {tuning.step_size:.4g}, "
-                     f"target acceptance {tuning.choice.acceptance:.3f} for d = {tuning.dim}"
-                     + integration_time_words(tuning) + ".")
+    if sampler != tuning.sampler:  # another family: its own theory value for this shape
+        tuning = registry.family(sampler).initial(
+            Tuning(shape_matrix, None, fit.cholesky, kind, criterion, sampler=sampler))
+    described = tuning.family.describe(tuning)
+    if described:
+        notes.append(described)
     report = StartReport(fit, check, tuple(notes))
     if bar is not None:
         bar.update(1)
         bar.set_description("start: done")
         bar.close()
-    if sampler != "rwm":
-        return Walker(state, tuning, report, model)
     return assemble(logdensity_fn, report, tuning, positions, logdens, model=model)

@@ -36,6 +36,7 @@ import numpy as np
 
 from ..errors import InputError, explain
 from ..results.diagnostics import ess_mean
+from .engine import chunk_loop
 from .gradient import ChainState, GradientEngine, StepControl, control
 from .gradient_checks import first_fault, nonfinite_error, replay_step
 
@@ -111,8 +112,11 @@ def warm_up(engine: GradientEngine, rng_key: jax.Array, state: ChainState, step_
     ctrl = control(step_size, adapt=True, dtype=dtype)
     start_position = engine.mode + np.asarray(state.position) @ engine.whitening.T
     pieces = []
-    for k in range(calls):
-        out = engine.run(rng_key, k * chunk, state, ctrl, chunk)
+    def call(first, carry, n, _thin):  # one compiled call, continuing dual averaging
+        out = engine.run(rng_key, first, carry[0], carry[1], n)
+        return out, (out.state, out.control)
+
+    for _, out in chunk_loop(call, (state, ctrl), calls * chunk, chunk=chunk):
         state, ctrl = out.state, out.control
         pieces.append(jax.device_get((out.position, out.logdensity, out.acceptance_rate,
                                       out.divergent, out.gradients, out.faults, out.step_size)))

@@ -39,9 +39,8 @@ from ..base.jsonio import decode_array, decode_number, read_json, to_plain, writ
 from ..base.pytrees import name_difference
 from ..errors import InputError, explain
 from ..fit.laplace import LaplaceFit
-from ..theory.gradient import GRADIENT_SAMPLERS
-from .gradient_run import gradient_model, gradient_state
-from .walker import GradientTuning, LaplaceCheck, StartReport, Tuning, Walker, assemble
+from .samplers import registry
+from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble
 
 __all__ = [
     "SavedTuning",
@@ -157,10 +156,15 @@ def _laplace_check(values: Any) -> LaplaceCheck | None:
     return LaplaceCheck(khat, threshold, draws, outside)
 
 
-def _factor(tuning) -> np.ndarray:
-    """(scale/√d)·S: the random walk's proposal factor; for a gradient sampler, whose
-    ``scale`` is its step size, the same formula keeps the record's one consistency check."""
-    return (float(tuning.scale) / math.sqrt(tuning.dim)) * np.asarray(tuning.shape)
+def _family_fields(tuning) -> dict:
+    """The family's own tuned parameter under its own name (``scale`` for the random walk,
+    with its proposal factor (scale/√d)·S; ``step_size`` for a gradient family)."""
+    name, value = tuning.parameter
+    fields = {name: _plain_number(value, name)}
+    if tuning.scale is not None:  # the random walk's factor, checked against its scale
+        factor = (float(tuning.scale) / math.sqrt(tuning.dim)) * np.asarray(tuning.shape)
+        fields["factor"] = _plain_array(factor, "factor")
+    return fields
 
 
 def tuning_record(walker: Walker) -> dict:
@@ -199,13 +203,11 @@ def tuning_record(walker: Walker) -> dict:
         "dtype": str(np.asarray(tuning.shape).dtype),
         "structure": _structure(fit.mode),
         "tuning": {
-            "sampler": str(getattr(tuning, "sampler", "rwm")),
+            "sampler": str(tuning.sampler),
             "shape_kind": str(tuning.shape_kind),
-            "criterion": str(getattr(tuning, "criterion", "slowest")),
+            "criterion": str(tuning.criterion),
             "shape": _plain_array(tuning.shape, "shape"),
-            # the random walk's proposal factor (l/√d)·S; a gradient sampler's step size
-            "factor": _plain_array(_factor(tuning), "factor"),
-            "scale": _plain_number(tuning.scale, "scale"),
+            **_family_fields(tuning),
             "target_acceptance": _plain_number(tuning.target_acceptance, "target_acceptance"),
             "spectrum": _plain_array(tuning.spectrum, "spectrum"),
             "predicted_jump": _plain_number(tuning.predicted_jump, "predicted_jump"),
@@ -275,28 +277,40 @@ def read_record(source: str | os.PathLike | dict) -> dict:
     tuning, fit = record.get("tuning"), record.get("laplace")
     if not isinstance(tuning, dict) or not isinstance(fit, dict):
         raise _bad("Fields 'tuning' and 'laplace' must be objects.", where)
+    sampler = tuning.get("sampler", registry.DEFAULT)
+    if not isinstance(sampler, str) or sampler not in registry.names():
+        raise _bad(f"Field 'tuning.sampler' is {sampler!r:.40}, not a registered sampler "
+                   f"family ({', '.join(registry.names())}).", where)
+    parameter = registry.family(sampler).parameter
+    # Records before the sampler families kept a gradient sampler's step size in 'scale'.
+    value_field = parameter if parameter in tuning else "scale"
+    optional = [("tuning", "factor", (dim, dim))] if "factor" in tuning else []
+    if "factor" in tuning and value_field != "scale":
+        optional.append(("tuning", "scale", ()))
     arrays = {}
-    for part, field, shape in [("tuning", "shape", (dim, dim)), ("tuning", "factor", (dim, dim)),
+    for part, field, shape in [*optional, ("tuning", "shape", (dim, dim)),
+                               ("tuning", value_field, ()),
                                ("tuning", "whitening", (dim, dim)),
                                ("laplace", "fisher", (dim, dim)),
                                ("laplace", "cholesky", (dim, dim)),
                                ("tuning", "spectrum", (dim,)), ("laplace", "mode", (dim,)),
-                               ("tuning", "scale", ()), ("tuning", "target_acceptance", ()),
+                               ("tuning", "target_acceptance", ()),
                                ("tuning", "predicted_jump", ()), ("laplace", "logdensity", ()),
                                ("laplace", "gradient_norm", ())]:
         arrays[field] = decode_array(record[part].get(field), f"{part}.{field}", where,
                                      max_size=dim * dim, shape=shape, finite=True)
     if not isinstance(tuning.get("shape_kind"), str):
         raise _bad("Field 'tuning.shape_kind' must be a string.", where)
-    if tuning.get("sampler", "rwm") not in ("rwm", *GRADIENT_SAMPLERS):
-        raise _bad(f"Field 'tuning.sampler' is {tuning.get('sampler')!r:.40}, not a known "
-                   "sampler.", where)
+    positive_number(float(arrays[value_field]), f"tuning.{value_field}", where, todo=_TODO)
     _check_values(arrays, tuple(names), where)
-    expected = float(arrays["scale"]) / math.sqrt(dim) * arrays["shape"]
-    rtol = 1e3 * float(np.finfo(np.dtype(record["dtype"])).eps)  # rounding of the dtype
-    if not np.allclose(arrays["factor"], expected, rtol=rtol, atol=1e-300):
-        raise _bad("Fields 'tuning.factor', 'tuning.scale' and 'tuning.shape' disagree: the "
-                   "factor must be (scale / sqrt(dim)) * shape.", where)
+    if "factor" in arrays:
+        expected = float(arrays["scale"]) / math.sqrt(dim) * arrays["shape"]
+        rtol = 1e3 * float(np.finfo(np.dtype(record["dtype"])).eps)  # rounding of the dtype
+        if not np.allclose(arrays["factor"], expected, rtol=rtol, atol=1e-300):
+            raise _bad("Fields 'tuning.factor', 'tuning.scale' and 'tuning.shape' disagree: "
+                       "the factor must be (scale / sqrt(dim)) * shape.", where)
+    elif parameter == "scale":
+        raise _bad("Field 'tuning.factor' is missing.", where)
     return record
 
 
@@ -305,7 +319,6 @@ _TODO = "use a record written by fisherwalk.save_tuning, unedited."
 
 def _check_values(arrays: dict, names: tuple[str, ...], where: str) -> None:
     """The checks start() makes on its inputs, applied to a record's numbers."""
-    positive_number(float(arrays["scale"]), "tuning.scale", where, todo=_TODO)
     probability(float(arrays["target_acceptance"]), "tuning.target_acceptance", where,
                 todo=_TODO)
     positive_number(float(arrays["gradient_norm"]), "laplace.gradient_norm", where,
@@ -349,12 +362,11 @@ def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
     def matrix(values):
         return np.asarray(values, dtype=dtype)
 
-    if t.get("sampler", "rwm") == "rwm":
-        tuning = Tuning(matrix(t["shape"]), float(t["scale"]), matrix(t["whitening"]),
-                        str(t["shape_kind"]), str(t.get("criterion", "slowest")))
-    else:
-        tuning = GradientTuning(str(t["sampler"]), float(t["scale"]), matrix(t["shape"]),
-                                matrix(t["whitening"]), str(t["shape_kind"]))
+    sampler = str(t.get("sampler", registry.DEFAULT))
+    parameter = registry.family(sampler).parameter
+    value = float(t[parameter] if parameter in t else t["scale"])  # (older records: 'scale')
+    tuning = Tuning(matrix(t["shape"]), None, matrix(t["whitening"]), str(t["shape_kind"]),
+                    str(t.get("criterion", "slowest")), sampler)._replace(**{parameter: value})
     return SavedTuning(tuning, tuple(record["names"]), record)
 
 
@@ -503,9 +515,6 @@ def walker_from_record(
     if logdensity is not None:
         logdensity = np.asarray(logdensity).astype(dtype, copy=False)
     walker = assemble(logdensity_fn, report, tuning, flat, logdensity)
-    if walker.gradient:
-        model = gradient_model(walker.model, tuning, mode_flat, flat.shape[0])
-        walker = walker._replace(model=model, state=gradient_state(model, flat, names))
     values = np.asarray(walker.state.logdensity)
     if values.shape != (flat.shape[0],) or not np.isfinite(values).all():
         raise InputError(explain(

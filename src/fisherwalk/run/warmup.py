@@ -47,69 +47,45 @@ import numpy as np
 from scipy.stats import chi2
 
 from ..base.checks import whole_number
-from ..base.keys import as_key, stream
+from ..base.keys import as_key
 from ..results.diagnostics import ess_mean
-from . import engine
-from .engine import DEFAULT_CHUNK, ChainState, run_chunks
-from .gradient_run import gradient_model, gradient_state, warm_gradient
+from .engine import DEFAULT_CHUNK
 from .progress import progress_bar
 from .proposal import shape_from_cholesky
-from .start import tuning_for
-from .walker import Walker, continuable_state
+from .samplers.family import WarmContext
+from .walker import Walker, continuable_state, flat_logdensity
 
-ADAPTATION_RATE = 1.0  # Robbins-Monro gain constant: gain_t = rate * (t + 1)^-0.6
-SCALE_TOLERANCE = 0.10  # |log(adapted / predicted scale)| beyond this says the picture is off
 COVARIANCE_LEVEL = 1e-3  # level of the test that the whitened warm-up covariance is I
-GRADIENT_WARMUP = 200  # steps of a gradient sampler's warm-up: dual averaging settles in ~100
-LATE_ADAPTATION = 50  # a third phase starts its gain at (50 + 1)^-0.6: near the optimum already
 
 
 class WarmupReport(NamedTuple):
-    """What the warm-up measured, decided and changed."""
+    """What the warm-up measured, decided and changed.
 
-    steps: int  # warm-up steps per chain
+    ``tuned`` names the family's tuned parameter (``"scale"``, the random walk's l, or
+    ``"step_size"``, a gradient family's BlackJAX step size); ``tuned_start``,
+    ``tuned_phase1`` and ``tuned_final`` hold its values.
+    """
+
+    steps: int  # warm-up steps per chain, as run
     khat: float  # PSIS k̂ of the posterior against the Laplace approximation
     khat_threshold: float  # min(1 - 1/log10 S, 0.7)
     outside_support: int  # Laplace draws where the log density was not finite
-    scale_start: float  # scale before the warm-up
-    scale_phase1: float  # adapted scale at the end of phase 1
-    scale_final: float  # the refined scale
+    tuned: str  # which parameter was tuned: "scale" or "step_size"
+    tuned_start: float  # its value before the warm-up (the theory's)
+    tuned_phase1: float  # its adapted value at the end of phase 1
+    tuned_final: float  # the refined value
     target_acceptance: float  # the acceptance the adaptation aimed for (final shape)
     acceptance_phase1: float  # mean acceptance probability in phase 1 (second half)
-    acceptance_final: float  # mean acceptance probability in phase 2 (second half)
+    acceptance_final: float  # mean acceptance probability at the end (second half)
     covariance_spectrum: np.ndarray  # eigenvalues of Lᵀ Σ̂ L (ones in the Gaussian picture)
     spectrum_bounds: tuple[float, float]  # what Monte Carlo error allows for them
     covariance_p_value: float  # likelihood-ratio test of whitened covariance = I
     effective_draws: float  # n_eff of the phase-1 draws (median over whitened coordinates)
-    reshaped: bool  # whether the proposal shape was re-estimated
+    reshaped: bool  # whether the proposal shape (the metric) was re-estimated
     reasons: tuple[str, ...]  # which checks failed
     fisher_spectrum: np.ndarray  # eigenvalues of Sᵀ H S for the final shape S
     notes: tuple[str, ...]  # plain-language account for the report
-
-
-def _run_phase(walker, noise_key, state, factor, steps, adapt_from, target, bar,
-               rate_constant=ADAPTATION_RATE):
-    """Adapt the scale multiplier for ``steps`` steps; return draws and the path."""
-    dtype = np.asarray(state.logdensity).dtype
-    pieces, rates, paths = [], [], []
-    ctrl = engine.control(log_multiplier=0.0, target=target, rate=rate_constant,
-                          adapt_step=adapt_from, dtype=dtype)
-    for keep, out in run_chunks(walker.engine, noise_key, state, factor, ctrl, steps):
-        state = out.state
-        pieces.append(np.asarray(out.position))
-        rates.append(np.asarray(out.acceptance_rate))
-        paths.append(np.asarray(out.log_multiplier_path))
-        if bar is not None:
-            bar.update(keep)
-    draws = np.swapaxes(np.concatenate(pieces), 0, 1)  # (chains, steps, d)
-    rate = np.concatenate(rates)  # (steps, chains)
-    path = np.concatenate(paths)  # (steps,)
-    half = steps // 2
-    # Acceptance: over the second half while adapting (the scale has settled), over the
-    # whole phase at a fixed scale; with its Monte Carlo error (ESS of the probabilities).
-    used = rate if rate_constant == 0.0 else rate[half:]
-    mcse = float(used.std() / math.sqrt(max(float(ess_mean(used.T)), 1.0)))
-    return state, draws, float(used.mean()), float(path[half:].mean()), mcse
+    divergent: int = 0  # divergent transitions in the warm-up (families that have them)
 
 
 def _khat_words(khat: float, limit: float) -> str:
@@ -175,73 +151,6 @@ def _reshaped(walker: Walker, cov: np.ndarray, n_eff: float):
     return shape.astype(dtype), precision_chol.astype(dtype), weight
 
 
-def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
-    """The random walk's tuning for the re-estimated shape, and the weight on the draws."""
-    shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
-    return tuning_for(shape, "warm-up", precision_chol), weight
-
-
-def _refine_gradient(walker: Walker, key, steps: int, reshape: bool | None) -> Walker:
-    """The warm-up of a gradient sampler: two phases of dual averaging of the shared step
-    size (:mod:`fisherwalk.run.stepsize`), the Gaussian-picture checks between them, and
-    the metric re-estimated (shrunk toward H⁻¹) when a check fails."""
-    steps = min(steps, GRADIENT_WARMUP)
-    half = max(DEFAULT_CHUNK, steps // 2 // DEFAULT_CHUNK * DEFAULT_CHUNK)
-    tuning0, fit, check = walker.tuning, walker.report.laplace, walker.report.check
-    names = walker.names
-    warm1 = warm_gradient(walker.model, tuning0, jax.random.fold_in(key, 1), walker.state,
-                          half, names)
-    within = len(getattr(fit, "modes_flat", ())) > 1
-    cov, spectrum, bounds, n_eff, p_value = _covariance_check(
-        warm1.position, np.asarray(fit.cholesky), within=within, squares=True)
-    reasons = []
-    if check.khat > check.threshold:
-        reasons.append(f"PSIS k̂ = {check.khat:.2f} > {check.threshold:.2f}: the Laplace "
-                       "approximation misses the posterior's tails")
-    if p_value < COVARIANCE_LEVEL:
-        reasons.append(
-            f"warm-up covariance against H⁻¹: whitened spectrum {spectrum[0]:.2f} to "
-            f"{spectrum[-1]:.2f} (Monte Carlo error with {n_eff:.0f} effective draws allows "
-            f"about {bounds[0]:.2f} to {bounds[1]:.2f}); test of equality p = {p_value:.1e}")
-    do_reshape = (bool(reasons) if reshape is None else bool(reshape)) and (
-        tuning0.shape_kind != "identity")
-    model, state, notes = walker.model, warm1.state, []
-    tuning1 = tuning0._replace(step_size=warm1.step_size)
-    if do_reshape:
-        shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
-        tuning1 = tuning1._replace(shape=shape, whitening=precision_chol,
-                                   shape_kind="warm-up")
-        positions = fit.mode_flat + np.asarray(warm1.state.position) @ np.asarray(
-            walker.model.engine.whitening).T
-        model = gradient_model(walker.model, tuning1, fit.mode_flat, walker.chains)
-        state = gradient_state(model, positions, names)
-        notes.append("Re-estimated the metric from the warm-up draws (weight "
-                     f"{weight:.2f} on the draws, the rest on H⁻¹) because "
-                     + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
-    elif reasons:
-        notes.append("Kept the metric H⁻¹ although " + "; ".join(reasons) + ".")
-    else:
-        notes.append("Every check agreed with the Gaussian picture: kept the metric H⁻¹.")
-    warm2 = warm_gradient(model, tuning1, jax.random.fold_in(key, 2), state, half, names)
-    final = tuning1._replace(step_size=warm2.step_size)
-    target = tuning0.choice.acceptance
-    notes.append(
-        f"Step size {tuning0.step_size:.4g} (theory) -> {warm1.step_size:.4g} -> "
-        f"{warm2.step_size:.4g} by dual averaging toward acceptance {target:.3f}; acceptance "
-        f"in the second half {warm2.acceptance:.3f} (Monte Carlo error "
-        f"{warm2.acceptance_mcse:.3f}); " + _khat_words(check.khat, check.threshold) + ".")
-    divergent = int(warm1.divergent.sum() + warm2.divergent.sum())
-    if divergent:
-        notes.append(f"{divergent} divergent transitions in the warm-up.")
-    warm = WarmupReport(
-        2 * half, check.khat, check.threshold, check.outside_support, tuning0.step_size,
-        warm1.step_size, warm2.step_size, float(target), warm1.acceptance, warm2.acceptance,
-        spectrum, bounds, p_value, n_eff, do_reshape, tuple(reasons), final.spectrum,
-        tuple(notes))
-    return walker._replace(state=warm2.state, tuning=final, model=model,
-                           report=walker.report._replace(warmup=warm))
-
-
 def refine(
     walker: Walker,
     rng_key: jax.Array,
@@ -250,7 +159,15 @@ def refine(
     reshape: bool | None = None,
     progress: bool | None = None,
 ) -> Walker:
-    """Warm up a walker: adapt the scale, check the Gaussian picture, reshape if needed.
+    """Warm up a walker: adapt its family's parameter, check the Gaussian picture, reshape.
+
+    One skeleton for every sampler family (:mod:`fisherwalk.run.samplers`): phase 1 is
+    the family's adaptation from its theory value (the random walk's scale by
+    Robbins-Monro, a gradient family's step size by dual averaging); then the shared
+    checks (PSIS k̂, the warm-up covariance against H⁻¹) and the family's own (the random
+    walk: adapted scale against the theory); then, when a check fails, the shape (the
+    metric) is re-estimated; phase 2 (and a third phase if the family needs one) settles
+    the parameter.
 
     Parameters
     ----------
@@ -260,10 +177,12 @@ def refine(
         JAX key (typed or old-style).
     steps
         Warm-up steps per chain, rounded up to a multiple of 200 (two phases of whole
-        chunks). The default, 400, is justified in the module docstring.
+        chunks) and run as asked, by every family (``report.warmup.steps`` says how many
+        ran; the random walk may add a third phase). The default, 400, is justified in
+        the module docstring.
     reshape
         ``None`` (default): re-estimate the proposal shape only when a check fails;
-        ``True``: always; ``False``: never (the scale still adapts).
+        ``True``: always; ``False``: never (the parameter still adapts).
     progress
         Progress bar; default only when standard error is a terminal.
 
@@ -274,27 +193,23 @@ def refine(
         and ``report.warmup`` (:class:`WarmupReport`) saying what was done and why.
     """
     steps = whole_number(steps, "steps", "refine(steps=...)")
-    if isinstance(walker, Walker) and walker.gradient:
-        continuable_state(walker, "refine()")
-        return _refine_gradient(walker, as_key(rng_key, where="refine(rng_key=...)"), steps,
-                                reshape)
     block = 2 * DEFAULT_CHUNK
     steps = int(math.ceil(steps / block) * block)
     key = as_key(rng_key, where="refine(rng_key=...)")
     state = continuable_state(walker, "refine()")
-    tuning0 = walker.tuning
-    fit = walker.report.laplace
-    check = walker.report.check
+    family, tuning0 = walker.family, walker.tuning
+    fit, check = walker.report.laplace, walker.report.check
     khat, k_limit, outside = check.khat, check.threshold, check.outside_support
     bar = progress_bar(steps, progress, "warm-up")
     half = steps // 2
+    context = WarmContext(walker.model, tuning0, walker.names, bar,
+                          _khat_words(khat, k_limit))
     try:
-        state, draws, acc1, log_m1, _ = _run_phase(
-            walker, stream(key, 1), state, tuning0.factor, half, 0,
-            tuning0.choice.acceptance, bar)
+        phase1 = family.phase(context, key, state, half)
         several = len(getattr(fit, "modes_flat", ())) > 1
         cov, spectrum, bounds, n_eff, p_value = _covariance_check(
-            draws, np.asarray(fit.cholesky), within=several)
+            phase1.draws, np.asarray(fit.cholesky), within=several,
+            squares=family.covariance_of_squares)
         reasons = []
         if khat > k_limit:
             reasons.append(f"PSIS k̂ = {khat:.2f} > {k_limit:.2f}: the Laplace approximation "
@@ -305,74 +220,36 @@ def refine(
                 f"{spectrum[-1]:.2f} (1 in the Gaussian picture; Monte Carlo error with "
                 f"{n_eff:.0f} effective draws allows about {bounds[0]:.2f} to {bounds[1]:.2f}); "
                 f"test of equality p = {p_value:.1e}")
-        theory = tuning0.choice.scale  # the optimum for this shape in the Gaussian picture
-        scale1 = tuning0.scale * math.exp(log_m1)
-        if abs(math.log(scale1 / theory)) > SCALE_TOLERANCE:
-            reasons.append(f"the adapted scale {scale1:.3f} is {scale1 / theory:.2f} x the "
-                           f"predicted optimum {theory:.3f}")
+        reasons.extend(phase1.reasons)
         do_reshape = bool(reasons) if reshape is None else bool(reshape)
         if tuning0.shape_kind == "identity":
             do_reshape = False
-        notes = []
+        notes, tuning1, state = [], None, phase1.state
         if do_reshape:
-            tuning1, weight = _reshaped_tuning(walker, cov, n_eff)
+            shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
+            tuning1, engine, state = family.reshape(
+                context, phase1, flat_logdensity(walker.model), fit.mode_flat, walker.chains,
+                state, shape, precision_chol)
+            context = context._replace(model=walker.model._replace(engine=engine))
             notes.append(
-                "Re-estimated the proposal shape from the warm-up draws (weight "
-                f"{weight:.2f} on the draws, the rest on H⁻¹) because "
+                "Re-estimated the proposal shape (the metric) from the warm-up draws "
+                f"(weight {weight:.2f} on the draws, the rest on H⁻¹) because "
                 + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
-            log_m_start, rate = 0.0, ADAPTATION_RATE
-        elif reasons:
-            tuning1 = tuning0
-            log_m_start, rate = log_m1, ADAPTATION_RATE
-            notes.append("Kept the proposal shape; the scale keeps adapting because "
-                         + "; ".join(reasons) + ".")
-        else:
-            # Every check agrees with the Gaussian picture, where the theoretical scale is
-            # exact: keep it (the adapted one differs from it only by Monte Carlo noise)
-            # and let phase 2 measure the acceptance at that scale.
-            tuning1 = tuning0._replace(scale=float(theory))
-            log_m_start, rate = 0.0, 0.0
-            notes.append("Every check agreed with the Gaussian picture: kept the proposal "
-                         f"shape and the theoretical scale {theory:.3f}.")
-        target = tuning1.choice.acceptance  # the optimum for this shape
-        state2, _, acc2, log_m2, mcse2 = _run_phase(
-            walker, stream(key, 2), state,
-            tuning1.factor * math.exp(log_m_start),
-            half, half, target, bar, rate)
-        if rate == 0.0 and abs(acc2 - target) > 3.0 * mcse2:
-            # At the theoretical scale the chains accept more or less often than the
-            # Gaussian picture predicts, beyond Monte Carlo error: take the adapted scale.
-            reasons.append(
-                f"at the theoretical scale the acceptance was {acc2:.3f}, not the predicted "
-                f"{target:.3f} (Monte Carlo error {mcse2:.3f})")
-            if bar is not None:  # the third phase adds steps to the bar's total
-                bar.total += half
-                bar.refresh()
-            notes[-1] = ("Kept the proposal shape; adapted the scale in a third phase of "
-                         f"{half} steps because " + reasons[-1] + ".")
-            state2, _, acc2, log_m2, _ = _run_phase(
-                walker, stream(key, 3), state2, tuning1.factor, half, LATE_ADAPTATION, target,
-                bar)
-            steps += half
+        settled = family.settle(context, key, tuning1, state, phase1, half, tuple(reasons),
+                                do_reshape)
     finally:
         if bar is not None:
             bar.close()
-    scale_final = tuning1.scale * math.exp(log_m_start + log_m2)
-    final = tuning1._replace(scale=float(scale_final))
+    final = settled.tuning
     fisher_spectrum = np.sort(
         np.linalg.svd(np.asarray(fit.cholesky).T @ np.asarray(final.shape), compute_uv=False) ** 2
     )
-    aimed = f"aimed at {target:.3f}, the optimum for this shape"
-    if abs(final.target_acceptance - target) > 5e-4:  # the summary's target is this one
-        aimed += (f"; at the refined scale the Gaussian picture predicts "
-                  f"{final.target_acceptance:.3f}, the summary's target")
-    notes.append(
-        f"Scale {tuning0.scale:.3f} -> {scale_final:.3f}; acceptance in the last quarter "
-        f"{acc2:.3f} ({aimed}); " + _khat_words(khat, k_limit) + ".")
+    name = family.parameter
     warm = WarmupReport(
-        steps, khat, k_limit, outside, tuning0.scale, tuning0.scale * math.exp(log_m1),
-        float(scale_final), float(target), acc1, acc2, spectrum, bounds, p_value, n_eff,
-        do_reshape,
-        tuple(reasons), fisher_spectrum, tuple(notes))
-    state2 = ChainState(np.asarray(state2.position), np.asarray(state2.logdensity))
-    return walker._replace(state=state2, tuning=final, report=walker.report._replace(warmup=warm))
+        settled.steps, khat, k_limit, outside, name, float(getattr(tuning0, name)),
+        float(phase1.value), float(getattr(final, name)), float(settled.target),
+        float(phase1.acceptance), float(settled.acceptance), spectrum, bounds, p_value,
+        n_eff, do_reshape, settled.reasons, fisher_spectrum,
+        tuple(notes) + settled.notes, phase1.divergent + settled.divergent)
+    return walker._replace(state=settled.state, tuning=final, model=context.model,
+                           report=walker.report._replace(warmup=warm))

@@ -80,6 +80,7 @@ fields ``jump_distance`` and ``square_jump`` give ρ₁ and ρ₂ for other choi
 
 from __future__ import annotations
 
+import math
 import operator
 from functools import lru_cache
 from typing import Any, NamedTuple
@@ -106,6 +107,7 @@ __all__ = [
     "optimal_gradient_step",
     "predicted_ess_per_evaluation",
     "step_acceptance",
+    "stable_step_limit",
 ]
 
 SAMPLERS = ("rwm", "mala", "hmc", "nuts")
@@ -475,6 +477,18 @@ def hmc_steps_law(step_size: float) -> tuple[np.ndarray, np.ndarray]:
         raise InputError(explain("step_size is an array.", "hmc_steps_law(step_size)",
                                  "pass one step size (a float)."))
     return _steps_law(float(eps))
+
+
+def stable_step_limit(sampler: str) -> float:
+    """The largest step size at which the sampler's map is stable on N(0, I_d).
+
+    The leapfrog integrator (HMC, NUTS) is stable on a unit Gaussian for ε < 2 (the
+    linear map's eigenvalues leave the unit circle at ε = 2; Leimkuhler & Reich 2004,
+    "Simulating Hamiltonian Dynamics", ch. 4); MALA's step is not bounded so (returned as
+    infinity): its acceptance decays smoothly.
+    """
+    sampler = _check_sampler(sampler, GRADIENT_SAMPLERS, "stable_step_limit(sampler=...)")
+    return math.inf if sampler == "mala" else 2.0
 
 
 def step_acceptance(sampler: str, step_size: Any, dim: int) -> float | np.ndarray:
