@@ -122,6 +122,7 @@ def _files(directory: Path) -> dict:
             for p in sorted(directory.iterdir())}
 
 
+@pytest.mark.slow
 def test_killed_runs_resume_bit_identically(run, tmp_path):
     walker, reference = run
     directory = tmp_path / "run.ckpt"

@@ -28,6 +28,7 @@ def demo_run(tmp_path_factory):
     return code, out, json.loads((out / "record.json").read_text())
 
 
+@pytest.mark.slow
 def test_demo_writes_every_file(demo_run):
     code, out, record = demo_run
     assert code == 0

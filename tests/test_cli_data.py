@@ -163,6 +163,7 @@ def test_resume_without_a_checkpoint_is_refused(tmp_path, capsys):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["error.txt"]
 
 
+@pytest.mark.slow
 def test_compile_cache_is_on_by_default_and_recorded(tmp_path):
     # A fresh process, as a user runs the command: JAX sets its cache up once per process.
     env = {**os.environ, "XDG_CACHE_HOME": str(tmp_path / "cache")}

@@ -66,6 +66,7 @@ def plain(b):
 """
 
 
+@pytest.mark.slow
 def test_chains_over_four_devices_agree_with_one_device():
     out = _run("""
         import json
@@ -112,6 +113,7 @@ def test_chains_over_four_devices_agree_with_one_device():
     assert "where: spread_chains(devices=...)" in out["refused"]
 
 
+@pytest.mark.slow
 def test_sharded_logdensity_equals_the_plain_sum_and_its_fit():
     out = _run(LOGISTIC + """
 sh = sharded_logdensity(loglik, {"X": X, "y": y}, prior)
@@ -176,6 +178,7 @@ def _gloo_available() -> bool:
     return hasattr(_jax, "make_gloo_tcp_collectives")
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not _gloo_available(),
                     reason="this jaxlib has no gloo CPU collectives: no cross-process test")
 def test_two_processes_match_one_process_with_checkpoint_and_resume(tmp_path):
@@ -211,6 +214,7 @@ except ModelError as err:
 """
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not _gloo_available(),
                     reason="this jaxlib has no gloo CPU collectives: no cross-process test")
 def test_processes_with_different_data_shapes_are_refused_before_sampling(tmp_path):

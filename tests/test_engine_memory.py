@@ -31,6 +31,7 @@ def _walk(budget, monkeypatch, thin):
     return fw.walk(walker, jax.random.key(1), draws=7, thin=thin, chunk=7, progress=False)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("budget", [
     2 * 4 * 5 * 2,  # two kept draws per call (chains 2 x (d + 1) = 8 numbers per step)
     2 * 4 * 2,      # one kept draw per call, two of its thin steps per call
@@ -67,6 +68,7 @@ print("SHAPE", trace.flat.shape)
 """
 
 
+@pytest.mark.slow
 def test_memory_follows_the_kept_draws_under_an_address_space_limit(tmp_path):
     # Issue 13: walk(draws=100, thin=4000) at d = 100 peaked at 5.4 GB (the noise of all
     # 400,000 steps made at once). Under RLIMIT_AS one GiB above the child's footprint

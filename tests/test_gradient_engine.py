@@ -87,6 +87,7 @@ def _chunk_fields(chunks):
     return {f: np.concatenate([np.asarray(getattr(c, f)) for c in chunks]) for f in fields}
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", SAMPLERS)
 def test_chunking_does_not_change_the_draws(engines, sampler):
     # Step s draws only from fold_in(key, s): one call of 20 kept draws must equal calls
@@ -123,6 +124,7 @@ def test_thinning_keeps_every_thin_th_state(engines):
                        np.asarray(every.acceptance_rate).reshape(4, 5, CHAINS).mean(axis=1))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", SAMPLERS)
 def test_acceptance_after_warm_up_matches_the_target(runs, sampler):
     # The realised acceptance at the warmed-up step size against the target dual averaging
@@ -169,6 +171,7 @@ def test_posterior_means_within_four_mcse(runs, sampler):
         assert cat["gradients"].min() >= 1
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", ["hmc", "nuts"])
 def test_divergences_are_counted(engines, sampler):
     # A step forced far past the leapfrog's stability limit ε < 2. On the whitened target
@@ -200,6 +203,7 @@ def test_nonfinite_gradient_at_the_mode_is_refused():
     assert "the mode" in message and 'sampler="rwm"' in message
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", SAMPLERS)
 def test_nonfinite_gradient_along_the_warm_up_is_refused(sampler):
     def logdensity(x):  # finite value everywhere; gradient NaN in c wherever c >= 1
@@ -229,6 +233,7 @@ def _plain_loop(algorithm, positions, keys):
     return np.swapaxes(np.asarray(jax.lax.scan(body, states, keys)[1]), 0, 1)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", SAMPLERS)
 def test_blackjax_parameters_run_in_a_plain_loop(runs, sampler):
     # The returned dict in BlackJAX's own call, from the warmed-up chains; the exact mean
@@ -277,6 +282,7 @@ def _blackjax_path(sampler, step_size, key, starts, draws):
     return np.stack(path), jax.tree.map(lambda *a: np.stack(a), *infos)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", ["hmc", "nuts"])
 def test_whitened_run_follows_blackjax_on_original_coordinates(engines, runs, sampler):
     # Whitened chains with an identity metric and BlackJAX's kernel on the original

@@ -88,6 +88,7 @@ def test_logistic_regression_matches_sklearn_and_glm_information(cancer, cancer_
     assert fit.gradient_norm <= 1e-8 * abs(fit.logdensity)
 
 
+@pytest.mark.slow
 def test_poisson_regression_matches_statsmodels_and_sklearn():
     import statsmodels.api as sm
     from sklearn.linear_model import PoissonRegressor
@@ -190,6 +191,7 @@ def test_user_fisher_is_validated(cancer, cancer_fit):
     assert np.allclose(np.asarray(fisher_from_cholesky(cholesky)), good, rtol=1e-12)
 
 
+@pytest.mark.slow
 def test_model_errors_at_the_start():
     with pytest.raises(ModelError, match=r"shape \(3,\)") as info:
         laplace(lambda x: -(x**2), jnp.zeros(3))
@@ -247,6 +249,7 @@ def test_not_converged_then_converged_on_rosenbrock():
     assert np.allclose(np.asarray(fit.fisher), [[802.0, -400.0], [-400.0, 200.0]], rtol=1e-10)
 
 
+@pytest.mark.slow
 def test_complete_separation_is_a_runaway_mode():
     from sklearn.datasets import load_iris
 
@@ -293,6 +296,7 @@ def _mixture(weight: float):
     return logdensity_fn, slope
 
 
+@pytest.mark.slow
 def test_restarts_find_both_modes_of_a_mixture():
     logdensity_fn, slope = _mixture(0.5)
     # Uniform starts in (-8, 8): each lands in the other basin (x < 0) with probability
@@ -308,6 +312,7 @@ def test_restarts_find_both_modes_of_a_mixture():
     assert not any("higher mode" in w for w in fit.warnings)
 
 
+@pytest.mark.slow
 def test_restarts_move_to_a_higher_mode():
     logdensity_fn, slope = _mixture(0.3)
     # Starts from N(mode, spread² H⁻¹) with H ≈ 1 at -3: spread 5 crosses 0 with probability
@@ -320,6 +325,7 @@ def test_restarts_move_to_a_higher_mode():
     assert any("does not describe the posterior" in w for w in fit.warnings)
 
 
+@pytest.mark.slow
 def test_runaway_restarts_are_recorded_not_raised():
     def logdensity_fn(x):  # a mode near 0, and a tail rising to log 0.1 as x -> +inf
         return jnp.logaddexp(jax.scipy.stats.norm.logpdf(x[0]), jnp.log(0.1) - jnp.exp(-x[0]))
@@ -334,6 +340,7 @@ def test_runaway_restarts_are_recorded_not_raised():
     assert any("runaway" in w for w in fit.warnings)
 
 
+@pytest.mark.slow
 def test_float32_warns_once_with_the_enabling_line():
     script = textwrap.dedent("""
         import warnings

@@ -22,6 +22,7 @@ def test_stored_notebook_has_its_outputs():
     assert len(images) == 2
 
 
+@pytest.mark.slow
 def test_notebook_executes(tmp_path):
     copy = tmp_path / NOTEBOOK.name
     shutil.copy(NOTEBOOK, copy)

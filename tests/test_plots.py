@@ -41,6 +41,7 @@ def _png_size(path) -> tuple[int, int]:
     return width, height
 
 
+@pytest.mark.slow
 def test_save_all_writes_four_pngs(trace, tmp_path):
     paths = plots.save_all(trace, tmp_path / "figures", labels=["a", "b", "c"])
     assert [p.name for p in paths] == list(plots.FILE_NAMES.values())

@@ -46,6 +46,7 @@ def test_step_matches_blackjax_bit_for_bit():
         assert bool(bj_info.is_accepted) == bool(info.is_accepted)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("use_blackjax", [False, True])
 def test_proposal_covariance(use_blackjax):
     # On a flat target every proposal is accepted, so the moves are the proposed steps.
@@ -73,6 +74,7 @@ def test_proposal_covariance(use_blackjax):
     assert np.all(np.abs(empirical - expected) < 5 * sd)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("bad", [jnp.nan, jnp.inf])
 def test_non_finite_proposals_are_rejected_and_flagged(bad):
     # Log density: standard normal, but `bad` (NaN or +inf) for x > 0.5.

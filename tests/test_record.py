@@ -67,6 +67,7 @@ def _no_constants(name):
     raise AssertionError(f"the record holds {name}")
 
 
+@pytest.mark.slow
 def test_refit_with_saved_shape_rescales_for_new_spectrum(fitted, tmp_path):
     walker, first, second = fitted
     path = save_tuning(walker, tmp_path / "tuning.json")

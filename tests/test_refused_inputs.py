@@ -296,6 +296,7 @@ def _ids():
     return [f"{i:02d}-{case[1][:40]}" for i, case in enumerate(CASES)]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("case", CASES, ids=_ids())
 def test_refused(case, tmp_path):
     _, _, call, error, words = case
@@ -345,6 +346,7 @@ def _normalise(text: str) -> str:
     return re.sub(r"\d\.\d{3,}(e[-+]?\d+)?", "#", text)
 
 
+@pytest.mark.slow
 def test_document_is_up_to_date(tmp_path):
     assert DOC.exists(), "run `python tests/test_refused_inputs.py` to write the document"
     assert _normalise(DOC.read_text()) == _normalise(render(tmp_path))

@@ -409,6 +409,7 @@ def test_residual_correlation_is_that_of_the_pair_whitened_by_the_proposal():
 # ---------------------------------------------------------------------------------------
 
 
+@pytest.mark.slow
 def test_summary_memory_follows_one_parameter():
     # numpy reports its allocations to tracemalloc. Draws (4, 200000, 10): 61 MiB; one
     # parameter's slice S = 6.1 MiB, one chain's draws S / 4. What the summary may hold

@@ -46,6 +46,7 @@ def runs():
     return out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", ["mala", "hmc"])
 def test_realised_acceptance_matches_the_prediction_at_the_step_used(runs, sampler):
     # On an exact Gaussian the theory's acceptance at the step size actually used is exact
@@ -91,6 +92,7 @@ def _diabetes():
     return x, y
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", ["mala", "nuts"])
 def test_glm_posterior_means_agree_with_the_conjugate_answer(sampler):
     # Gaussian linear model y ~ N(X b, s²) with s = 0.7 known and a N(0, 3² I) prior: the
@@ -174,6 +176,7 @@ def test_auto_says_which_sampler_it_chose_and_why():
     assert f"chose {chosen!r}" in note and "predicted time to bulk ESS 400" in note
 
 
+@pytest.mark.slow
 def test_a_nonfinite_gradient_is_refused_with_the_random_walk_as_the_way_out():
     def logdensity(x):  # finite value everywhere; gradient NaN in x[2] wherever x[2] >= 1
         return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[2], 0.0))

@@ -19,6 +19,7 @@ def _two_modes_each(x):
     return jnp.sum(jnp.logaddexp(-0.5 * (x - 5.0) ** 2, -0.5 * (x + 5.0) ** 2))
 
 
+@pytest.mark.slow
 def test_default_pipeline_on_a_two_mode_product_names_the_modes_and_flags_every_row():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -196,6 +196,7 @@ def test_mala_matches_direct_simulation(dim, scale):
     _within(mala_jump(scale, dim), jump.mean(), jump.std() / np.sqrt(draws), "jump")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("eps, steps, dim", [(0.9, 2, 2), (0.5, 3, 10), (0.25, 6, 100),
                                              (1.99, 4, 3), (0.7, 7, 25)])
 def test_hmc_matches_direct_leapfrog(eps, steps, dim):
@@ -267,6 +268,7 @@ def _check_realised(positions, acceptance, choice):
     _within(*_chain_errors(squares**2), choice.square_jump, "E[(x'² - x²)²]")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("dim", [3, 30])
 def test_blackjax_mala_realises_the_prediction(dim):
     """blackjax.mala at the theory ``step_size`` on N(0, I_d): its mean acceptance
@@ -282,6 +284,7 @@ def test_blackjax_mala_realises_the_prediction(dim):
     _check_realised(positions, acceptance, choice)
 
 
+@pytest.mark.slow
 def test_blackjax_hmc_realises_the_prediction():
     """blackjax.hmc's kernel at the theory step, the number of leapfrog steps drawn each
     step by the documented rule (t ~ U(INTEGRATION_TIME), n = max(1, ⌊t/ε + u⌋)), on
@@ -312,6 +315,7 @@ def test_blackjax_hmc_realises_the_prediction():
     _within(*_chain_errors(acceptance), hmc_acceptance(0.45, 4, dim), "fixed-n acceptance")
 
 
+@pytest.mark.slow
 def test_blackjax_nuts_near_the_circle_model():
     """blackjax.nuts at the theory start step on N(0, I_50): its acceptance statistic is
     near the dual-averaging target 0.8 and its leapfrog steps per draw equal the circle

@@ -27,6 +27,7 @@ def _gaussian(d, condition, seed):
     return logdensity, np.asarray(mean), cov
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("d", [1, 4, 20])
 def test_acceptance_matches_theory_on_gaussian(d):
     # On an exactly Gaussian target the Laplace fit is exact, so the chains start in
@@ -113,6 +114,7 @@ def test_bad_inputs_are_refused():
     np.testing.assert_array_equal(a.states.position, b.states.position)
 
 
+@pytest.mark.slow
 def test_start_warns_when_restarts_find_another_mode():
     # An equal mixture of N(-3, 1) and N(3, 1): restarts from a box around both modes
     # find both, and start() says out loud that one Laplace approximation cannot

@@ -36,6 +36,7 @@ def logistic_run():
     return walker, refined, trace
 
 
+@pytest.mark.slow
 def test_logistic_regression_end_to_end(logistic_run):
     walker, refined, trace = logistic_run
     mode = np.asarray(walker.report.laplace.mode_flat)
@@ -88,6 +89,7 @@ def _skewed():
     return logdensity
 
 
+@pytest.mark.slow
 def test_skewed_posterior_is_detected_and_reshaped():
     walker = fisherwalk.start(_skewed(), jnp.zeros(2), jax.random.key(0))
     refined = fisherwalk.refine(walker, jax.random.key(1), progress=False)
