@@ -46,6 +46,7 @@ def walkers():
     return out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", FAMILIES)
 def test_spread_chains_keeps_the_family_and_walks(walkers, name):
     # Before the registry, spread_chains swapped a NUTS walker's loop for the random walk's.
@@ -57,6 +58,7 @@ def test_spread_chains_keeps_the_family_and_walks(walkers, name):
     np.testing.assert_array_equal(a.flat, b.flat)  # one device either way: the same program
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", FAMILIES)
 def test_refine_runs_the_steps_asked(walkers, name):
     # Before the registry a gradient sampler ran 200 warm-up steps whatever was asked.
@@ -70,6 +72,7 @@ def test_refine_runs_the_steps_asked(walkers, name):
     assert warm.tuned_start == getattr(walker.tuning, warm.tuned)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", FAMILIES)
 def test_the_tuning_names_its_family_and_only_its_own_parameter(walkers, name, tmp_path):
     walker = walkers[name]
@@ -87,6 +90,7 @@ def test_the_tuning_names_its_family_and_only_its_own_parameter(walkers, name, t
     assert getattr(saved.tuning, family.parameter) == getattr(tuning, family.parameter)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", registry.gradient_names())
 def test_an_older_tuning_file_of_a_gradient_sampler_is_read(walkers, name, tmp_path):
     # Before the registry a gradient sampler's step size was written in 'scale' (and a
@@ -101,6 +105,7 @@ def test_an_older_tuning_file_of_a_gradient_sampler_is_read(walkers, name, tmp_p
     assert saved.tuning.step_size == step and saved.tuning.scale is None
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", FAMILIES)
 def test_checkpoint_and_resume_for_every_family(walkers, name, tmp_path):
     walker = walkers[name]
@@ -113,6 +118,7 @@ def test_checkpoint_and_resume_for_every_family(walkers, name, tmp_path):
     assert walker.family.parameter in identity["tuning"]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", FAMILIES)
 def test_to_arviz_for_every_family(walkers, name):
     pytest.importorskip("arviz")
@@ -128,6 +134,7 @@ def test_to_arviz_for_every_family(walkers, name):
         assert np.all(np.isfinite(arviz.bfmi(data)))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", FAMILIES)
 def test_the_blackjax_form_steps_from_the_walkers_states(walkers, name):
     walker = walkers[name]
@@ -137,6 +144,7 @@ def test_the_blackjax_form_steps_from_the_walkers_states(walkers, name):
     assert np.all(np.isfinite(np.asarray(new.logdensity)))
 
 
+@pytest.mark.slow
 def test_mala_hands_over_the_whitened_problem_its_step_was_tuned_for(walkers):
     # Walker.algorithm for MALA used to pair the whitened step with the original
     # coordinates; its BlackJAX form now runs on z, where the step holds: the state's
@@ -149,11 +157,17 @@ def test_mala_hands_over_the_whitened_problem_its_step_was_tuned_for(walkers):
     np.testing.assert_allclose(np.asarray(states.logdensity), values, rtol=1e-12)
 
 
-def test_one_rule_for_hmcs_integration_steps(walkers):
+def test_one_rule_for_hmcs_integration_steps():
     # The expected jittered count E[n] = E[t]/ε when t ≥ ε always (randomised rounding,
     # fisherwalk.theory.gradient), t ~ U(0.8, 1.2)·π/2: E[t] = π/2. At ε = 0.3 that is
-    # 5.24, so 5 steps; the walker's BlackJAX form, blackjax_parameters and the family agree.
+    # 5.24, so 5 steps; blackjax_parameters and the family's BlackJAX form agree.
     assert hmc.fixed_integration_steps(0.3) == round(np.mean(INTEGRATION_TIME) / 0.3) == 5
+    by_hand = handoff.blackjax_parameters("hmc", 0.3, np.linalg.cholesky(PRECISION))
+    assert by_hand["num_integration_steps"] == 5
+
+
+@pytest.mark.slow
+def test_the_walkers_hmc_uses_the_one_rule(walkers):
     walker = walkers["hmc"]
     step = walker.tuning.step_size
     expected = hmc.fixed_integration_steps(step)
@@ -222,6 +236,7 @@ def textbook():
     registry.unregister(TEXTBOOK.name)
 
 
+@pytest.mark.slow  # the whole workflow for a new family: seconds-long
 def test_a_family_defined_here_runs_through_the_whole_workflow(textbook, tmp_path):
     walker = fw.start(logdensity, jnp.zeros(3), jax.random.key(30), chains=2,
                       sampler="textbook", progress=False)
@@ -294,3 +309,13 @@ def test_gradient_chains_go_over_devices_automatically(name):
     out = json.loads(done.stdout.strip().splitlines()[-1])
     assert out["auto"] == 4 and out["held"] == [1, 1, 1, 1]
     assert out["draws"] <= 1e-8
+
+
+def test_the_registry_refuses_a_second_family_of_a_name_and_keeps_the_built_in_ones(textbook):
+    assert registry.family("textbook") is textbook and "textbook" in registry.names()
+    with pytest.raises(fw.InputError, match="exists already"):
+        registry.register(TEXTBOOK)
+    with pytest.raises(fw.InputError, match="built-in"):
+        registry.unregister(registry.DEFAULT)
+    with pytest.raises(fw.InputError, match="not a registered sampler family"):
+        registry.family("slice")
