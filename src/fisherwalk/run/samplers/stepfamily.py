@@ -89,6 +89,8 @@ def _phase(context, key, state, steps) -> Phase:
     warm = warm_up(context.model.engine, jax.random.fold_in(key, 1), state,
                    context.tuning.step_size, steps=steps, chunk=DEFAULT_CHUNK,
                    names=context.names)
+    if context.bar is not None:
+        context.bar.update(steps)
     return Phase(warm.state, warm.position, warm.acceptance, warm.step_size,
                  int(warm.divergent.sum()), (), warm)
 
@@ -114,6 +116,8 @@ def _settle(context, key, tuning1, state, phase1, steps, reasons, reshaped) -> S
                      else "Every check agreed with the Gaussian picture: kept the metric H⁻¹.")
     warm2 = warm_up(context.model.engine, jax.random.fold_in(key, 2), state,
                     tuning1.step_size, steps=steps, chunk=DEFAULT_CHUNK, names=context.names)
+    if context.bar is not None:
+        context.bar.update(steps)
     final = tuning1._replace(step_size=warm2.step_size)
     target = tuning0.choice.acceptance
     notes.append(
