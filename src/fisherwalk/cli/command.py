@@ -147,8 +147,9 @@ def _say_fit(say: _Say, walker, seconds: float) -> None:
     else:
         say(f"      scale l = {tuning.scale:.3f}, step (l/√d)·S z with l/√d = "
             f"{tuning.scale / math.sqrt(tuning.dim):.3f}, S Sᵀ = H⁻¹ ({tuning.shape_kind})")
-    say(f"      target acceptance {tuning.target_acceptance:.3f}; predicted jump "
-        f"{tuning.predicted_jump:.3f} per step (squared, in sd of N(mode, H⁻¹))")
+    say(f"      target acceptance {tuning.target_acceptance:.3f}")
+    say(f"      predicted jump {tuning.predicted_jump:.3f} per step (squared, in sd of "
+        "N(mode, H⁻¹))")
     for note in walker.report.notes:
         say(_wrap(f"note: {note}"))
 
@@ -157,8 +158,9 @@ def _say_warmup(say: _Say, walker, seconds: float, chains: int) -> None:
     warm = walker.report.warmup
     say(_step(f"[3/4] warm-up, {warm.steps} steps x {chains} chains", seconds))
     ratio = warm.scale_final / warm.scale_start
-    say(f"      scale {warm.scale_start:.3f} -> {warm.scale_final:.3f} (x{ratio:.2f}); "
-        f"acceptance {warm.acceptance_final:.3f} vs target {warm.target_acceptance:.3f}")
+    label = "step size" if walker.gradient else "scale"
+    say(f"      {label} {warm.scale_start:.4g} -> {warm.scale_final:.4g} (x{ratio:.2f})")
+    say(f"      acceptance {warm.acceptance_final:.3f}, aimed at {warm.target_acceptance:.3f}")
     low, high = warm.spectrum_bounds
     spec = np.asarray(warm.covariance_spectrum)
     say(f"      warm-up covariance against H⁻¹: eigenvalues {spec.min():.2f} to {spec.max():.2f}")
@@ -177,8 +179,8 @@ def _say_sampling(say: _Say, trace, summary, seconds: float) -> None:
     if trace.length is not None:
         say(_wrap(f"      {trace.length.line()}"))
     per_chain = " ".join(f"{a:.3f}" for a in np.mean(trace.accepted, axis=1))
-    say(f"      acceptance: target {summary.target_acceptance:.3f}, realised "
-        f"{summary.acceptance_pooled:.3f} (chains: {per_chain})")
+    say(f"      acceptance realised {summary.acceptance_pooled:.3f} (chains: {per_chain})")
+    say(f"      acceptance aimed at {summary.target_acceptance:.3f}")
     if summary.realised_jump is not None:
         say(f"      jump per step: predicted {summary.predicted_jump:.3f}, realised "
             f"{summary.realised_jump:.3f}")
@@ -495,8 +497,10 @@ def build_parser() -> argparse.ArgumentParser:
     fmt = argparse.RawDescriptionHelpFormatter
     parser = argparse.ArgumentParser(
         prog="fisherwalk", formatter_class=fmt,
-        description="Random-walk Metropolis tuned before its first step from the Laplace "
-                    "approximation\n(mode and observed Fisher information) of the posterior.",
+        description="Bayesian sampling tuned before its first step from the Laplace "
+                    "approximation\n(mode and observed Fisher information) of the posterior: "
+                    "random-walk Metropolis,\nMALA, HMC or NUTS (BlackJAX), a short warm-up, "
+                    "diagnostics, figures and a record.",
         epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
                "  fisherwalk run my_model.py --out results\n\n"
                "'fisherwalk COMMAND --help' describes each command.")

@@ -59,6 +59,7 @@ class LaplaceFit(NamedTuple):
     #                            scouts, total
     modes_flat: tuple[np.ndarray, ...] = ()  # the distinct modes ravelled, as in ``modes``
     modes_fisher: tuple[np.ndarray, ...] = ()  # the Fisher information at each of them
+    order: tuple[int, ...] = ()  # ravelled indices in the order the user wrote them (() = as is)
 
 
 def fisher_from_cholesky(cholesky: jax.Array) -> jax.Array:
@@ -276,4 +277,5 @@ def laplace(
         seconds=seconds,
         modes_flat=tuple(np.asarray(m.x, dtype) for m, _ in modes),
         modes_fisher=tuple(np.asarray(m_info, dtype) for _, m_info in modes),
+        order=pytrees.written_order(position),
     )

@@ -25,6 +25,7 @@ from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
 from .gradient_run import gradient_chunks
 from .memory import check_walk_memory
 from .progress import progress_bar
+from .runfacts import run_facts
 from .walker import Walker, continuable_state
 
 _FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
@@ -322,4 +323,5 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
                  complete, length=length,
                  divergent=collector.divergent if gradient else None,
-                 gradients=collector.gradients if gradient else None)
+                 gradients=collector.gradients if gradient else None,
+                 facts=run_facts(final))
