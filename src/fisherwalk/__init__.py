@@ -17,8 +17,11 @@ from .errors import (
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
+from .results.facts import RunFacts
+from .results.report import Summary
 from .results.trace import Trace
 from .run.blackjax_handoff import handoff
+from .run.reopen import reopen
 from .run.resume import resume
 from .run.sampling import walk
 from .run.start import start
@@ -46,6 +49,7 @@ __all__ = [
     "refine",
     "walk",
     "resume",
+    "reopen",
     "save_tuning",
     "load_tuning",
     "handoff",
@@ -56,6 +60,8 @@ __all__ = [
     "Walker",
     "WarmupReport",
     "Trace",
+    "RunFacts",
+    "Summary",
     "FisherwalkError",
     "InputError",
     "ModelError",

@@ -62,14 +62,17 @@ def leaf_variables(tree: Any, *, bare: str) -> dict[str, np.ndarray]:
 
 
 def _written(variables: dict[str, np.ndarray], trace) -> dict[str, np.ndarray]:
-    """The posterior's variables in the order the user wrote the position's leaves."""
-    first: dict[str, int] = {}
-    written = [trace.names[j] for j in in_written_order(trace.facts.order, len(trace.names))]
-    for rank, name in enumerate(written):
-        for key in variables:
-            if key not in first and (name == key or name.startswith(key + "[")):
-                first[key] = rank
-    return dict(sorted(variables.items(), key=lambda item: first.get(item[0], len(written))))
+    """The posterior's variables in the order the user wrote the position's leaves (the
+    rank of a leaf is where its first entry comes in the written order)."""
+    facts = trace.facts
+    rank = np.empty(facts.dim, dtype=int)
+    rank[in_written_order(facts.order, facts.dim)] = np.arange(facts.dim)
+    first, start = {}, 0
+    for name, shape in facts.leaves:
+        size = int(np.prod(shape, dtype=int))
+        first[name] = int(rank[start:start + size].min()) if size else facts.dim
+        start += size
+    return dict(sorted(variables.items(), key=lambda item: first.get(item[0], facts.dim)))
 
 
 def settings(trace) -> dict[str, Any]:

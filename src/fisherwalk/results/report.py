@@ -23,7 +23,7 @@ import numpy as np
 
 from ..errors import InputError, explain
 from . import alerts, diagnostics, mcse
-from .table import interval_probabilities
+from .table import check_text, interval_probabilities
 from .table import render as _render
 
 __all__ = ["Summary", "summarize"]
@@ -84,6 +84,11 @@ class Summary(NamedTuple):
     def __str__(self) -> str:
         return _render(self)
 
+    def to_csv(self) -> str:
+        """One row per parameter with every column (the names, then the numbers of
+        :meth:`to_dict`'s rows; empty cells for None and non-finite values)."""
+        return csv_text(self)
+
     def to_dict(self) -> dict:
         """Plain JSON-ready content; non-finite numbers become ``None`` (the warnings
         say why)."""
@@ -130,6 +135,30 @@ class Summary(NamedTuple):
             "warnings": list(self.warnings),
             "notes": list(self.notes),
         }
+
+
+CSV_COLUMNS = ("mean", "sd", "mcse", "mcse_sd", "lower", "median", "upper", "mcse_lower",
+               "mcse_median", "mcse_upper", "ess_bulk", "ess_tail", "ess_bulk_per_second",
+               "rhat")
+
+
+def csv_text(summary: Summary) -> str:
+    """The per-parameter table as CSV text (RFC 4180 quoting; numbers in ``repr`` form, so
+    they read back exactly). ``lower``/``upper`` are the central interval's ends."""
+    import csv
+    import io
+
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(("name", *CSV_COLUMNS, "check"))
+    for j, name in enumerate(summary.names):
+        cells = []
+        for column in CSV_COLUMNS:
+            values = getattr(summary, column)
+            value = None if values is None else _plain(values[j])
+            cells.append("" if value is None else repr(value))
+        writer.writerow((name, *cells, check_text(summary, j)))
+    return out.getvalue()
 
 
 def _plain(value):

@@ -15,7 +15,7 @@ import numpy as np
 
 from . import alerts
 
-__all__ = ["render", "interval_probabilities"]
+__all__ = ["render", "interval_probabilities", "check_text"]
 
 _GAP = "  "
 
@@ -59,6 +59,11 @@ def _rate(value: float) -> str:
     if not math.isfinite(value) or value == 0:
         return _two_digits(value)
     return _num(value, int(min(10, max(0, 2 - math.floor(math.log10(abs(value)))))))
+
+
+def check_text(s, j: int) -> str:
+    """The check column of parameter ``j``: what failed (R-hat, ESS, modes) or "-"."""
+    return _flags(s, j)
 
 
 def _flags(s, j: int) -> str:
