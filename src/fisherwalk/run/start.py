@@ -32,8 +32,8 @@ from .gradient_run import (
     integration_time_words,
 )
 from .progress import progress_bar
-from .tuningfile import SavedTuning, check_tuning
 from .starts import chosen_starts
+from .tuningfile import SavedTuning, check_tuning
 from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
 
 __all__ = ["start", "proposal_shape", "tuning_for", "SHAPES", "LAPLACE_DRAWS"]
