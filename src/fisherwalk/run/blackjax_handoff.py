@@ -62,7 +62,8 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     -------
     states
         One BlackJAX state per chain, batched along the first axis, at the end of the
-        warm-up (``jax.vmap(kernel.step)`` takes them as they are).
+        warm-up (``jax.vmap(kernel.step)`` takes them as they are). With ``chains=1``
+        the one state, unbatched: ``kernel.step(key, state)`` takes it as it is.
     parameters
         ``{"step_size", "inverse_mass_matrix"}`` (NUTS; HMC adds
         ``"num_integration_steps"``, the rounded mean of the jittered count), or
@@ -85,11 +86,14 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     walker = start(logdensity_fn, position, key_start, chains, sampler=kind, **start_options)
     walker = refine(walker, key_warm, steps=200)
     tuning = walker.tuning
+    states = walker.states
+    if walker.chains == 1:  # a single chain's loop takes an unbatched state
+        states = jax.tree.map(lambda leaf: leaf[0], states)
     if kind == "rwm":
-        return walker.states, {"sigma": np.asarray(tuning.factor)}
+        return states, {"sigma": np.asarray(tuning.factor)}
     parameters = {"step_size": float(tuning.step_size),
                   "inverse_mass_matrix": np.asarray(tuning.inverse_mass_matrix)}
     if kind == "hmc":
         values, probabilities = hmc_steps_law(tuning.step_size)
         parameters["num_integration_steps"] = int(round(float(values @ probabilities)))
-    return walker.states, parameters
+    return states, parameters

@@ -48,6 +48,7 @@ from blackjax.mcmc.mala import MALAState
 from scipy.linalg import cholesky as _host_cholesky
 from scipy.linalg import solve_triangular
 
+from ..base.programs import remembered
 from ..errors import InputError, explain
 from ..theory.gradient import INTEGRATION_TIME, optimal_gradient_step
 
@@ -87,6 +88,7 @@ class GradientChunk(NamedTuple):
     gradients: jax.Array  # (draws, chains) int: gradient evaluations over the thin steps
     faults: jax.Array  # (draws, chains) int: flagged transitions (module docstring)
     step_size: jax.Array  # (draws,) step size used at the last step of each kept draw
+    energy: jax.Array  # (draws, chains) BlackJAX's info.energy at the last step (HMC, NUTS)
 
 
 class GradientEngine(NamedTuple):
@@ -198,7 +200,8 @@ def make_transition(sampler: str, max_num_doublings: int) -> Callable:
         def step(key, state, logp, step_size, n_steps):
             new, info = kernel(key, MALAState(*state), logp, step_size)
             fault = info.acceptance_rate == 0
-            return tuple(new), (info.acceptance_rate, jnp.zeros((), bool), jnp.int32(1), fault)
+            return tuple(new), (info.acceptance_rate, jnp.zeros((), bool), jnp.int32(1), fault,
+                                jnp.full((), jnp.nan, new.logdensity.dtype))
 
     elif sampler == "hmc":
         kernel = blackjax.hmc.build_kernel()
@@ -207,7 +210,11 @@ def make_transition(sampler: str, max_num_doublings: int) -> Callable:
             metric = jnp.ones_like(state[0])
             new, info = kernel(key, HMCState(*state), logp, step_size, metric, n_steps)
             fault = jnp.isnan(info.proposal.logdensity)
-            return tuple(new), (info.acceptance_rate, info.is_divergent, n_steps, fault)
+            # info.energy is the trajectory end's; a rejected step keeps the start's
+            start = -state[1] + 0.5 * jnp.sum(info.momentum**2)
+            energy = jnp.where(info.is_accepted, info.energy, start)
+            return tuple(new), (info.acceptance_rate, info.is_divergent, n_steps, fault,
+                                energy)
 
     else:
         kernel = blackjax.nuts.build_kernel()
@@ -219,7 +226,8 @@ def make_transition(sampler: str, max_num_doublings: int) -> Callable:
             fault = (jnp.isnan(info.trajectory_leftmost_state.logdensity)
                      | jnp.isnan(info.trajectory_rightmost_state.logdensity))
             return tuple(new), (info.acceptance_rate, info.is_divergent,
-                                info.num_integration_steps.astype(jnp.int32), fault)
+                                info.num_integration_steps.astype(jnp.int32), fault,
+                                info.energy)
 
     return step
 
@@ -237,34 +245,35 @@ def _compiled(sampler: str, logdensity_flat: Callable, chains: int, target: floa
         vstep = jax.vmap(transition, in_axes=(0, 0, None, None, None))
 
         def one_step(carry, step):
-            chain, ctrl, acc, div, grads, faults = carry
+            chain, ctrl, acc, div, grads, faults, _ = carry
             eps = jnp.where(ctrl.adapt, jnp.exp(ctrl.dual.log_step_size), ctrl.step_size)
             key_jitter, keys = step_keys(rng_key, step, chains)
             n_steps = integration_steps(key_jitter, eps)
-            new, (rate, divergent, n_grad, fault) = vstep(keys, tuple(chain), logp, eps, n_steps)
+            new, (rate, divergent, n_grad, fault, energy) = vstep(keys, tuple(chain), logp, eps,
+                                                                   n_steps)
             updated = dual_update(ctrl.dual, jnp.mean(rate))
             dual = jax.tree.map(lambda a, b: jnp.where(ctrl.adapt, a, b).astype(b.dtype),
                                 updated, ctrl.dual)
             carry = (ChainState(*new), ctrl._replace(dual=dual), acc + rate,
                      div + divergent.astype(jnp.int32), grads + n_grad,
-                     faults + fault.astype(jnp.int32))
+                     faults + fault.astype(jnp.int32), energy.astype(acc.dtype))
             return carry, eps
 
         def kept(carry, index):
             chain, ctrl = carry
             zeros = jnp.zeros(chains, dtype=chain.logdensity.dtype)
             counts = jnp.zeros(chains, dtype=jnp.int32)
-            inner = (chain, ctrl, zeros, counts, counts, counts)
+            inner = (chain, ctrl, zeros, counts, counts, counts, zeros)
             if thin == 1:  # no inner loop: one step per kept draw
                 inner, eps = one_step(inner, first_step + index)
             else:
                 steps = first_step + index * thin + jnp.arange(thin)
                 inner, eps = jax.lax.scan(one_step, inner, steps)
                 eps = eps[-1]
-            chain, ctrl, acc, div, grads, faults = inner
+            chain, ctrl, acc, div, grads, faults, energy = inner
             theta = mode + jnp.dot(chain.position, whitening.T, precision=_HIGHEST)
             return (chain, ctrl), (theta, chain.logdensity, acc / thin, div, grads, faults,
-                                   eps)
+                                   eps, energy)
 
         (final, ctrl), outs = jax.lax.scan(kept, (state, control), jnp.arange(draws))
         return GradientChunk(final, ctrl, *outs)
@@ -310,15 +319,18 @@ def make_gradient_engine(sampler: str, logdensity_flat: Callable, mode, cholesky
     whitening = whitening_factor(cholesky).astype(mode.dtype)
     if target_acceptance is None:
         target_acceptance = optimal_gradient_step(sampler, mode.shape[0]).acceptance
-    compiled = _compiled(sampler, logdensity_flat, chains, float(target_acceptance),
-                         int(max_num_doublings), float(gamma))
+    compiled = remembered(logdensity_flat, "gradient loop", (  # compiled once per model
+        sampler, int(chains), float(target_acceptance), int(max_num_doublings), float(gamma)),
+        lambda: _compiled(sampler, logdensity_flat, chains, float(target_acceptance),
+                          int(max_num_doublings), float(gamma)))
     mode_device, whitening_device = jax.device_put(mode), jax.device_put(whitening)
 
     def run(rng_key, first_step, state, control, draws: int, thin: int = 1) -> GradientChunk:
         return compiled(rng_key, np.int64(first_step), state, control, mode_device,
                         whitening_device, draws=int(draws), thin=int(thin))
 
-    evaluate = jax.jit(jax.vmap(jax.value_and_grad(logdensity_flat)))
+    evaluate = remembered(logdensity_flat, "gradient evaluate", (), lambda: jax.jit(
+        jax.vmap(jax.value_and_grad(logdensity_flat))))
     return GradientEngine(sampler, int(chains), mode, whitening, float(target_acceptance),
                           int(max_num_doublings), logdensity_flat, run, evaluate)
 

@@ -24,6 +24,7 @@ from typing import Any, NamedTuple
 import jax
 import numpy as np
 
+from ..base.programs import remembered
 from ..errors import InputError, explain
 from ..theory.gradient import (
     GRADIENT_SAMPLERS,
@@ -68,7 +69,8 @@ def gradient_tuning(sampler: str, shape, cholesky, shape_kind: str,
 
 def gradient_model(model: Model, tuning: GradientTuning, mode_flat, chains: int) -> Model:
     """The walker's model with the gradient sampler's compiled loop as its engine."""
-    flat_logdensity = _flat(model)
+    flat_logdensity = remembered(model.logdensity_fn, "flat", id(model.unravel),
+                                 lambda: _flat(model))  # one closure per model: compiled once
     engine = gradient.make_gradient_engine(
         tuning.sampler, flat_logdensity, np.asarray(mode_flat), tuning.precision_cholesky,
         int(chains), target_acceptance=tuning.choice.acceptance)
@@ -111,6 +113,7 @@ class ChunkView(NamedTuple):
     faults: Any  # (draws, chains) flagged transitions
     divergent: Any  # (draws, chains) divergent transitions
     gradients: Any  # (draws, chains) gradient evaluations
+    energy: Any = None  # (draws, chains) Hamiltonian energy at the kept draw (HMC, NUTS)
 
 
 def gradient_chunks(model: Model, tuning: GradientTuning, rng_key, state, draws: int, *,
@@ -128,7 +131,7 @@ def gradient_chunks(model: Model, tuning: GradientTuning, rng_key, state, draws:
         state = out.state
         yield min(chunk, draws - k * chunk), ChunkView(
             out.state, out.position, out.logdensity, out.acceptance_rate,
-            out.acceptance_rate, out.faults, out.divergent, out.gradients)
+            out.acceptance_rate, out.faults, out.divergent, out.gradients, out.energy)
 
 
 # ----------------------------------------------------------------------------- auto

@@ -44,7 +44,7 @@ def run_facts(walker) -> RunFacts:
         title=SAMPLER_TITLES.get(sampler, sampler),
         setting_label="scale" if sampler == "rwm" else "step size",
         setting=setting,
-        setting_theory=float(warm.scale_start) if warm is not None else setting,
+        setting_theory=float(getattr(warm, "scale_start", setting)),
         aim=float(warm.target_acceptance) if warm is not None else predicted,
         predicted_acceptance=predicted,
         predicted_jump=None if tuning.predicted_jump is None else float(tuning.predicted_jump),
@@ -60,6 +60,6 @@ def run_facts(walker) -> RunFacts:
         modes_flat=tuple(np.asarray(m, dtype=float) for m in getattr(fit, "modes_flat", ())),
         modes_logdensity=tuple(float(h) for _, h in fit.modes),
         modes_fisher=tuple(np.asarray(m, dtype=float) for m in getattr(fit, "modes_fisher", ())),
-        warmup_steps=None if warm is None else int(warm.steps),
+        warmup_steps=None if warm is None else int(getattr(warm, "steps", 0)),
         leaves=_leaves(fit.mode),
     )

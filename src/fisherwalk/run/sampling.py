@@ -29,9 +29,9 @@ from .runfacts import run_facts
 from .walker import Walker, continuable_state
 
 _FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")  # what a chunk may carry (the last two: gradient samplers only)
+           "gradients", "energy")  # what a chunk may carry (the last three: gradient samplers)
 _ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")
+           "gradients", "energy")
 
 
 class _Collector:
@@ -45,6 +45,7 @@ class _Collector:
         self.faults = np.zeros((chains, draws), dtype=np.int32)
         self.divergent = np.zeros((chains, draws), dtype=np.int32)
         self.gradients = np.zeros((chains, draws), dtype=np.int32)
+        self.energy = np.full((chains, draws), np.nan, dtype=dtype)
         self.done = 0
 
     def add(self, chunk: Chunk, keep: int) -> None:
@@ -333,4 +334,6 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  complete, length=length,
                  divergent=collector.divergent if gradient else None,
                  gradients=collector.gradients if gradient else None,
+                 energy=collector.energy if gradient and walker.tuning.sampler != "mala"
+                 else None,
                  facts=run_facts(final))

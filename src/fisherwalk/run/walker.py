@@ -35,6 +35,7 @@ from blackjax.mcmc.random_walk import RWState
 from scipy.linalg import solve_triangular
 
 from ..base import pytrees
+from ..base.programs import remembered, structure_key
 from ..errors import InputError, SamplingError, explain
 from ..fit.laplace import LaplaceFit
 from ..theory.gradient import (
@@ -360,7 +361,13 @@ def _gradient_states(sampler: str, positions, logdensity, grads):
 
 
 def make_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
-    """The closures over a log density: ravelled, batched and jitted, and the engine."""
+    """The closures over a log density: ravelled, batched and jitted, and the engine
+    (built once per log density, structure and chains: :mod:`fisherwalk.base.programs`)."""
+    return remembered(logdensity_fn, "model", (structure_key(mode), int(chains)),
+                      lambda: _new_model(logdensity_fn, mode, chains))
+
+
+def _new_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
     _, unravel = jax.flatten_util.ravel_pytree(mode)
 
     def flat_logdensity(vector):
