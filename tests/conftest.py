@@ -19,3 +19,31 @@ def _compile_cache_in_a_temporary_folder(tmp_path_factory):
         os.environ.pop("XDG_CACHE_HOME", None)
     else:
         os.environ["XDG_CACHE_HOME"] = before
+
+
+@pytest.fixture
+def interrupt_sampling(monkeypatch):
+    """``interrupt_sampling(n)``: walk()'s chunk loop raises KeyboardInterrupt (a Ctrl-C)
+    when it is about to hand over chunk ``n`` (0-based), for every sampler family;
+    ``interrupt_sampling(None)`` undoes it."""
+    from fisherwalk.run import sampling
+
+    real = sampling._sample
+
+    def interrupt(after):
+        if after is None:
+            monkeypatch.setattr(sampling, "_sample", real)
+            return
+
+        def patched(walker, key, state, collector, store, chunks, *rest, **options):
+            def stopping(*args, **kwargs):
+                for index, item in enumerate(chunks(*args, **kwargs)):
+                    if index == after:
+                        raise KeyboardInterrupt
+                    yield item
+
+            return real(walker, key, state, collector, store, stopping, *rest, **options)
+
+        monkeypatch.setattr(sampling, "_sample", patched)
+
+    return interrupt

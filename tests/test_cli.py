@@ -47,7 +47,7 @@ def test_demo_draws_file_needs_no_pickle(demo_run):
         draws, names = saved["draws"], saved["names"]
         assert draws.shape == (2, 300, 8)
         assert saved["logdensity"].shape == (2, 300)
-        assert list(names) == [f"beta[{i}]" for i in range(8)]
+        assert list(names) == record["scenario"]["labels"]  # one name everywhere
     # the scenario's labels name the summary's rows (table and record)
     assert [row["name"] for row in record["summary"]["parameters"]] == \
         record["scenario"]["labels"]
@@ -149,7 +149,9 @@ def test_run_a_good_model_file(tmp_path, capsys):
     source = (MODELS / "good_model.py").read_bytes()
     assert record["model_file"]["sha256"] == hashlib.sha256(source).hexdigest()
     assert record["model_file"]["labels"] == ["log sd of a reading", "true weight"]
-    assert record["tuning"]["names"] == ["log_sigma", "mu"]
+    # one name per parameter everywhere: the tuning and Laplace sections too
+    assert record["tuning"]["names"] == ["log sd of a reading", "true weight"]
+    assert sorted(record["laplace"]["mode"]) == sorted(record["model_file"]["labels"])
     for name in FIGURES + ("draws.npz",):
         assert (tmp_path / name).stat().st_size > 0
 

@@ -15,7 +15,6 @@ from scipy import stats
 from fisherwalk import InputError
 from fisherwalk.cli import command as cli
 from fisherwalk.cli.datafile import read_table
-from fisherwalk.run import sampling
 
 MODELS = Path(__file__).parent / "models"
 TABLE_MODEL = MODELS / "table_model.py"
@@ -116,8 +115,14 @@ def test_table_run_stores_pointwise_and_derived(table_run):
     assert set(rows) == {"a", "b", "rate_at_zero"}
     with np.load(out / "draws.npz", allow_pickle=False) as saved:
         draws, names = saved["draws"], list(saved["names"])
-        pointwise, derived = saved["pointwise"], saved["derived"]
+        derived = saved["derived"]
         assert list(saved["derived_names"]) == ["rate_at_zero"]
+        assert "pointwise" not in saved.files  # kept in its own compressed file
+    with np.load(out / "pointwise.npz", allow_pickle=False) as saved:
+        pointwise = saved["pointwise"]
+    stored = record["sampling"]["pointwise"]
+    assert stored["file"] == "pointwise.npz" and stored["shape"] == [2, 200, 6]
+    assert stored["bytes"] == (out / "pointwise.npz").stat().st_size
     assert draws.shape == (2, 200, 2) and pointwise.shape == (2, 200, 6)
     a, b = draws[..., names.index("a")], draws[..., names.index("b")]
     count = np.array([3, 1, 5, 2, 0, 4.0])
@@ -128,29 +133,24 @@ def test_table_run_stores_pointwise_and_derived(table_run):
     assert rows["rate_at_zero"]["mean"] == pytest.approx(np.exp(a).mean(), rel=1e-12)
 
 
-def test_interrupted_run_resumes_to_the_same_draws(table_run, tmp_path, monkeypatch, capsys):
+def test_interrupted_run_resumes_to_the_same_draws(table_run, tmp_path, interrupt_sampling,
+                                                  capsys):
     _, data, reference = table_run
     out = tmp_path / "out"
-    real = sampling.run_chunks
-
-    def stopping(*args, **kwargs):  # Ctrl-C after the first chunk of kept draws
-        for index, item in enumerate(real(*args, **kwargs)):
-            if index == 1:
-                raise KeyboardInterrupt
-            yield item
-
-    monkeypatch.setattr(sampling, "run_chunks", stopping)
+    interrupt_sampling(1)  # Ctrl-C after the first chunk of kept draws
     code = cli.main(["run", str(TABLE_MODEL), "--data", str(data), "--out", str(out), *RUN])
     assert code == 130
     assert f"fisherwalk resume {out} --model" in capsys.readouterr().err
     assert sorted(p.name for p in out.iterdir()) == ["checkpoint", "command.json"]
-    monkeypatch.setattr(sampling, "run_chunks", real)
+    interrupt_sampling(None)
     code = cli.main(["resume", str(out), "--model", str(TABLE_MODEL), "--quiet",
                      "--no-compile-cache"])
     assert code == 0
     with np.load(out / "draws.npz") as got, np.load(reference / "draws.npz") as want:
-        for name in ("draws", "logdensity", "pointwise", "derived"):
+        for name in ("draws", "logdensity", "derived"):
             np.testing.assert_array_equal(got[name], want[name])
+    with np.load(out / "pointwise.npz") as got, np.load(reference / "pointwise.npz") as want:
+        np.testing.assert_array_equal(got["pointwise"], want["pointwise"])
     record = json.loads((out / "record.json").read_text())
     assert record["command"] == "resume" and record["sampling"]["complete"] is True
     assert record["options"]["thin"] == 2

@@ -13,7 +13,6 @@ import numpy as np
 import pytest
 
 from fisherwalk.cli import command
-from fisherwalk.run import sampling
 
 MODEL = textwrap.dedent("""
     import jax.numpy as jnp
@@ -90,19 +89,11 @@ def test_operating_system_error_is_one_line(model, tmp_path, capsys, monkeypatch
     assert code == 2 and err.strip() == f"fisherwalk run: Permission denied: {model}"
 
 
-def test_float32_model_and_ctrl_c_during_sampling(model, tmp_path, capsys, monkeypatch):
+def test_float32_model_and_ctrl_c_during_sampling(model, tmp_path, capsys, interrupt_sampling):
     # Trial: a model file whose initial_position is float32 failed after the fit (carry
     # dtypes), and Ctrl-C during sampling exited 0. Here the float32 model runs, and a
     # Ctrl-C after three chunks of sampling keeps 300 draws, says so and exits 130.
-    real = sampling.run_chunks
-
-    def interrupted(*args, **kwargs):
-        for count, item in enumerate(real(*args, **kwargs)):
-            if count == 3:
-                raise KeyboardInterrupt
-            yield item
-
-    monkeypatch.setattr(sampling, "run_chunks", interrupted)
+    interrupt_sampling(3)
     out_dir = tmp_path / "o"
     with pytest.warns(Warning):  # the Float32Warning and walk()'s interruption warning
         code, out, err = _main(capsys, "run", model, "--out", out_dir, "--chains", "2",

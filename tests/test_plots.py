@@ -117,7 +117,33 @@ def test_long_chains_are_drawn_thinned_and_say_so(trace):
 def test_panel_cap_is_stated_in_the_title(trace):
     fig = plots.plot_traces(trace, max_panels=2)
     assert len([ax for ax in fig.axes if ax.get_visible()]) == 2
-    assert "first 2 of 3 parameters" in fig.get_suptitle()
+    assert "2 of 3 parameters: worst R-hat, lowest ESS" in fig.get_suptitle()
+
+
+def test_focus_chooses_the_panels(trace):
+    fig = plots.plot_marginals(trace, focus=["x[2]", "x[0]"])
+    titles = [ax.get_title() for ax in fig.axes if ax.get_visible()]
+    assert titles == ["x[0]", "x[2]"]  # in the run's order, not the order asked
+    with pytest.raises(InputError, match="matches no parameter"):
+        plots.plot_traces(trace, focus="sigma")
+
+
+def test_without_focus_the_worst_mixing_parameters_are_drawn(trace):
+    # 40 parameters: 39 copies of well-mixed chains and one (w[23]) whose chains sit apart
+    # (R-hat far above 1.01) plus one spread-like name (tau): with 4 panels, both appear.
+    from fisherwalk.results.facts import RunFacts
+
+    rng = np.random.default_rng(5)
+    flat = rng.normal(size=(2, 150, 40))
+    flat[1, :, 23] += 3.0
+    names = tuple(f"w[{i}]" for i in range(39)) + ("tau",)
+    facts = trace.facts._replace(names=names, order=tuple(range(40)), mode=np.zeros(40),
+                                 fisher_cholesky=np.eye(40))
+    assert isinstance(facts, RunFacts)
+    wide = trace._replace(flat=flat, facts=facts)
+    chosen, note = plots.panels(wide, None, 4)
+    assert 23 in chosen and 39 in chosen and len(chosen) == 4
+    assert "worst R-hat" in note
 
 
 def test_wrong_number_of_labels_is_refused(trace):

@@ -173,6 +173,24 @@ def _kinked(x):  # finite everywhere; the gradient in x[1] is NaN wherever x[1] 
     return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[1], 0.0))
 
 
+def _half_line(x):  # finite only for x[0] < 1
+    return jnp.where(x[0] < 1.0, -0.5 * jnp.sum(x**2), -jnp.inf)
+
+
+def _unfinished_checkpoint(tmp):
+    path = tmp / "run.ckpt"
+    fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+    state = json.loads((path / "state.json").read_text())
+    state["done"] = 10
+    (path / "state.json").write_text(json.dumps(state))
+    return fisherwalk.reopen(path)
+
+
+def _focus_nothing(tmp):
+    trace = fisherwalk.walk(_walker(), KEY, draws=30, progress=False)
+    return trace.summary(focus="sigma*")
+
+
 CASES = [
     ("start", "an unknown sampler",
      lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, sampler="slice"),
@@ -285,6 +303,29 @@ CASES = [
      "tuning.target_acceptance"),
     ("fisherwalk run / demo", "--out naming a file (checked before the fit)",
      _out_is_a_file, fisherwalk.InputError, "is a file"),
+    ("start(chain_starts=...)", "chain starts whose leading axis is not the number of chains",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=2,
+                                chain_starts=np.zeros((3, 2)), progress=False),
+     fisherwalk.InputError, "must be (2, 2)"),
+    ("start(chain_starts=...)", "a chain start holding NaN",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=2,
+                                chain_starts=np.array([[0.0, 0.0], [np.nan, 0.0]]),
+                                progress=False),
+     fisherwalk.InputError, "chain 1, parameter x[0]"),
+    ("start(chain_starts=...)", "a chain start where the log density is -inf",
+     lambda t: fisherwalk.start(_half_line, jnp.zeros(2), KEY, chains=2,
+                                chain_starts=np.array([[0.0, 0.0], [2.0, 0.0]]),
+                                progress=False),
+     fisherwalk.ModelError, "start of chain 1"),
+    ("walk(predict=...)", "a prediction function that takes no key",
+     lambda t: fisherwalk.walk(_walker(), KEY, draws=10, progress=False,
+                               predict=lambda x: x), fisherwalk.ModelError, "predict"),
+    ("Trace.summary(focus=...)", "a focus that matches no parameter", _focus_nothing,
+     fisherwalk.InputError, "matches no parameter"),
+    ("reopen", "a folder that is neither a run folder nor a checkpoint",
+     lambda t: fisherwalk.reopen(t), fisherwalk.InputError, "neither"),
+    ("reopen", "a checkpoint whose run has not finished", _unfinished_checkpoint,
+     fisherwalk.CheckpointError, "not finished"),
     ("fisherwalk run / demo", "--seed that is not plain digits (e.g. 1e23)",
      lambda t: parse_whole_number("1e23", "--seed", "option --seed", minimum=0,
                                   maximum=MAX_SEED),

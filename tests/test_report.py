@@ -110,7 +110,7 @@ def test_rhat_warning_names_the_parameter():
     quoted = re.search(r"beta\[0\] \(([0-9.]+)\)", rhat_text[0]).group(1)
     row = [line for line in main_table(str(summary)).splitlines()
            if line.split() and line.split()[0] == "beta[0]"][0]
-    assert row.split()[9] == quoted and float(quoted) > 1.01  # the R-hat column
+    assert row.split()[1] == quoted and float(quoted) > 1.01  # the R-hat column
 
 
 def test_low_ess_warning_names_parameters_and_needed_draws():
@@ -219,10 +219,11 @@ def test_long_parameter_lists_stay_aligned():
             if line.split() and (line.split()[0] in names or line.split()[0] == "parameter")]
     assert len(rows) == dim + 1
     # right edges of the numeric columns (every token after the name, before the check
-    # cell) coincide in every row, and the R-hat column ends under its title
+    # cell; the interval is "lower – upper", three tokens) coincide in every row, and the
+    # R-hat column ends under its title
     edges = {tuple([m.end() for m in re.finditer(r"\S+", line)][1:-1]) for line in rows[1:]}
-    assert len(edges) == 1 and len(next(iter(edges))) == 9
-    assert rows[0].index("R-hat") + len("R-hat") == next(iter(edges))[-1]
+    assert len(edges) == 1 and len(next(iter(edges))) == 10
+    assert rows[0].index("R-hat") + len("R-hat") == next(iter(edges))[0]
 
 
 def test_bad_arguments_raise():
@@ -257,8 +258,8 @@ def test_interval_choice_sets_the_quantiles_and_the_headers(interval, low, high)
     np.testing.assert_allclose(summary.mcse_upper, dg.mcse_quantile(x, hi), rtol=1e-14)
     titles = [line.split() for line in str(summary).splitlines() if "parameter" in line]
     assert len(titles) == 2  # the estimates and the Monte Carlo errors
-    for row in titles:
-        assert row.index(low) + 2 == row.index(high) and "50%" in row
+    assert "median" in titles[0] and f"{interval * 100:g}%" in titles[0]  # one interval column
+    assert titles[1].index(low) + 1 == titles[1].index(high) and "median" in titles[1]
     assert f"{interval:.0%} interval" in str(summary) or f"{interval * 100:g}% interval" in str(
         summary)
     content = summary.to_dict()
@@ -276,9 +277,13 @@ def test_ess_per_second_column_only_with_seconds():
     x = good_draws(13)
     timed = summarize(x, NAMES, seconds=2.5)
     np.testing.assert_allclose(timed.ess_bulk_per_second, dg.ess_bulk(x) / 2.5, rtol=1e-15)
-    assert "ESS/s" in str(timed) and "2.5 s" in str(timed)
+    # the rate sits in the header, not in the table: the slowest parameter's and the median
+    slowest = int(np.argmin(timed.ess_bulk_per_second))
+    assert "2.5 s" in str(timed) and "bulk ESS per second" in str(timed)
+    assert f"for the slowest ({NAMES[slowest]})" in str(timed)
+    assert "ESS/s" not in str(timed)
     plain = summarize(x, NAMES)
-    assert plain.ess_bulk_per_second is None and "ESS/s" not in str(plain)
+    assert plain.ess_bulk_per_second is None and "ESS per second" not in str(plain)
     row = plain.to_dict()["parameters"][0]
     assert row["ess_bulk_per_second"] is None and row["mcse_sd"] > 0
 
@@ -305,7 +310,9 @@ def test_acceptance_warning_cites_the_target_in_the_header():
                         scale=2.801, gaussian_acceptance=0.200)
     text = str(summary)
     header = text.split("parameter")[0]
-    assert "target 0.296 at scale 2.801" in header and "predicts 0.200" in header
+    # one figure per line: the target, then the Gaussian picture's prediction
+    assert re.search(r"\n  target +0\.296 \(the warm-up's aim", header)
+    assert re.search(r"\n  predicted +0\.200 \(the Gaussian picture at scale 2\.801\)", header)
     realised = re.search(r"realised (0\.\d{3}) \(Monte Carlo error (0\.\d{3})", header)
     assert realised.group(1) == f"{steps.mean():.3f}"
     warned = [w for w in summary.warnings if "realised acceptance" in w]
@@ -323,8 +330,8 @@ def test_acceptance_warning_cites_the_target_in_the_header():
     summary = summarize(good_draws(14), NAMES, acceptance_steps=steps, target_acceptance=0.296,
                         scale=2.4, gaussian_acceptance=0.2962)
     warned = [w for w in summary.warnings if "realised acceptance" in w]
-    assert "target 0.296 at scale 2.400" in warned[0] and "Gaussian picture" in warned[0]
-    assert "Gaussian picture's prediction at this scale" in str(summary).split("parameter")[0]
+    assert "target 0.296 at scale 2.4" in warned[0] and "Gaussian picture" in warned[0]
+    assert "Gaussian picture's prediction at scale 2.4" in str(summary).split("parameter")[0]
 
 
 def test_no_acceptance_warning_when_realised_meets_the_target():

@@ -18,12 +18,14 @@ from .errors import (
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
+from .results.facts import RunFacts
 from .results.report import Summary
 from .results.trace import Trace
 from .run.blackjax_handoff import handoff
 from .run.devices import spread_chains
 from .run.engine import ChainState
 from .run.plan import RunLength
+from .run.reopen import reopen
 from .run.resume import resume
 from .run.sampling import walk
 from .run.start import start
@@ -51,6 +53,7 @@ __all__ = [
     "refine",
     "walk",
     "resume",
+    "reopen",
     "save_tuning",
     "load_tuning",
     "handoff",
@@ -67,6 +70,7 @@ __all__ = [
     "WarmupReport",
     "Trace",
     "RunLength",
+    "RunFacts",
     "Summary",
     "FisherwalkError",
     "InputError",

@@ -200,3 +200,35 @@ def name_difference(saved: tuple[str, ...], names: tuple[str, ...], *,
     k = next(i for i, (a, b) in enumerate(zip(saved, names, strict=True)) if a != b)
     return (f"same names in another order: position {k} is {saved[k]!r} in {there} and "
             f"{names[k]!r} in {here}")
+
+
+def written_order(tree: Any) -> tuple[int, ...]:
+    """The ravelled indices in the order the user wrote the pytree.
+
+    ``ravel_pytree`` sorts dict keys; a person reads ``{"floor": .., "span": .., "log_half":
+    ..}`` in the order written. Dicts are walked in insertion order, sequences in order,
+    every other node in JAX's order; each leaf's entries stay row-major. The result ``p``
+    puts ravelled values ``v`` in written order as ``v[..., p]`` (identity when nothing is
+    out of order). Nothing is compiled.
+    """
+    leaves, treedef = jax.tree_util.tree_flatten(tree)
+    sizes = [int(np.prod(np.shape(leaf), dtype=int)) for leaf in leaves]
+    starts = np.cumsum([0, *sizes])
+    index = jax.tree_util.tree_unflatten(
+        treedef, [np.arange(starts[k], starts[k + 1]) for k in range(len(leaves))])
+    out: list[int] = []
+
+    def walk(node, ids) -> None:
+        if isinstance(node, dict) and isinstance(ids, dict) and set(node) == set(ids):
+            for key in node:
+                walk(node[key], ids[key])
+        elif (isinstance(node, list | tuple) and isinstance(ids, list | tuple)
+              and len(node) == len(ids) and not hasattr(node, "_fields")):
+            for part, part_ids in zip(node, ids, strict=True):
+                walk(part, part_ids)
+        else:
+            for leaf in jax.tree_util.tree_leaves(ids):
+                out.extend(int(i) for i in np.ravel(leaf))
+
+    walk(tree, index)
+    return tuple(out)

@@ -76,11 +76,13 @@ class _Say:
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
              warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
-             checkpoint=None, labels=None, sampler: str = "rwm") -> RunResult:
+             checkpoint=None, labels=None, sampler: str = "rwm", focus=None,
+             predict=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
 
     ``draws=None`` plans the run length; ``labels`` (one per scalar parameter, e.g. a
-    model file's ``names``) replace the ravelled names in every table and warning.
+    model file's ``names``) replace the ravelled names everywhere; ``focus`` chooses the
+    summary's rows (:mod:`fisherwalk.results.focus`).
 
     ``thin``, ``pointwise``, ``derived`` and ``checkpoint`` go to :func:`fisherwalk.walk`,
     ``restarts`` (mode searches from dispersed points) to :func:`fisherwalk.start`.
@@ -107,26 +109,32 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
 
     t = time.perf_counter()
     trace = fisherwalk.walk(walker, k_walk, draws, thin, progress=progress,
-                            pointwise=pointwise, derived=derived, checkpoint=checkpoint)
+                            pointwise=pointwise, derived=derived, checkpoint=checkpoint,
+                            predict=predict)
     seconds["sampling"] = time.perf_counter() - t
     if not trace.complete and trace.flat.shape[1] < MIN_KEPT:
         raise KeyboardInterrupt  # too few draws to summarise: nothing worth writing
 
     t = time.perf_counter()
-    summary = _labelled(trace, labels).summary()
+    trace = labelled(trace, labels)
+    summary = trace.summary(focus=focus)
     seconds["diagnostics"] = time.perf_counter() - t
     _say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
 
 
-def _labelled(trace, labels):
-    """The trace with ``labels`` as parameter names, for the tables and warnings only (the
-    record's tuning and draws.npz keep the ravelled names that load_tuning checks)."""
-    if labels is None or len(labels) != trace.walker.dim:
+def labelled(trace, labels):
+    """The trace with ``labels`` (a model file's ``names``, one per scalar parameter in
+    ravelled order) as its parameter names everywhere: the summary, draws.npz, the record
+    (laplace, tuning, summary, facts), the figures and ArviZ."""
+    if labels is None or len(labels) != len(trace.names):
         return trace
+    names = tuple(str(n) for n in labels)
     walker = trace.walker
-    fit = walker.report.laplace._replace(names=tuple(str(n) for n in labels))
-    return trace._replace(walker=walker._replace(report=walker.report._replace(laplace=fit)))
+    if walker is not None:
+        fit = walker.report.laplace._replace(names=names)
+        walker = walker._replace(report=walker.report._replace(laplace=fit))
+    return trace._replace(walker=walker, facts=trace.facts._replace(names=names))
 
 
 def _say_fit(say: _Say, walker, seconds: float) -> None:
@@ -149,8 +157,9 @@ def _say_fit(say: _Say, walker, seconds: float) -> None:
         name, value = tuning.parameter
         say(f"      sampler {tuning.sampler} (BlackJAX) on the posterior whitened by "
             f"S Sᵀ = H⁻¹ ({tuning.shape_kind}); {name.replace('_', ' ')} {value:.4g}")
-    say(f"      target acceptance {tuning.target_acceptance:.3f}; predicted jump "
-        f"{tuning.predicted_jump:.3f} per step (squared, in sd of N(mode, H⁻¹))")
+    say(f"      target acceptance {tuning.target_acceptance:.3f}")
+    say(f"      predicted jump {tuning.predicted_jump:.3f} per step (squared, in sd of "
+        "N(mode, H⁻¹))")
     for note in walker.report.notes:
         say(_wrap(f"note: {note}"))
 
@@ -159,9 +168,9 @@ def _say_warmup(say: _Say, walker, seconds: float, chains: int) -> None:
     warm = walker.report.warmup
     say(_step(f"[3/4] warm-up, {warm.steps} steps x {chains} chains", seconds))
     ratio = warm.tuned_final / warm.tuned_start
-    say(f"      {warm.tuned.replace('_', ' ')} {warm.tuned_start:.4g} -> {warm.tuned_final:.4g} "
-        f"(x{ratio:.2f}); "
-        f"acceptance {warm.acceptance_final:.3f} vs target {warm.target_acceptance:.3f}")
+    say(f"      {warm.tuned.replace('_', ' ')} {warm.tuned_start:.4g} -> "
+        f"{warm.tuned_final:.4g} (x{ratio:.2f})")
+    say(f"      acceptance {warm.acceptance_final:.3f}, aimed at {warm.target_acceptance:.3f}")
     low, high = warm.spectrum_bounds
     spec = np.asarray(warm.covariance_spectrum)
     say(f"      warm-up covariance against H⁻¹: eigenvalues {spec.min():.2f} to {spec.max():.2f}")
@@ -180,8 +189,8 @@ def _say_sampling(say: _Say, trace, summary, seconds: float) -> None:
     if trace.length is not None:
         say(_wrap(f"      {trace.length.line()}"))
     per_chain = " ".join(f"{a:.3f}" for a in np.mean(trace.accepted, axis=1))
-    say(f"      acceptance: target {summary.target_acceptance:.3f}, realised "
-        f"{summary.acceptance_pooled:.3f} (chains: {per_chain})")
+    say(f"      acceptance realised {summary.acceptance_pooled:.3f} (chains: {per_chain})")
+    say(f"      acceptance aimed at {summary.target_acceptance:.3f}")
     if summary.realised_jump is not None:
         say(f"      jump per step: predicted {summary.predicted_jump:.3f}, realised "
             f"{summary.realised_jump:.3f}")
@@ -298,7 +307,7 @@ def _demo(args, argv) -> int:
     t = time.perf_counter()
     say.busy("writing the figures and the record")
     record = build_record("demo", argv, _options(args), result, extra)
-    files = {"data": data_path, **write_outputs(out, result, record, scene.names)}
+    files = {"data": data_path, **write_outputs(out, result, record)}
     say(f"\nplots and record written in {time.perf_counter() - t:.1f} s")
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
@@ -383,13 +392,13 @@ def _run(args, argv) -> int:
                       fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
                       pointwise=model.pointwise if args.pointwise else None,
                       derived=model.derived, checkpoint=checkpoint, labels=model.labels,
-                      sampler=args.sampler)
+                      sampler=args.sampler, focus=args.focus, predict=model.predict)
     print()
     print(str(result.summary))
     extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
     say.busy("writing the figures and the record")
     record = build_record("run", argv, _options(args), result, extra)
-    files = write_outputs(out, result, record, model.labels)
+    files = write_outputs(out, result, record, focus=args.focus)
     say()
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
@@ -432,6 +441,7 @@ def _resume(args, argv) -> int:
                               pointwise=pointwise, derived=model.derived)
     seconds = {"sampling": time.perf_counter() - t}
     t = time.perf_counter()
+    trace = labelled(trace, model.labels)
     summary = trace.summary()
     seconds["diagnostics"] = time.perf_counter() - t
     print()
@@ -442,10 +452,29 @@ def _resume(args, argv) -> int:
                          "note": "start and warm-up ran in the original command; seconds "
                                  "cover the resumed sampling only"}}
     record = build_record("resume", argv, plan["options"], result, extra)
-    files = write_outputs(folder, result, record, model.labels)
+    files = write_outputs(folder, result, record)
     say()
     _say_files(say, folder, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
+    return 0
+
+
+def _show(args) -> int:
+    """Print a finished run's summary and write its figures again (no model needed)."""
+    import fisherwalk
+
+    from ..results import plots  # the optional extra 'plots' (matplotlib)
+
+    trace = fisherwalk.reopen(args.folder)
+    try:
+        interval = float(args.interval)
+    except ValueError:
+        interval = float("nan")
+    summary = trace.summary(interval=interval, focus=args.focus)
+    print(str(summary))
+    out = Path(args.figures or args.folder)
+    paths = plots.save_all(trace, out, focus=args.focus)
+    print(f"\nfigures written in {out}/: {', '.join(p.name for p in paths)}", file=sys.stderr)
     return 0
 
 
@@ -487,6 +516,15 @@ def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
     _cache_option(sub)
 
 
+def _focus_option(sub: argparse.ArgumentParser) -> None:
+    sub.add_argument("--focus", nargs="+", default=None, metavar="NAME",
+                     help="the parameters the summary and the figures show: names "
+                          "(beta[3]), leaf names (beta) or patterns ('beta*'); default all "
+                          "(the figures: the worst-mixing ones and the group-level scales "
+                          "when there are many). summary.csv and draws.npz keep every "
+                          "parameter")
+
+
 def _cache_option(sub: argparse.ArgumentParser) -> None:
     sub.add_argument("--no-compile-cache", dest="compile_cache_on", action="store_false",
                      help="do not use JAX's persistent compilation cache (default: on, in "
@@ -498,8 +536,10 @@ def build_parser() -> argparse.ArgumentParser:
     fmt = argparse.RawDescriptionHelpFormatter
     parser = argparse.ArgumentParser(
         prog="fisherwalk", formatter_class=fmt,
-        description="Random-walk Metropolis tuned before its first step from the Laplace "
-                    "approximation\n(mode and observed Fisher information) of the posterior.",
+        description="Bayesian sampling tuned before its first step from the Laplace "
+                    "approximation\n(mode and observed Fisher information) of the posterior: "
+                    "random-walk Metropolis,\nMALA, HMC or NUTS (BlackJAX), a short warm-up, "
+                    "diagnostics, figures and a record.",
         epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
                "  fisherwalk run my_model.py --out results\n\n"
                "'fisherwalk COMMAND --help' describes each command.")
@@ -566,6 +606,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--pointwise", action="store_true",
                      help="store the model file's pointwise(position) log likelihood at every "
                           "kept draw (draws.npz 'pointwise'; for LOO with ArviZ)")
+    _focus_option(run)
     run.add_argument("--checkpoint", action="store_true",
                      help="keep the sampling's progress in OUT/checkpoint/ so that "
                           "'fisherwalk resume OUT --model MODEL_FILE' can finish it")
@@ -585,6 +626,21 @@ def build_parser() -> argparse.ArgumentParser:
                        help="the data file (default: the path the run recorded)")
     again.add_argument("--quiet", action="store_true", help="no progress bar")
     _cache_option(again)
+
+    show = subs.add_parser(
+        "show", formatter_class=fmt, help="print the summary of a finished run and redraw "
+                                          "its figures",
+        description="Open a finished run without its model: the folder of 'fisherwalk run' "
+                    "or 'demo'\n(draws.npz and record.json), or a finished checkpoint "
+                    "folder. Print its summary\nand write its figures again.",
+        epilog="examples:\n  fisherwalk show results\n  fisherwalk show results --focus "
+               "'tau*' sigma --interval 0.8")
+    show.add_argument("folder", metavar="DIR", help="the run's folder")
+    _focus_option(show)
+    show.add_argument("--interval", default="0.9", metavar="P",
+                      help="probability of the central interval (default 0.9)")
+    show.add_argument("--figures", default=None, metavar="DIR",
+                      help="where to write the figures (default: DIR itself)")
     return parser
 
 
@@ -602,7 +658,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     import jax
 
     jax.config.update("jax_enable_x64", True)  # the application's choice, not the library's
-    if args.command != "scale":
+    if args.command not in ("scale", "show"):
         args.compile_cache = compilecache.switch(args.compile_cache_on)
     try:
         _check_numbers(args)
@@ -612,6 +668,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _demo(args, argv)
         if args.command == "resume":
             return _resume(args, argv)
+        if args.command == "show":
+            return _show(args)
         return _run(args, argv)
     except (ModelFileError, InputError) as err:
         _error_note(args, err)

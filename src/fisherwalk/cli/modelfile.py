@@ -2,7 +2,9 @@
 
 A model file is a Python file defining ``logdensity(position)`` and
 ``initial_position``, and optionally ``fisher``, ``names``, ``pointwise(position)``
-(the log likelihood per observation) and ``derived(position)`` (quantities to summarise).
+(the log likelihood per observation), ``derived(position)`` (quantities to summarise)
+and ``predict(position, key)`` (predictions with their own randomness, summarised and
+exported as the posterior predictive).
 A model of a data file (``--data table.csv``) instead defines ``make(data)``, which
 receives the table as a mapping column name -> float array and returns
 ``(logdensity, initial_position)``, or a dict or object with those names (and any of the
@@ -41,13 +43,14 @@ class ModelSpec(NamedTuple):
     pointwise: Any = None  # None or position -> (n_obs,) log likelihood per observation
     derived: Any = None  # None or position -> pytree of derived quantities
     data: Table | None = None  # the data file given to make(data)
+    predict: Any = None  # None or (position, key) -> pytree of predictions
 
 
 def _file_problem(path: Path, what: str, todo: str) -> ModelFileError:
     return ModelFileError(explain(what, f"model file {path}", todo))
 
 
-_OPTIONAL = ("fisher", "names", "pointwise", "derived")
+_OPTIONAL = ("fisher", "names", "pointwise", "derived", "predict")
 
 
 def _advice(err: Exception) -> str:
@@ -143,12 +146,13 @@ def load_model(path, data=None) -> ModelSpec:
                                 f"{dim} scalar parameters.",
                                 "give one name per scalar parameter, in ravelled order "
                                 "(dict keys sorted, arrays row-major), or leave names out.")
-    for name in ("pointwise", "derived"):
+    for name in ("pointwise", "derived", "predict"):
         if parts.get(name) is not None and not callable(parts[name]):
             raise _file_problem(path, f"{name} is a {type(parts[name]).__name__}, not a "
                                 "function.", f"define {name}(position) as a function.")
     return ModelSpec(path, logdensity, position, fisher, labels, dim,
-                     parts.get("pointwise"), parts.get("derived"), table)
+                     parts.get("pointwise"), parts.get("derived"), table,
+                     parts.get("predict"))
 
 
 def _declared_columns(module, path: Path) -> tuple[str, ...] | None:

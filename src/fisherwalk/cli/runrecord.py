@@ -20,11 +20,16 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from ..base.files import write_atomic
+from ..base.files import write_atomic, write_text_atomic
 from ..base.jsonio import to_plain, write_json_atomic
+from ..results.facts import facts_record, in_written_order
+from ..results.trace import derived_names
 from ..run import tuningfile
 
-__all__ = ["RunResult", "build_record", "write_outputs", "sha256_file", "run_keys"]
+__all__ = ["RunResult", "build_record", "write_outputs", "sha256_file", "run_keys",
+           "draws_arrays", "write_pointwise", "POINTWISE_FILE"]
+
+POINTWISE_FILE = "pointwise.npz"
 
 class RunResult(NamedTuple):
     """Everything one workflow run produced."""
@@ -62,6 +67,20 @@ def _versions() -> dict[str, str]:
     return out
 
 
+def write_pointwise(out: Path, pointwise: np.ndarray, record: dict) -> Path:
+    """The pointwise log likelihood ``(chains, draws, n_obs)`` in its own compressed file
+    (``np.savez_compressed``, array ``pointwise``); its size goes into the record's
+    ``sampling.pointwise``."""
+    path = out / POINTWISE_FILE
+    values = np.asarray(pointwise)
+    write_atomic(path, lambda handle: np.savez_compressed(handle, pointwise=values))
+    record.setdefault("sampling", {})["pointwise"] = {
+        "file": path.name, "shape": list(values.shape), "bytes": path.stat().st_size,
+        "uncompressed_bytes": int(values.nbytes), "compression": "zip deflate (numpy "
+        "savez_compressed)"}
+    return path
+
+
 def sha256_file(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
@@ -76,9 +95,11 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "logdensity", "gradient_norm", "iterations", "evaluations",
         "fisher_source", "warnings", "seconds")}
     laplace["warnings"] = [str(w) for w in laplace["warnings"]]
-    laplace["mode"] = dict(zip(fit.names, np.asarray(fit.mode_flat).tolist(), strict=True))
+    facts = trace.facts  # names (a model file's names= included), written order
+    order = in_written_order(facts.order, facts.dim)
     sd = np.sqrt(np.diag(np.linalg.inv(np.asarray(fit.fisher))))
-    laplace["sd"] = dict(zip(fit.names, sd.tolist(), strict=True))
+    laplace["mode"] = {facts.names[j]: float(facts.mode[j]) for j in order}
+    laplace["sd"] = {facts.names[j]: float(sd[j]) for j in order}
     return to_plain({
         "format": "fisherwalk-run",
         "format_version": 1,
@@ -96,6 +117,7 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "tuning": tuningfile.tuning_record(walker),
         "warmup": walker.report.warmup,
         "summary": result.summary.to_dict(),
+        "facts": facts_record(facts),
         "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin,
                      "derived": list(trace.columns()[1][len(trace.names):]),
                      "pointwise_observations": None if trace.pointwise is None
@@ -107,25 +129,50 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
     })
 
 
-def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[str, Path]:
-    """draws.npz, the plots and record.json (written last, listing the other files)."""
+def draws_arrays(trace) -> dict[str, np.ndarray]:
+    """draws.npz's arrays: the parameters in the order the user wrote them, under the same
+    names as the summary and the record; derived quantities and predictions after them,
+    under ``derived``/``predicted`` with their own names; the sampler's statistics."""
+    flat, names = trace.columns()
+    dim = trace.flat.shape[-1]
+    extra = names[dim:]
+    arrays = {"draws": flat[..., :dim], "names": np.asarray(names[:dim]),
+              "logdensity": np.asarray(trace.logdensity),
+              "accepted": np.asarray(trace.accepted),
+              "acceptance_rate": np.asarray(trace.acceptance_rate),
+              "faults": np.asarray(trace.faults)}
+    for field in ("divergent", "energy", "gradients"):
+        value = getattr(trace, field)
+        if value is not None:
+            arrays[field] = np.asarray(value)
+    derived = 0 if trace.derived is None else len(derived_names(trace.derived))
+    if derived:
+        arrays["derived"] = flat[..., dim:dim + derived]
+        arrays["derived_names"] = np.asarray(extra[:derived])
+    if len(extra) > derived:
+        arrays["predicted"] = flat[..., dim + derived:]
+        arrays["predicted_names"] = np.asarray(extra[derived:])
+    return arrays
+
+
+def write_outputs(out: Path, result: RunResult, record: dict, labels=None, *,
+                  focus=None) -> dict[str, Path]:
+    """draws.npz, the pointwise log likelihood (compressed, its own file), summary.csv,
+    the plots and record.json (written last, listing the other files)."""
     from ..results import plots  # the optional extra 'plots' (matplotlib)
 
     trace = result.trace
     files = {}
     draws_path = out / "draws.npz"
-    arrays = {"draws": np.asarray(trace.flat), "names": np.asarray(trace.names),
-              "logdensity": np.asarray(trace.logdensity),
-              "accepted": np.asarray(trace.accepted)}
-    if trace.derived is not None:  # walk(derived=...): ravelled after the parameters
-        flat, names = trace.columns()
-        arrays["derived"] = flat[..., len(trace.names):]
-        arrays["derived_names"] = np.asarray(names[len(trace.names):])
-    if trace.pointwise is not None:  # walk(pointwise=...): (chains, draws, n_obs)
-        arrays["pointwise"] = np.asarray(trace.pointwise)
+    arrays = draws_arrays(trace)
     write_atomic(draws_path, lambda handle: np.savez(handle, **arrays))
     files["draws"] = draws_path
-    for path in plots.save_all(trace, out, labels=labels):
+    if trace.pointwise is not None:  # walk(pointwise=...): (chains, draws, n_obs)
+        files["pointwise"] = write_pointwise(out, trace.pointwise, record)
+    table = out / "summary.csv"
+    write_text_atomic(table, result.summary.to_csv())
+    files["summary"] = table
+    for path in plots.save_all(trace, out, labels=labels, focus=focus):
         files[path.stem] = path
     record["files"] = {name: {"path": path.name, "sha256": sha256_file(path)}
                        for name, path in files.items()}

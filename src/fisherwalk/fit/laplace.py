@@ -22,7 +22,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from ..base import precision, pytrees
+from ..base import precision, programs, pytrees
 from ..base.keys import as_key
 from ..errors import ModelError, explain
 from .checks import (
@@ -59,6 +59,7 @@ class LaplaceFit(NamedTuple):
     #                            scouts, total
     modes_flat: tuple[np.ndarray, ...] = ()  # the distinct modes ravelled, as in ``modes``
     modes_fisher: tuple[np.ndarray, ...] = ()  # the Fisher information at each of them
+    order: tuple[int, ...] = ()  # ravelled indices in the order the user wrote them (() = as is)
 
 
 def fisher_from_cholesky(cholesky: jax.Array) -> jax.Array:
@@ -216,10 +217,17 @@ def laplace(
         return jnp.asarray(logdensity_fn(unravel(x)), dtype=dtype)
 
     use_hessian = fisher is None
-    search = jax.jit(make_search(logp, use_hessian))
     args = (jnp.asarray(max_iterations, jnp.int32), jnp.asarray(tol, dtype))
-    try:
-        compiled, compile_s = compile_ahead(search, x0, *args)
+
+    def build():
+        jitted = jax.jit(make_search(logp, use_hessian))
+        return jitted, compile_ahead(jitted, x0, *args)[0]
+
+    began = time.perf_counter()
+    try:  # once per model (programs.remembered): a second fit of it compiles nothing
+        search, compiled = programs.remembered(logdensity_fn, "laplace search", (
+            jax.tree_util.tree_structure(position), x0.shape, str(dtype), use_hessian), build)
+        compile_s = time.perf_counter() - began
     except (TypeError, NotImplementedError) as err:
         raise ModelError(explain(
             f"JAX could not differentiate the log density: {err}",
@@ -276,4 +284,5 @@ def laplace(
         seconds=seconds,
         modes_flat=tuple(np.asarray(m.x, dtype) for m, _ in modes),
         modes_fisher=tuple(np.asarray(m_info, dtype) for _, m_info in modes),
+        order=pytrees.written_order(position),
     )

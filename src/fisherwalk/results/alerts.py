@@ -31,6 +31,7 @@ __all__ = [
     "acceptance_warning",
     "correlated_pairs",
     "correlation_warning",
+    "divergence_warning",
 ]
 
 MAX_LISTED = 8  # items named in one warning before "and N more"
@@ -41,6 +42,7 @@ APART_SPREAD = 2.0  # ... and beyond 2 within-chain standard deviations of the o
 ACCEPTANCE_NOISE = 4.0  # acceptance departs: beyond 4 Monte Carlo errors ...
 ACCEPTANCE_SLACK = 0.005  # ... plus this much
 ACCEPTANCE_MIN_DRAWS = 20  # fewer draws per chain: no acceptance rule
+BAND_KEEP = 0.8  # the tolerated band keeps this share of the best jump (theory.tolerance)
 SAME_TARGET = 5e-4  # a target within this of the Gaussian prediction is that prediction
 CORRELATION_LIMIT = 0.95  # |posterior correlation| above this is worth a word ...
 RESIDUAL_LIMIT = 0.5  # ... when the proposal leaves more than this after whitening
@@ -250,11 +252,18 @@ def fault_warnings(faults: np.ndarray | None) -> list[str]:
 
 def acceptance_warning(realised: float, error: float, target: float, draws: int,
                        scale: float | None = None,
-                       gaussian: float | None = None) -> str | None:
+                       gaussian: float | None = None, *,
+                       band: tuple[float, float] | None = None,
+                       label: str = "scale") -> str | None:
     """The realised acceptance departs from what the header says it should be.
 
     A departure is a gap beyond 4 Monte Carlo errors (``error``, the MCSE of the pooled
-    acceptance from its ESS) plus 0.005. ``target`` is the acceptance expected at the
+    acceptance from its ESS) plus 0.005, *and* beyond the theory's own tolerance: the
+    realised acceptance, widened by the same 4 errors, lies outside ``band``, the
+    acceptances at which the Gaussian limit keeps 80% of its best jump
+    (:func:`fisherwalk.theory.tolerance.acceptance_band`). Inside the band the mismatch is
+    real but costs little (the jump is flat near its optimum), so it is not worth a
+    warning. ``target`` is the acceptance expected at the
     scale used: the Gaussian picture's prediction at that scale, or, when the warm-up
     moved the scale (``gaussian``, the Gaussian picture's acceptance at the scale used,
     then differs from ``target``), the acceptance the adaptation aimed for. In the
@@ -266,23 +275,27 @@ def acceptance_warning(realised: float, error: float, target: float, draws: int,
     tolerance = ACCEPTANCE_NOISE * error + ACCEPTANCE_SLACK
     if draws < ACCEPTANCE_MIN_DRAWS or abs(realised - target) <= tolerance:
         return None
-    at = "" if scale is None else f" at scale {scale:.3f}"
+    if band is not None and band[0] <= realised + tolerance and realised - tolerance <= band[1]:
+        return None
+    at = "" if scale is None else f" at {label} {scale:.4g}"
     what = (f"The realised acceptance {realised:.3f} (Monte Carlo error {error:.3f}) departs "
             f"from the target {target:.3f}{at} shown above")
-    rule = (f", by more than {ACCEPTANCE_NOISE:.0f} Monte Carlo errors + {ACCEPTANCE_SLACK}.")
+    rule = (f", by more than {ACCEPTANCE_NOISE:.0f} Monte Carlo errors + {ACCEPTANCE_SLACK}"
+            + ("." if band is None else f", and lies outside {band[0]:.3f} to {band[1]:.3f}, "
+               "where the theory keeps 80% of the best jump."))
     if gaussian is None or abs(gaussian - target) <= SAME_TARGET:
         return _warn(
             what + rule + " That target is what the Gaussian picture N(mode, H⁻¹) predicts "
-            "at this scale, so the posterior is not shaped like its Laplace approximation "
+            f"at this {label}, so the posterior is not shaped like its Laplace approximation "
             "here.",
-            "the tuning is approximate: run refine() to adapt the scale, compare the "
+            f"the tuning is approximate: run refine() to adapt the {label}, compare the "
             "marginals with the Gaussian curves (plots.save_all), and draw more if the ESS "
             "is short.")
     if abs(realised - gaussian) <= tolerance:
         return None
     return _warn(
         what + f" and from the {gaussian:.3f} that the Gaussian picture predicts at this "
-        "scale" + rule + " The warm-up adapted the scale to reach that target, so the "
+        f"{label}" + rule + f" The warm-up adapted the {label} to reach that target, so the "
         "chains now accept differently from the warm-up's, and not as the Gaussian picture "
         "says either.",
         "the warm-up may have been too short, or the chains have moved to a region it did "
@@ -336,3 +349,17 @@ def correlation_warning(names: Sequence[str], pairs: list[tuple]) -> str | None:
         "use the Fisher-information shape (start(shape='fisher'), the default) or let "
         "refine() re-estimate the shape from warm-up draws; or reparameterise the pair "
         "(e.g. sample their sum and difference).")
+
+
+def divergence_warning(divergent: np.ndarray | None) -> str | None:
+    """Divergent transitions of HMC or NUTS (BlackJAX flags a transition whose leapfrog
+    energy error exceeded 1000), counted over the whole run."""
+    if divergent is None or not np.any(divergent):
+        return None
+    count, total = int(np.sum(divergent)), int(np.size(divergent))
+    return _warn(
+        f"{count} of {total} transitions were divergent (the leapfrog energy error exceeded "
+        "1000): the sampler met curvature its step size cannot follow, and the draws near "
+        "there may be biased. Where: the whole run.",
+        "look for a funnel or a boundary in the posterior; reparametrise, or run refine() "
+        "again (a smaller step) and compare.")

@@ -11,13 +11,18 @@ in groups of labelled arrays with chain and draw dimensions first. The groups fi
     quantities (``walk(derived=...)``) are added as further variables.
 ``sample_stats``
     ``lp`` (log density), ``acceptance_rate`` (Metropolis acceptance probability),
-    ``accepted`` (fraction of the thinned steps accepted), ``faults`` (proposals rejected
-    for a NaN/+inf log density), and ``diverging`` when the trace carries divergences.
+    ``faults`` (proposals rejected for a NaN/+inf log density); the random walk adds
+    ``accepted`` (fraction of the thinned steps accepted); HMC and NUTS add ``energy``
+    (the Hamiltonian at each kept draw, what ``arviz.bfmi`` reads) and ``diverging``;
+    the gradient samplers add ``n_steps`` (gradient evaluations per draw).
+``posterior_predictive``
+    The predictions of ``walk(predict=...)``, one variable per leaf.
 ``log_likelihood``
     ``observations`` with dimension ``observation``, when the trace holds a pointwise log
     likelihood (``walk(pointwise=...)``): what ``arviz.loo`` and ``arviz.waic`` read.
 
-The run's settings (scale, target acceptance, shape kind, thin, seconds, version) are
+The run's settings (the sampler's name, its scale or step size, target acceptance,
+shape kind, thin, seconds, version) are
 the attributes of the InferenceData and of its posterior and sample_stats groups.
 ArviZ is an optional extra: ``pip install fisherwalk[arviz]``.
 """
@@ -31,6 +36,7 @@ import numpy as np
 
 from ..base.pytrees import path_parts
 from ..errors import InputError, explain
+from .facts import in_written_order
 
 __all__ = ["to_arviz", "leaf_variables", "settings"]
 
@@ -55,12 +61,25 @@ def leaf_variables(tree: Any, *, bare: str) -> dict[str, np.ndarray]:
     return out
 
 
+def _written(variables: dict[str, np.ndarray], trace) -> dict[str, np.ndarray]:
+    """The posterior's variables in the order the user wrote the position's leaves (the
+    rank of a leaf is where its first entry comes in the written order)."""
+    facts = trace.facts
+    rank = np.empty(facts.dim, dtype=int)
+    rank[in_written_order(facts.order, facts.dim)] = np.arange(facts.dim)
+    first, start = {}, 0
+    for name, shape in facts.leaves:
+        size = int(np.prod(shape, dtype=int))
+        first[name] = int(rank[start:start + size].min()) if size else facts.dim
+        start += size
+    return dict(sorted(variables.items(), key=lambda item: first.get(item[0], facts.dim)))
+
+
 def settings(trace) -> dict[str, Any]:
     """The run's settings as plain attributes (numbers and strings only)."""
     from importlib.metadata import PackageNotFoundError, version
 
-    tuning = trace.walker.tuning
-    parameter, value = tuning.parameter
+    facts = trace.facts
     try:
         release = version("fisherwalk")
     except PackageNotFoundError:  # pragma: no cover - a source checkout
@@ -68,10 +87,10 @@ def settings(trace) -> dict[str, Any]:
     return {
         "created_by": "fisherwalk",
         "fisherwalk_version": release,
-        "sampler": "random-walk Metropolis",
-        parameter: float(value),
-        "target_acceptance": float(tuning.target_acceptance),
-        "shape_kind": str(tuning.shape_kind),
+        "sampler": facts.title,
+        facts.setting_label.replace(" ", "_"): float(facts.setting),
+        "target_acceptance": float(facts.aim),
+        "shape_kind": str(facts.shape_kind),
         "thin": int(trace.thin),
         "seconds": float(trace.seconds),
         "complete": int(bool(trace.complete)),
@@ -100,7 +119,7 @@ def to_arviz(trace):
     if trace.draws is None or trace.flat.shape[1] == 0:
         raise InputError(explain("The trace holds no draws.", "Trace.to_arviz()",
                                  "hand over a trace with at least one kept draw."))
-    posterior = leaf_variables(trace.draws, bare="x")
+    posterior = _written(leaf_variables(trace.draws, bare="x"), trace)
     if trace.derived is not None:
         extra = leaf_variables(trace.derived, bare="derived")
         clash = sorted(set(extra) & set(posterior))
@@ -112,15 +131,19 @@ def to_arviz(trace):
     stats = {
         "lp": np.asarray(trace.logdensity),
         "acceptance_rate": np.asarray(trace.acceptance_rate),
-        "accepted": np.asarray(trace.accepted),
         "faults": np.asarray(trace.faults),
     }
-    divergent = getattr(trace, "divergent", None)  # gradient samplers will carry it
-    if divergent is not None:
-        stats["diverging"] = np.asarray(divergent, dtype=bool)
+    if trace.facts.setting_label == "scale":  # the random walk's own 0/1 (or thinned) record
+        stats["accepted"] = np.asarray(trace.accepted)
+    if trace.divergent is not None:
+        stats["diverging"] = np.asarray(trace.divergent, dtype=bool)
     if trace.energy is not None:  # HMC and NUTS: what arviz.bfmi reads
         stats["energy"] = np.asarray(trace.energy)
+    if trace.gradients is not None:
+        stats["n_steps"] = np.asarray(trace.gradients)
     groups: dict[str, Any] = {"posterior": posterior, "sample_stats": stats}
+    if trace.predictions is not None:
+        groups["posterior_predictive"] = leaf_variables(trace.predictions, bare="predicted")
     dims = {}
     if trace.pointwise is not None:
         groups["log_likelihood"] = {"observations": np.asarray(trace.pointwise)}

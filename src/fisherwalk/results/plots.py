@@ -27,7 +27,10 @@ from typing import Any
 import numpy as np
 
 from ..base.files import write_atomic
+from ..errors import InputError, explain
 from . import diagnostics
+from .facts import in_written_order
+from .focus import focus_indices, prominent
 
 __all__ = [
     "plot_traces",
@@ -65,13 +68,13 @@ def _save(fig, path) -> Path | None:
 
 
 def _labels(trace, labels: Sequence[str] | None) -> list[str]:
+    """Panel titles in ravelled order (the order of ``trace.flat``); ``labels`` are given
+    one per parameter in ravelled order, as ``trace.names``."""
     names = list(trace.names)
     if labels is None:
         return names
     labels = list(labels)
     if len(labels) != len(names):
-        from ..errors import InputError, explain
-
         raise InputError(explain(
             f"{len(labels)} labels were given for {len(names)} parameters.",
             "fisherwalk.results.plots (labels=...)",
@@ -79,6 +82,33 @@ def _labels(trace, labels: Sequence[str] | None) -> list[str]:
             f"{', ...' if len(names) > 6 else ''}."))
     return [f"{name}  ({label})" if label != name else name
             for name, label in zip(names, labels, strict=True)]
+
+
+def panels(trace, focus: Any = None, max_panels: int = MAX_PANELS) -> tuple[list[int], str]:
+    """The parameters a figure shows, as indices into ``trace.flat``, in written order, and
+    a note for the title. ``focus`` chooses them (:mod:`fisherwalk.results.focus`); with
+    none and more parameters than ``max_panels``, the ones that matter most are shown
+    (worst R-hat, lowest ESS, group-level scales)."""
+    flat = np.asarray(trace.flat)
+    dim = flat.shape[2]
+    order = in_written_order(trace.facts.order, dim)
+    written = [trace.names[j] for j in order]
+    if focus is not None:
+        chosen = focus_indices(written, focus, where="plots (focus=...)")
+        note = f" ({len(chosen[:max_panels])} chosen of {dim} parameters)"
+        return [int(order[j]) for j in chosen[:max_panels]], note
+    if dim <= max_panels:
+        return [int(j) for j in order], ""
+    if flat.shape[1] >= 4:
+        rhat = np.atleast_1d(diagnostics.rhat(flat[:, :, order]))
+        ess = np.minimum(np.atleast_1d(diagnostics.ess_bulk(flat[:, :, order])),
+                         np.atleast_1d(diagnostics.ess_tail(flat[:, :, order])))
+    else:
+        rhat, ess = np.ones(dim), np.ones(dim)
+    picked = prominent(written, rhat, ess, max_panels)
+    note = (f" ({len(picked)} of {dim} parameters: worst R-hat, lowest ESS, "
+            "group-level scales)")
+    return [int(order[j]) for j in picked], note
 
 
 def _grid(fig, count: int):
@@ -105,12 +135,6 @@ def _legend(fig, ncols: int) -> None:
         line.set_alpha(1.0)
 
 
-def _panel_count(dim: int, max_panels: int) -> tuple[int, str]:
-    shown = min(dim, max_panels)
-    note = f" (first {shown} of {dim} parameters)" if shown < dim else ""
-    return shown, note
-
-
 def _panel_size(count: int) -> tuple[float, float]:
     cols = min(4, count)
     rows = math.ceil(count / cols)
@@ -118,15 +142,14 @@ def _panel_size(count: int) -> tuple[float, float]:
 
 
 def _laplace_moments(trace) -> tuple[np.ndarray, np.ndarray]:
-    fit = trace.walker.report.laplace
-    mode = np.asarray(fit.mode_flat, dtype=float)
-    cholesky = np.asarray(fit.cholesky, dtype=float)
+    mode = np.asarray(trace.facts.mode, dtype=float)
+    cholesky = np.asarray(trace.facts.fisher_cholesky, dtype=float)
     inverse = np.linalg.inv(cholesky)  # H⁻¹ = L⁻ᵀ L⁻¹: diagonal = column sums of L⁻¹ squared
     return mode, np.sqrt(np.sum(inverse**2, axis=0))
 
 
 def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
-                max_panels: int = MAX_PANELS, max_points: int = 2000):
+                max_panels: int = MAX_PANELS, max_points: int = 2000, focus: Any = None):
     """Chain traces: each parameter's value against the draw index, chains coloured.
 
     The dashed line is the posterior mode found by the Laplace fit. Well-mixed chains
@@ -142,7 +165,11 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
     labels
         Readable names, one per parameter, shown beside fisherwalk's names.
     max_panels
-        At most this many parameters (the first ones) are drawn.
+        At most this many parameters are drawn (see ``focus``).
+    focus
+        Which parameters (names, leaf names or patterns; :mod:`fisherwalk.results.focus`).
+        ``None``: all, or, when there are more than ``max_panels``, the ones that matter
+        most (worst R-hat, lowest ESS, group-level scales).
     max_points
         Longer chains are drawn at every k-th draw (stated in the title): more points
         than pixels only blur the picture.
@@ -153,24 +180,24 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
     """
     flat = np.asarray(trace.flat)
     chains, draws, dim = flat.shape
-    shown, note = _panel_count(dim, max_panels)
+    chosen, note = panels(trace, focus, max_panels)
     names = _labels(trace, labels)
     mode, _ = _laplace_moments(trace)
-    fig = _figure(*_panel_size(shown))
+    fig = _figure(*_panel_size(len(chosen)))
     every = max(1, math.ceil(draws / max_points))
     steps = np.arange(0, draws, every) * trace.thin
     if every > 1:
         note += f", 1 draw in {every} shown"
-    for i, ax in enumerate(_grid(fig, shown)):
+    for k, (i, ax) in enumerate(zip(chosen, _grid(fig, len(chosen)), strict=True)):
         for c in range(chains):
             ax.plot(steps, flat[c, ::every, i], lw=0.5, alpha=0.75,
                     color=_CHAIN_COLOURS[c % len(_CHAIN_COLOURS)],
-                    label=f"chain {c}" if i == 0 else None)
+                    label=f"chain {c}" if k == 0 else None)
         ax.axhline(mode[i], color="black", ls="--", lw=0.9,
-                   label="Laplace mode" if i == 0 else None)
+                   label="Laplace mode" if k == 0 else None)
         ax.set_title(names[i], fontsize=9)
-        ax.set_xlabel("step after warm-up" if trace.walker.report.warmup is not None
-                      else "step (no warm-up)", fontsize=8)
+        ax.set_xlabel("step after warm-up" if trace.facts.warmed else "step (no warm-up)",
+                      fontsize=8)
         ax.set_ylabel("value", fontsize=8)
     _legend(fig, min(chains + 1, 9))
     fig.suptitle(f"Chain traces: {chains} chains x {draws} draws{note}", fontsize=11)
@@ -195,15 +222,15 @@ def plot_tuning(trace, path=None):
     """
     from ..theory.randomwalk import acceptance_curve
 
-    tuning = trace.walker.tuning
-    warm = trace.walker.report.warmup
-    if tuning.scale is None:  # a family tuned by its step size
+    facts = trace.facts
+    if facts.setting_label != "scale":
         return _plot_gradient_tuning(trace, path)
-    dim = int(tuning.dim)
-    spectrum = np.asarray(tuning.spectrum, dtype=float)
+    warmed = facts.warmed
+    dim = int(facts.dim)
+    spectrum = np.asarray(facts.spectrum, dtype=float)
     matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6))
-    chosen = float(warm.tuned_start) if warm is not None else float(tuning.scale)
-    refined = float(tuning.scale)
+    chosen = float(facts.setting_theory)
+    refined = float(facts.setting)
     top = max(3.0 * max(chosen, refined), 6.0)
     grid = np.linspace(0.05, top, 240)
     curve = acceptance_curve(grid, dim, None if matched else spectrum)
@@ -212,7 +239,7 @@ def plot_tuning(trace, path=None):
     realised_jump = None
     if trace.thin == 1 and trace.flat.shape[1] > 1:
         realised_jump = diagnostics.whitened_jump(
-            np.asarray(trace.flat), np.asarray(tuning.whitening)).mean
+            np.asarray(trace.flat), np.asarray(facts.whitening)).mean
 
     fig = _figure(7.6, 7.0)
     ax_acc, ax_jump = fig.subplots(2, 1, sharex=True)
@@ -223,7 +250,7 @@ def plot_tuning(trace, path=None):
         ax_jump.plot(grid, curve.slowest_jump * dim, color="#1b6ca8", lw=1.2, ls=":",
                      label="slowest direction's jump x d")
     for ax, values in ((ax_acc, marks.acceptance), (ax_jump, marks.jump_distance)):
-        if warm is None:  # no refine(): walk() used the scale start() chose
+        if not warmed:  # no refine(): walk() used the scale start() chose
             ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
                        label=f"chosen by start(), no warm-up: l = {refined:.3f}")
             ax.plot([refined], values[1:], "o", color="#1b6ca8", ms=5, zorder=3,
@@ -235,8 +262,8 @@ def plot_tuning(trace, path=None):
                    label=f"after warm-up: l = {refined:.3f}")
         ax.plot([chosen, refined], values, "o", color="#1b6ca8", ms=5, zorder=3,
                 label="predicted at these scales")
-    ax_acc.axhline(tuning.target_acceptance, color="grey", ls=":", lw=1.0,
-                   label=f"target acceptance {tuning.target_acceptance:.3f}")
+    ax_acc.axhline(facts.predicted_acceptance, color="grey", ls=":", lw=1.0,
+                   label=f"target acceptance {facts.predicted_acceptance:.3f}")
     ax_acc.plot([refined], [realised_acc], "D", color="#d1495b", ms=8, zorder=4,
                 label=f"realised acceptance {realised_acc:.3f}")
     if realised_jump is not None:
@@ -244,14 +271,14 @@ def plot_tuning(trace, path=None):
                      label=f"realised jump {realised_jump:.3f}")
     ax_acc.set_ylabel("acceptance rate")
     ax_acc.set_ylim(0, 1)
-    precision = "re-estimated precision" if tuning.shape_kind == "warm-up" else "H"
+    precision = "re-estimated precision" if facts.shape_kind == "warm-up" else "H"
     ax_jump.set_ylabel(f"squared jump per step, whitened\n|Lᵀ Δθ|² with L Lᵀ = {precision}")
     ax_jump.set_xlabel("scale l  (proposal step = l/√d · S z)")
     ax_jump.set_ylim(bottom=0)
     ax_acc.legend(fontsize=8, loc="upper right")
     ax_jump.legend(fontsize=8, loc="upper right")
     shape = "proposal matched to H⁻¹" if matched else (
-        f"proposal shape '{tuning.shape_kind}', spectrum of SᵀHS "
+        f"proposal shape '{facts.shape_kind}', spectrum of SᵀHS "
         f"{spectrum.min():.2g} to {spectrum.max():.2g}")
     fig.suptitle(f"Tuning for d = {dim}: {shape}\n"
                  "curves: Gaussian-limit predictions; diamonds: this walk", fontsize=11)
@@ -267,11 +294,9 @@ def _plot_gradient_tuning(trace, path=None):
     the realised acceptance."""
     from ..theory.gradient import stable_step_limit, step_acceptance
 
-    tuning = trace.walker.tuning
-    warm = trace.walker.report.warmup
-    dim, sampler = int(tuning.dim), tuning.sampler
-    chosen = float(warm.tuned_start) if warm is not None else float(tuning.step_size)
-    refined = float(tuning.step_size)
+    facts = trace.facts
+    dim, sampler = int(facts.dim), facts.sampler
+    chosen, refined = float(facts.setting_theory), float(facts.setting)
     stable = stable_step_limit(sampler)  # leapfrog: the curve ends just short of ε = 2
     limit = 0.975 * stable if math.isfinite(stable) else 3.0 * max(chosen, refined)
     grid = np.linspace(0.02, max(limit, 1.5 * max(chosen, refined)), 120)
@@ -282,11 +307,11 @@ def _plot_gradient_tuning(trace, path=None):
     ax.plot(grid, curve, color="#1b6ca8", lw=1.8, label="predicted acceptance")
     ax.axvline(chosen, color="#6a4c93", ls="--", lw=1.0,
                label=f"theory step for d = {dim}: {chosen:.4g}")
-    if warm is not None:
+    if facts.warmed:
         ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
                    label=f"after dual averaging: {refined:.4g}")
-        ax.axhline(warm.target_acceptance, color="grey", ls=":", lw=1.0,
-                   label=f"target acceptance {warm.target_acceptance:.3f}")
+        ax.axhline(facts.aim, color="grey", ls=":", lw=1.0,
+                   label=f"target acceptance {facts.aim:.3f}")
     else:
         ax.set_title("no warm-up: the theory step", fontsize=9)
     ax.plot([refined], [realised], "D", color="#d1495b", ms=8, zorder=4,
@@ -295,15 +320,15 @@ def _plot_gradient_tuning(trace, path=None):
     ax.set_xlabel(f"step size (BlackJAX's step_size for {sampler})")
     ax.set_ylabel("acceptance")
     ax.legend(fontsize=8, loc="upper right")
-    fig.suptitle(f"Tuning of {sampler.upper()} for d = {dim}, posterior whitened by S Sᵀ "
-                 f"({tuning.shape_kind})\ncurve: Gaussian-limit prediction; diamond: this "
+    fig.suptitle(f"Tuning of {facts.title} for d = {dim}, posterior whitened by S Sᵀ "
+                 f"({facts.shape_kind})\ncurve: Gaussian-limit prediction; diamond: this "
                  "walk", fontsize=11)
     _save(fig, path)
     return fig
 
 
 def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
-                   max_panels: int = MAX_PANELS, bins: int = 40):
+                   max_panels: int = MAX_PANELS, bins: int = 40, focus: Any = None):
     """Each parameter's marginal: the draws against the Laplace approximation.
 
     Bars: histogram of all chains' draws (a density). Solid line: a kernel density
@@ -316,13 +341,13 @@ def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
 
     flat = np.asarray(trace.flat)
     chains, draws, dim = flat.shape
-    shown, note = _panel_count(dim, max_panels)
+    chosen, note = panels(trace, focus, max_panels)
     names = _labels(trace, labels)
     mode, laplace_sd = _laplace_moments(trace)
-    fig = _figure(*_panel_size(shown))
+    fig = _figure(*_panel_size(len(chosen)))
     pooled = flat.reshape(-1, dim)
     rng = np.random.default_rng(0)
-    for i, ax in enumerate(_grid(fig, shown)):
+    for k, (i, ax) in enumerate(zip(chosen, _grid(fig, len(chosen)), strict=True)):
         x = pooled[:, i]
         mean, sd = float(x.mean()), float(x.std(ddof=1))
         lo = min(x.min(), mode[i] - 4 * laplace_sd[i])
@@ -330,17 +355,17 @@ def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
         grid = np.linspace(lo, hi, 300)
         heights, _, _ = ax.hist(x, bins=bins, range=(x.min(), x.max()) if sd > 0 else None,
                                 density=True, color="#9ecae1", edgecolor="white", lw=0.3,
-                                label="draws (histogram)" if i == 0 else None)
+                                label="draws (histogram)" if k == 0 else None)
         top = float(np.max(heights))
         if sd > 0:
             sub = x if x.size <= 4000 else rng.choice(x, 4000, replace=False)
             kde = stats.gaussian_kde(sub)(grid)
             top = max(top, float(kde.max()))
             ax.plot(grid, kde, color="#1b6ca8", lw=1.4,
-                    label="draws (kernel density)" if i == 0 else None)
+                    label="draws (kernel density)" if k == 0 else None)
         gauss = stats.norm.pdf(grid, mode[i], laplace_sd[i])
         ax.plot(grid, gauss, color="#d1495b", ls="--", lw=1.4,
-                label="Laplace N(mode, H⁻¹)" if i == 0 else None)
+                label="Laplace N(mode, H⁻¹)" if k == 0 else None)
         ax.set_ylim(0.0, 1.3 * max(top, float(gauss.max())))  # room for the text box
         shift = (mean - mode[i]) / laplace_sd[i]
         ratio = sd / laplace_sd[i]
@@ -359,7 +384,8 @@ def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
 
 
 def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = None,
-                         max_panels: int = MAX_PANELS, max_lag: int | None = None):
+                         max_panels: int = MAX_PANELS, max_lag: int | None = None,
+                         focus: Any = None):
     """Autocorrelation of each parameter's draws by lag, averaged over chains.
 
     A fast decay means nearly independent draws. Each panel gives the integrated
@@ -370,7 +396,7 @@ def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = Non
     """
     flat = np.asarray(trace.flat)
     chains, draws, dim = flat.shape
-    shown, note = _panel_count(dim, max_panels)
+    chosen, note = panels(trace, focus, max_panels)
     names = _labels(trace, labels)
     taus = np.atleast_1d(diagnostics.integrated_autocorrelation_time(flat))
     if max_lag is None:
@@ -381,13 +407,13 @@ def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = Non
     acf = np.atleast_2d(diagnostics.autocorrelation(flat, max_lag))
     lags = np.arange(max_lag + 1) * trace.thin
     band = 2.0 / math.sqrt(chains * draws)
-    fig = _figure(*_panel_size(shown))
-    for i, ax in enumerate(_grid(fig, shown)):
+    fig = _figure(*_panel_size(len(chosen)))
+    for k, (i, ax) in enumerate(zip(chosen, _grid(fig, len(chosen)), strict=True)):
         ax.axhspan(-band, band, color="#dddddd", lw=0,
-                   label="±2/√N: independent draws" if i == 0 else None)
+                   label="±2/√N: independent draws" if k == 0 else None)
         ax.axhline(0.0, color="black", lw=0.6)
         ax.vlines(lags, 0.0, acf[i], color="#1b6ca8", lw=1.0,
-                  label="autocorrelation" if i == 0 else None)
+                  label="autocorrelation" if k == 0 else None)
         ess = chains * draws / taus[i] if np.isfinite(taus[i]) and taus[i] > 0 else 0.0
         ax.text(0.97, 0.95, f"τ = {taus[i]:.1f} steps\nN/τ = {ess:.0f} effective draws",
                 transform=ax.transAxes,
@@ -404,20 +430,24 @@ def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = Non
     return fig
 
 
-def save_all(trace, out_dir, *, labels: Sequence[str] | None = None) -> list[Path]:
+def save_all(trace, out_dir, *, labels: Sequence[str] | None = None,
+             focus: Any = None) -> list[Path]:
     """Write the four figures as PNG files into ``out_dir``; return their paths.
 
     File names: ``traces.png``, ``tuning.png``, ``marginals.png``,
     ``autocorrelation.png`` (see :data:`FILE_NAMES`). The tuning figure needs a walker
     that has been through :func:`fisherwalk.refine` or :func:`fisherwalk.start`.
+    ``focus`` chooses the parameters of the per-parameter figures (see
+    :func:`plot_traces`).
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     makers: dict[str, Any] = {
-        "traces": lambda p: plot_traces(trace, p, labels=labels),
+        "traces": lambda p: plot_traces(trace, p, labels=labels, focus=focus),
         "tuning": lambda p: plot_tuning(trace, p),
-        "marginals": lambda p: plot_marginals(trace, p, labels=labels),
-        "autocorrelation": lambda p: plot_autocorrelation(trace, p, labels=labels),
+        "marginals": lambda p: plot_marginals(trace, p, labels=labels, focus=focus),
+        "autocorrelation": lambda p: plot_autocorrelation(trace, p, labels=labels,
+                                                          focus=focus),
     }
     paths = []
     for key, make in makers.items():

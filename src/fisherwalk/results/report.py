@@ -23,7 +23,7 @@ import numpy as np
 
 from ..errors import InputError, explain
 from . import alerts, diagnostics, mcse
-from .table import interval_probabilities
+from .table import check_text, interval_probabilities
 from .table import render as _render
 
 __all__ = ["Summary", "summarize"]
@@ -72,6 +72,10 @@ class Summary(NamedTuple):
     rhat_limit: float = 1.01  # the thresholds the warnings and the check column used
     ess_limit: float = 400.0
     flags: tuple[str, ...] = ()  # per parameter, extra words for the check column
+    sampler: str | None = None  # the sampler's name in words, for the header
+    setting_label: str = "scale"  # what ``scale`` is: "scale" or "step size"
+    acceptance_band: tuple[float, float] | None = None  # acceptances the theory tolerates
+    jump_dim: int | None = None  # parameters the jump is summed over (None: len(names))
 
     def table(self) -> str:
         """The summary as text: header, one row per parameter, warnings."""
@@ -79,6 +83,11 @@ class Summary(NamedTuple):
 
     def __str__(self) -> str:
         return _render(self)
+
+    def to_csv(self) -> str:
+        """One row per parameter with every column (the names, then the numbers of
+        :meth:`to_dict`'s rows; empty cells for None and non-finite values)."""
+        return csv_text(self)
 
     def to_dict(self) -> dict:
         """Plain JSON-ready content; non-finite numbers become ``None`` (the warnings
@@ -104,8 +113,12 @@ class Summary(NamedTuple):
                 "mcse": _plain(self.acceptance_mcse),
                 "target": _plain(self.target_acceptance),
                 "scale": _plain(self.scale),
+                "setting": self.setting_label,
                 "gaussian": _plain(self.gaussian_acceptance),
+                "tolerated": None if self.acceptance_band is None
+                else [_plain(v) for v in self.acceptance_band],
             },
+            "sampler": self.sampler,
             "jump": {
                 "units": "squared whitened distance per step",
                 "predicted": _plain(self.predicted_jump),
@@ -122,6 +135,30 @@ class Summary(NamedTuple):
             "warnings": list(self.warnings),
             "notes": list(self.notes),
         }
+
+
+CSV_COLUMNS = ("mean", "sd", "mcse", "mcse_sd", "lower", "median", "upper", "mcse_lower",
+               "mcse_median", "mcse_upper", "ess_bulk", "ess_tail", "ess_bulk_per_second",
+               "rhat")
+
+
+def csv_text(summary: Summary) -> str:
+    """The per-parameter table as CSV text (RFC 4180 quoting; numbers in ``repr`` form, so
+    they read back exactly). ``lower``/``upper`` are the central interval's ends."""
+    import csv
+    import io
+
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(("name", *CSV_COLUMNS, "check"))
+    for j, name in enumerate(summary.names):
+        cells = []
+        for column in CSV_COLUMNS:
+            values = getattr(summary, column)
+            value = None if values is None else _plain(values[j])
+            cells.append("" if value is None else repr(value))
+        writer.writerow((name, *cells, check_text(summary, j)))
+    return out.getvalue()
 
 
 def _plain(value):
@@ -198,12 +235,25 @@ def _steps(value, chains: int):
 
 
 def _acceptance_error(steps: np.ndarray) -> float:
-    """MCSE of the pooled acceptance: sd / sqrt(ESS of the split series), the ESS floored
-    at 1 so that series constant in every chain count as one draw."""
+    """Monte Carlo standard error of the pooled acceptance ā = (1/m) Σ_c ā_c.
+
+    The m chains are independent, so Var(ā) = (1/m²) Σ_c Var(ā_c), and a chain's mean of
+    n correlated values has Var(ā_c) = s_c² τ_c / n = s_c² / ESS_c (the Markov-chain
+    central limit theorem; Geyer 1992, "Practical Markov chain Monte Carlo", Statistical
+    Science 7(4)), s_c² the chain's variance of the per-draw acceptance and ESS_c its
+    effective size for the mean (:func:`fisherwalk.results.diagnostics.ess_mean` on that
+    chain). For independent 0/1 indicators it is the binomial √(p(1 − p)/(m n)). A chain
+    whose acceptance never varies adds nothing; its ESS is floored at 1.
+    """
     if steps.shape[1] < 4:
         return float("nan")
-    ess = float(diagnostics.ess_mean(steps))
-    return float(np.std(steps, ddof=1) / math.sqrt(max(ess, 1.0)))
+    total = 0.0
+    for chain in steps:
+        spread = float(np.var(chain, ddof=1))
+        if spread > 0:
+            ess = float(diagnostics.ess_mean(chain[None, :]))
+            total += spread / max(ess, 1.0)
+    return float(math.sqrt(total) / steps.shape[0])
 
 
 def _correlation(draws: np.ndarray, used, mean: np.ndarray) -> np.ndarray:
@@ -222,10 +272,11 @@ def _correlation(draws: np.ndarray, used, mean: np.ndarray) -> np.ndarray:
 
 def _proposal_correlation(shape, dim: int) -> np.ndarray:
     factor = np.asarray(shape, dtype=float)
-    if factor.shape != (dim, dim) or not np.all(np.isfinite(factor)):
+    if factor.ndim != 2 or factor.shape[0] != dim or not np.all(np.isfinite(factor)):
         raise InputError(explain(f"proposal_shape has shape {factor.shape} or non-finite "
                                  "entries", "summarize(..., proposal_shape=...)",
-                                 f"pass the walker's ({dim}, {dim}) shape S (tuning.shape)"))
+                                 f"pass the walker's ({dim}, {dim}) shape S (tuning.shape), "
+                                 "or some of its rows for some of the parameters"))
     cov = factor @ factor.T
     sd = np.sqrt(np.diag(cov))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -251,6 +302,10 @@ def summarize(
     seconds: float | None = None,
     rhat_limit: float = 1.01,
     ess_limit: float = 400.0,
+    sampler: str | None = None,
+    setting_label: str = "scale",
+    acceptance_band: tuple[float, float] | None = None,
+    jump_dim: int | None = None,
 ) -> Summary:
     """Summarise draws ``(chains, draws, d)`` named ``names`` into a :class:`Summary`.
 
@@ -281,6 +336,14 @@ def summarize(
         S Sᵀ and feed the correlation warning (none without it).
     seconds : wall time of the run: gives the bulk ESS per second.
     rhat_limit, ess_limit : warning thresholds (Vehtari et al. 2021 recommend 1.01, 400).
+    sampler : the sampler's name in words, shown in the header.
+    setting_label : what ``scale`` is ("scale" for the random walk, "step size" for the
+        gradient samplers).
+    acceptance_band : the acceptances at which the theory keeps most of the best jump
+        (:func:`fisherwalk.theory.tolerance.acceptance_band`); inside it no acceptance
+        warning fires.
+    jump_dim : the number of parameters the jumps are summed over, for the per-parameter
+        figure (default: all the names).
 
     Warnings: see :mod:`fisherwalk.results.alerts` for each rule (R-hat, ESS, stuck chain,
     separated chain, faults, acceptance against the header's target, correlated pairs
@@ -376,7 +439,8 @@ def summarize(
     acceptance_mcse = None if steps is None else _acceptance_error(steps)
     if pooled is not None and acceptance_mcse is not None and target_acceptance is not None:
         text = alerts.acceptance_warning(pooled, acceptance_mcse, target_acceptance,
-                                         steps.shape[1], scale, gaussian_acceptance)
+                                         steps.shape[1], scale, gaussian_acceptance,
+                                         band=acceptance_band, label=setting_label)
         warnings += [text] if text else []
     k = 0 if proposal_shape is None else np.shape(proposal_shape)[0]  # parameters only
     if k > dim:
@@ -406,4 +470,8 @@ def summarize(
         min_ess_bulk=float(np.min(ess_b)), min_ess_tail=float(np.min(ess_t)),
         warnings=tuple(warnings), notes=tuple(str(n) for n in header_notes),
         rhat_limit=float(rhat_limit), ess_limit=float(ess_limit),
+        sampler=None if sampler is None else str(sampler), setting_label=str(setting_label),
+        acceptance_band=None if acceptance_band is None
+        else (float(acceptance_band[0]), float(acceptance_band[1])),
+        jump_dim=None if jump_dim is None else int(jump_dim),
     )

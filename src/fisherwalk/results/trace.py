@@ -1,8 +1,10 @@
 """The draws of a run (:class:`Trace`), and its summary.
 
 A Trace is what :func:`fisherwalk.walk` returns: the kept draws in the user's pytree and
-ravelled, the per-draw sampler statistics, and the walker that made them (its chains
-moved to their last kept draw). Chain axis first, draw axis second, everywhere.
+ravelled, the per-draw sampler statistics, the plain facts of the run
+(:class:`fisherwalk.results.facts.RunFacts`, all that the summary, the figures and the
+export read) and the walker that made them (its chains moved to their last kept draw;
+``None`` for a run reopened from its folder). Chain axis first, draw axis second, everywhere.
 """
 
 from __future__ import annotations
@@ -13,8 +15,11 @@ import jax
 import numpy as np
 
 from ..base.pytrees import parameter_names, ravel_batch
+from .alerts import divergence_warning
 from .coverage import mode_caveats
 from .diagnostics import whitened_jump
+from .facts import RunFacts, in_written_order
+from .focus import focus_indices
 from .report import summarize
 
 __all__ = ["Trace", "derived_names", "per_step_jump"]
@@ -23,14 +28,16 @@ __all__ = ["Trace", "derived_names", "per_step_jump"]
 class Trace(NamedTuple):
     """The draws of a run, and what is needed to judge and reproduce them.
 
-    Chain axis first, draw axis second, everywhere.
+    Chain axis first, draw axis second, everywhere. ``flat`` and :attr:`names` are in
+    ravelled order (dict keys sorted); :meth:`columns`, the summary, the figures and the
+    run folder show the parameters in the order the user wrote them.
     """
 
     draws: Any  # the user's pytree, each leaf with leading (chains, draws) axes
     logdensity: np.ndarray  # (chains, draws) log density at each kept draw
     accepted: np.ndarray  # (chains, draws) acceptance indicator (fraction of the thin steps)
-    walker: Any  # the walker used; its states moved to each chain's last kept draw
-    flat: np.ndarray  # (chains, draws, d) the draws ravelled (parameter order: walker.names)
+    walker: Any  # the walker used (its states at each chain's last kept draw); None reopened
+    flat: np.ndarray  # (chains, draws, d) the draws ravelled (parameter order: names)
     acceptance_rate: np.ndarray  # (chains, draws) Metropolis acceptance probability
     faults: np.ndarray  # (chains, draws) proposals with a NaN/+inf log density, rejected
     thin: int  # steps per kept draw
@@ -42,20 +49,35 @@ class Trace(NamedTuple):
     length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
     divergent: np.ndarray | None = None  # (chains, draws) divergent transitions (HMC, NUTS)
     gradients: np.ndarray | None = None  # (chains, draws) gradient evaluations (gradient samplers)
+    facts: RunFacts | None = None  # the plain facts of the run (results.facts)
+    derived_order: tuple[int, ...] = ()  # derived columns in the order the user wrote them
+    predictions: Any = None  # walk(predict=...) pytree, leaves with leading (chains, draws)
+    predictions_order: tuple[int, ...] = ()  # prediction columns in written order
     energy: np.ndarray | None = None  # (chains, draws) Hamiltonian energy (HMC, NUTS)
 
     @property
     def names(self) -> tuple[str, ...]:
-        return self.walker.names
+        """Parameter names in ravelled order (the order of ``flat``)."""
+        return self.facts.names
 
     def columns(self) -> tuple[np.ndarray, tuple[str, ...]]:
-        """The draws ravelled with the derived quantities after the parameters:
-        ``(chains, draws, d + k)`` and their names (``walk(derived=...)`` adds k)."""
-        if self.derived is None:
-            return self.flat, self.names
-        extra = ravel_batch(self.derived, 2)
-        return (np.concatenate([self.flat, extra.astype(self.flat.dtype)], axis=-1),
-                self.names + derived_names(self.derived))
+        """Every summarised column in written order, ``(chains, draws, d + k)``, and the
+        names: the parameters, then the derived quantities (``walk(derived=...)``), then
+        the predictions (``walk(predict=...)``), each in the order the user wrote them."""
+        dim = self.flat.shape[-1]
+        order = in_written_order(self.facts.order, dim)
+        parts, names = [self.flat[..., order]], [self.names[j] for j in order]
+        for tree, written, bare in ((self.derived, self.derived_order, "derived"),
+                                    (self.predictions, self.predictions_order, "predicted")):
+            if tree is None:
+                continue
+            extra = ravel_batch(tree, 2).astype(self.flat.dtype)
+            keep = in_written_order(written, extra.shape[-1])
+            parts.append(extra[..., keep])
+            tree_names = derived_names(tree, bare=bare)
+            names += [tree_names[j] for j in keep]
+        values = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=-1)
+        return values, tuple(names)
 
     def to_arviz(self):
         """The run as ArviZ ``InferenceData`` (:func:`fisherwalk.results.export.to_arviz`;
@@ -64,24 +86,23 @@ class Trace(NamedTuple):
 
         return to_arviz(self)
 
-    def summary(self, interval: float = 0.9):
+    def summary(self, interval: float = 0.9, focus: Any = None):
         """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it).
 
-        ``interval`` is the probability of the central interval shown beside the median
-        (0.9: the 5% and 95% quantiles). The acceptance aimed for, the predicted jump and
-        the Gaussian picture's acceptance are those of the scale actually used. Derived
-        quantities (``walk(derived=...)``) get rows after the parameters.
+        ``interval`` is the probability of the central interval (0.9: from the 5% to the
+        95% quantile). ``focus`` chooses the rows: ``None`` for all, else names, leaf
+        names or patterns (:mod:`fisherwalk.results.focus`), e.g. ``focus=["tau",
+        "beta*"]``. The acceptance aimed for, the predicted jump and the Gaussian
+        picture's acceptance are those of the scale or step size actually used. Derived
+        quantities and predictions get rows after the parameters.
         """
-        tuning = self.walker.tuning
-        warm = getattr(self.walker.report, "warmup", None)
-        # What the sampler aimed for: the warm-up's target when it adapted the scale,
-        # else the Gaussian picture's prediction at the scale used.
-        aim = tuning.target_acceptance if warm is None else warm.target_acceptance
+        facts = self.facts
         realised = None
+        whitening = np.asarray(facts.whitening)
         if self.thin == 1 and self.flat.shape[1] >= 4:  # whitened_jump needs 4 draws
-            realised = whitened_jump(self.flat, np.asarray(tuning.whitening)).per_chain
+            realised = whitened_jump(self.flat, whitening).per_chain
         elif self.thin > 1 and self.flat.shape[1] >= 4:
-            realised = per_step_jump(self.flat, np.asarray(tuning.whitening), self.thin)
+            realised = per_step_jump(self.flat, whitening, self.thin)
         limits = {}
         header: tuple[str, ...] = ()
         if self.length is not None:
@@ -92,46 +113,56 @@ class Trace(NamedTuple):
                        "steps (AR(1) picture: E|x(t+k) - x(t)|² = 2(1 - (1 - J/2)^k) per "
                        "whitened direction)",)
         flat, names = self.columns()
+        dim = self.flat.shape[-1]
+        order = in_written_order(facts.order, dim)
+        keep = focus_indices(names, focus, where="Trace.summary(focus=...)")
+        params = [j for j in keep if j < dim]
+        if focus is not None:
+            header += (f"focus: {len(keep)} of {len(names)} columns shown "
+                       f"({', '.join(map(repr, _focus_texts(focus)))})",)
+        shape = np.asarray(facts.shape)[order][params] if params else None
         summary = summarize(
-            flat,
-            names,
+            flat[..., keep],
+            tuple(names[j] for j in keep),
             interval=interval,
-            target_acceptance=aim,
-            scale=tuning.scale,
-            gaussian_acceptance=tuning.target_acceptance,
+            target_acceptance=facts.aim,
+            scale=facts.setting,
+            gaussian_acceptance=facts.predicted_acceptance,
             acceptance_steps=self.accepted,
-            predicted_jump=tuning.predicted_jump,
+            predicted_jump=facts.predicted_jump,
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
             header_notes=header,
-            proposal_shape=np.asarray(tuning.shape),
+            proposal_shape=shape,
             seconds=self.seconds if self.seconds > 0 else None,
+            sampler=facts.title,
+            setting_label=facts.setting_label,
+            acceptance_band=facts.acceptance_band,
+            jump_dim=dim,
             **limits,
         )
-        fit = self.walker.report.laplace
-        modes, flags = mode_caveats(self.flat, self.names, getattr(fit, "modes_flat", ()),
-                                    [h for _, h in fit.modes], getattr(fit, "modes_fisher", ()))
-        if self.divergent is not None and self.divergent.sum():
-            count, total = int(self.divergent.sum()), self.divergent.size
-            text = (f"{count} of {total} transitions were divergent (the leapfrog energy error "
-                    "exceeded 1000): the sampler met curvature its step size cannot follow, "
-                    "and the draws near there may be biased. Where: the whole run. What to "
-                    "do: look for a funnel or a boundary in the posterior; reparametrise, or "
-                    "run refine() again (a smaller step) and compare.")
+        modes, flags = mode_caveats(self.flat, self.names, facts.modes_flat,
+                                    facts.modes_logdensity, facts.modes_fisher)
+        text = divergence_warning(self.divergent)
+        if text:
             summary = summary._replace(warnings=summary.warnings + (text,))
         if modes:
-            flags = tuple(flags) + ("",) * (len(names) - len(flags))
-            summary = summary._replace(warnings=summary.warnings + (modes,), flags=flags)
+            shown = tuple(flags[int(order[j])] if j < dim else "" for j in keep)
+            summary = summary._replace(warnings=summary.warnings + (modes,), flags=shown)
         return summary
 
 
-def derived_names(derived: Any) -> tuple[str, ...]:
+def _focus_texts(focus: Any) -> list[str]:
+    return [focus] if isinstance(focus, str) else [str(f) for f in focus]
+
+
+def derived_names(derived: Any, bare: str = "derived") -> tuple[str, ...]:
     """One name per scalar derived quantity, in ravelled order (``k``, ``ratio[0]``), as
     :func:`fisherwalk.base.pytrees.parameter_names` names parameters. ``derived`` has
-    leading axes (chains, draws); a bare array is named ``derived``."""
+    leading axes (chains, draws); a bare array is named ``bare``."""
     single = jax.tree.map(lambda leaf: np.empty(np.shape(leaf)[2:]), derived)
     if not jax.tree_util.tree_flatten_with_path(derived)[0][0][0]:  # a bare array
-        return parameter_names({"derived": single})
+        return parameter_names({bare: single})
     return parameter_names(single)
 
 

@@ -59,7 +59,8 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     -------
     states
         One BlackJAX state per chain, batched along the first axis, at the end of the
-        warm-up (``jax.vmap(kernel.step)`` takes them as they are).
+        warm-up (``jax.vmap(kernel.step)`` takes them as they are). With ``chains=1``
+        the one state, unbatched: ``kernel.step(key, state)`` takes it as it is.
     parameters
         ``{"step_size", "inverse_mass_matrix"}`` (NUTS; HMC adds
         ``"num_integration_steps"``, the rounded mean of the jittered count), or
@@ -82,4 +83,7 @@ def handoff(algorithm, logdensity_fn: Callable, position: Any, rng_key, chains: 
     walker = start(logdensity_fn, position, key_start, chains, sampler=family.name,
                    **start_options)
     walker = refine(walker, key_warm, steps=200)
-    return walker.states, family.blackjax_parameters(walker.tuning)
+    states = walker.states
+    if walker.chains == 1:  # a single chain's loop takes an unbatched state
+        states = jax.tree.map(lambda leaf: leaf[0], states)
+    return states, family.blackjax_parameters(walker.tuning)

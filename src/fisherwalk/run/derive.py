@@ -6,9 +6,12 @@ per-observation log likelihood that leave-one-out cross-validation needs (Vehtar
 Gelman & Gabry 2017, "Practical Bayesian model evaluation using leave-one-out
 cross-validation and WAIC", Statistics and Computing 27). ``walk(..., derived=fn)``
 stores ``fn(position) -> pytree`` (e.g. ``{"k": exp(log_k)}``), summarised like the
-parameters.
+parameters. ``walk(..., predict=fn)`` stores ``fn(position, key) -> pytree`` at every kept
+draw, each draw with its own key made from the run's key and the draw's index
+(:func:`prediction_keys`): posterior predictive draws, summarised like the parameters and
+exported to ArviZ as ``posterior_predictive``.
 
-Both run on the host's ravelled draws ``(chains, draws, d)`` in chunks of a fixed number
+All three run on the host's ravelled draws ``(chains, draws, d)`` in chunks of a fixed number
 of draws: each chunk is unravelled, passed through ``jit(vmap(fn))`` and written into a
 preallocated array, so no more than one chunk's copy exists beside the result. The last
 chunk is padded to the same size (by repeating its last draw, discarded after), so the
@@ -24,12 +27,18 @@ from typing import Any
 import jax
 import numpy as np
 
+from ..base.keys import as_key
+from ..base.pytrees import written_order
 from ..errors import InputError, ModelError, explain
 from ..results.export import leaf_variables
 from ..results.trace import derived_names
 
 __all__ = ["check_functions", "evaluate_draws", "evaluate_pointwise", "evaluate_derived",
-           "attach", "CHUNK_VALUES"]
+           "evaluate_predictions", "prediction_keys", "attach", "CHUNK_VALUES",
+           "PREDICT_STREAM"]
+
+PREDICT_STREAM = 0x5052  # folded into the run's key before the draws' indices: predictions
+_KEY_SHAPE = (2,)  # key data of JAX's default threefry key
 
 CHUNK_VALUES = 1 << 22  # output values per chunk (32 MiB in float64): bounds the memory
 
@@ -38,15 +47,27 @@ def _chunk_size(per_draw: int, total: int) -> int:
     return max(1, min(total, 4096, CHUNK_VALUES // max(per_draw, 1)))
 
 
-def _shapes(fn: Callable, dim: int, dtype, unravel: Callable, where: str):
-    """The output structure of ``fn`` at one position (traced, nothing computed)."""
+def _shapes(fn: Callable, dim: int, dtype, unravel: Callable, where: str, *,
+            keyed: bool = False, written: list | None = None):
+    """The output structure of ``fn`` at one position (traced, nothing computed). With
+    ``keyed``, ``fn(position, key)`` gets a JAX key too. ``written`` (a list) receives the
+    output's ravelled indices in the order the function wrote them."""
     if not callable(fn):
         raise InputError(explain(f"Expected a function of the position, got "
                                  f"{type(fn).__name__}.", where,
                                  "pass a function position -> array (or pytree of arrays)."))
+
+    def probe(vector, *key):
+        out = fn(unravel(vector), *(jax.random.wrap_key_data(k) for k in key))
+        if written is not None:
+            written[:] = written_order(out)
+        return out
+
+    args = [jax.ShapeDtypeStruct((dim,), dtype)]
+    if keyed:
+        args.append(jax.ShapeDtypeStruct(_KEY_SHAPE, np.uint32))
     try:
-        shapes = jax.eval_shape(lambda vector: fn(unravel(vector)),
-                                jax.ShapeDtypeStruct((dim,), dtype))
+        shapes = jax.eval_shape(probe, *args)
     except Exception as err:  # noqa: BLE001 - the user's function: report what it raised
         raise ModelError(explain(f"The function raised {type(err).__name__}: {err}", where,
                                  "make it accept one position of the model (the structure "
@@ -63,15 +84,19 @@ def _shapes(fn: Callable, dim: int, dtype, unravel: Callable, where: str):
     return shapes
 
 
-def check_functions(walker, *, pointwise: Callable | None, derived: Callable | None) -> None:
+def check_functions(walker, *, pointwise: Callable | None, derived: Callable | None,
+                    predict: Callable | None = None) -> None:
     """Before sampling: each given function must accept a position of the walker's model
-    and return numeric arrays (the pointwise log likelihood a vector); traced, not run."""
+    (``predict`` also a key) and return numeric arrays (the pointwise log likelihood a
+    vector); traced, not run."""
     dim, dtype = walker.dim, np.asarray(walker.state.position).dtype
     if pointwise is not None:
         shapes = _shapes(pointwise, dim, dtype, walker.unravel, "walk(pointwise=...)")
         _check_vector(shapes)
     if derived is not None:
         _shapes(derived, dim, dtype, walker.unravel, "walk(derived=...)")
+    if predict is not None:
+        _shapes(predict, dim, dtype, walker.unravel, "walk(predict=...)", keyed=True)
 
 
 def _check_vector(shapes) -> None:
@@ -84,21 +109,30 @@ def _check_vector(shapes) -> None:
             "jax.scipy.stats.poisson.logpmf(y, rate) without the sum."))
 
 
-def evaluate_draws(fn: Callable, flat: np.ndarray, unravel: Callable, *, where: str) -> Any:
+def evaluate_draws(fn: Callable, flat: np.ndarray, unravel: Callable, *, where: str,
+                   keys: np.ndarray | None = None, written: list | None = None) -> Any:
     """``fn`` at every draw of ``flat`` ``(chains, draws, d)``: a pytree of host arrays,
     each leaf with leading axes ``(chains, draws)``.
 
-    ``unravel`` maps one ravelled position ``(d,)`` to the user's pytree. Raises
-    :class:`~fisherwalk.errors.ModelError` when ``fn`` fails on a position, returns
-    something that is not a pytree of numeric arrays, or returns non-finite values.
+    ``unravel`` maps one ravelled position ``(d,)`` to the user's pytree. With ``keys``
+    (``(chains, draws, 2)`` key data, one key per draw) the function is called as
+    ``fn(position, key)``. ``written`` (a list) receives the output's ravelled indices in
+    the order the function wrote them. Raises :class:`~fisherwalk.errors.ModelError`
+    when ``fn`` fails on a position, returns something that is not a pytree of numeric
+    arrays, or returns non-finite values.
     """
     flat = np.asarray(flat)
     chains, count, dim = flat.shape
     total = chains * count
     rows = flat.reshape(total, dim)
-    leaves, treedef = jax.tree_util.tree_flatten(_shapes(fn, dim, flat.dtype, unravel, where))
+    keyed = keys is not None
+    key_rows = np.asarray(keys).reshape(total, -1) if keyed else np.zeros((total, 0), np.uint32)
+    leaves, treedef = jax.tree_util.tree_flatten(
+        _shapes(fn, dim, flat.dtype, unravel, where, keyed=keyed, written=written))
 
-    def one(vector):
+    def one(vector, key_data):
+        if keyed:
+            return fn(unravel(vector), jax.random.wrap_key_data(key_data))
         return fn(unravel(vector))
 
     per_draw = sum(math.prod(leaf.shape) for leaf in leaves)
@@ -108,10 +142,12 @@ def evaluate_draws(fn: Callable, flat: np.ndarray, unravel: Callable, *, where: 
     batched = jax.jit(jax.vmap(one))
     for begin in range(0, total, size):
         stop = min(begin + size, total)
-        block = rows[begin:stop]
+        block, key_block = rows[begin:stop], key_rows[begin:stop]
         if stop - begin < size:  # pad to the compiled size; the padding is discarded
-            block = np.concatenate([block, np.repeat(block[-1:], size - (stop - begin), 0)])
-        values = jax.tree_util.tree_leaves(jax.device_get(batched(block)))
+            pad = size - (stop - begin)
+            block = np.concatenate([block, np.repeat(block[-1:], pad, 0)])
+            key_block = np.concatenate([key_block, np.repeat(key_block[-1:], pad, 0)])
+        values = jax.tree_util.tree_leaves(jax.device_get(batched(block, key_block)))
         for target, value in zip(out, values, strict=True):
             target[begin:stop] = value[: stop - begin]
     for index, array in enumerate(out):
@@ -135,11 +171,11 @@ def evaluate_pointwise(fn: Callable, flat: np.ndarray, unravel: Callable) -> np.
 
 
 def evaluate_derived(fn: Callable, flat: np.ndarray, unravel: Callable,
-                     names: tuple[str, ...]) -> Any:
+                     names: tuple[str, ...], written: list | None = None) -> Any:
     """The derived quantities (a pytree, leaves with leading (chains, draws) axes); their
     names must differ from the parameters' ``names``, and their leaves' names from the
     position's leaves (ArviZ keeps both as variables of one posterior)."""
-    values = evaluate_draws(fn, flat, unravel, where="walk(derived=...)")
+    values = evaluate_draws(fn, flat, unravel, where="walk(derived=...)", written=written)
     leaves = set(leaf_variables(unravel(np.asarray(flat)[0, 0]), bare="x"))
     clash = sorted((set(derived_names(values)) & set(names))
                    | (set(leaf_variables(values, bare="derived")) & leaves))
@@ -151,16 +187,49 @@ def evaluate_derived(fn: Callable, flat: np.ndarray, unravel: Callable,
     return values
 
 
-def attach(trace, *, pointwise: Callable | None = None, derived: Callable | None = None):
-    """The trace with its pointwise log likelihood and/or derived quantities evaluated on
-    its kept draws (the other fields unchanged)."""
+def prediction_keys(rng_key, chains: int, draws: int) -> np.ndarray:
+    """Key data ``(chains, draws, 2)`` of each kept draw's prediction key:
+    ``fold_in(fold_in(fold_in(run key, PREDICT_STREAM), chain), draw)``, the draw's global
+    index within its chain. It depends on the run's key and the draw alone, so
+    predictions are reproducible and do not depend on chunking, rounds or resumption."""
+    base = jax.random.fold_in(as_key(rng_key, where="walk(predict=...)"), PREDICT_STREAM)
+
+    def per_draw(chain, draw):
+        return jax.random.key_data(jax.random.fold_in(jax.random.fold_in(base, chain), draw))
+
+    grid = jax.vmap(jax.vmap(per_draw, (None, 0)), (0, None))
+    return np.asarray(grid(np.arange(chains, dtype=np.uint32), np.arange(draws, dtype=np.uint32)))
+
+
+def evaluate_predictions(fn: Callable, flat: np.ndarray, unravel: Callable, rng_key,
+                         written: list | None = None) -> Any:
+    """``fn(position, key)`` at every kept draw with the draw's own key
+    (:func:`prediction_keys`): a pytree, leaves with leading (chains, draws) axes."""
+    chains, count = np.shape(flat)[:2]
+    return evaluate_draws(fn, flat, unravel, where="walk(predict=...)",
+                          keys=prediction_keys(rng_key, chains, count), written=written)
+
+
+def attach(trace, *, pointwise: Callable | None = None, derived: Callable | None = None,
+           predict: Callable | None = None):
+    """The trace with its pointwise log likelihood, derived quantities and/or predictions
+    evaluated on its kept draws (the other fields unchanged)."""
     if trace.flat.shape[1] == 0:
         return trace
     unravel = trace.walker.unravel
-    changes = {}
+    changes: dict[str, Any] = {}
     if pointwise is not None:
         changes["pointwise"] = evaluate_pointwise(pointwise, trace.flat, unravel)
     if derived is not None:
-        changes["derived"] = evaluate_derived(derived, trace.flat, unravel, trace.names)
+        written: list[int] = []
+        changes["derived"] = evaluate_derived(derived, trace.flat, unravel, trace.names,
+                                              written)
+        changes["derived_order"] = tuple(written)
+    if predict is not None:
+        written = []
+        key = jax.random.wrap_key_data(np.asarray(trace.rng_key, dtype=np.uint32))
+        changes["predictions"] = evaluate_predictions(predict, trace.flat, unravel, key,
+                                                      written)
+        changes["predictions_order"] = tuple(written)
     return trace._replace(**changes)
 

@@ -33,6 +33,7 @@ import numpy as np
 
 from ..base.keys import step_noise
 from ..base.meshes import chain_placement
+from ..base.programs import remembered
 from . import proposal
 
 DEFAULT_CHUNK = 100  # kept draws per compiled call; warm-up uses the same, so one compile
@@ -164,7 +165,8 @@ def make_engine(logdensity_flat: Callable, chains: int, devices=None, *,
     ``devices``: where the chains run (:func:`fisherwalk.base.meshes.chain_mesh`; None:
     automatic, one device = no placement).
     """
-    compiled, compiled_part = _compiled(logdensity_flat)
+    compiled, compiled_part = remembered(  # compiled once per model
+        logdensity_flat, "random-walk loop", (), lambda: _compiled(logdensity_flat))
     placement = chain_placement(chains, devices)  # [devices] None on one device
     budget = NOISE_BUDGET if budget is None else budget
 

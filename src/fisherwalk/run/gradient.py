@@ -45,6 +45,7 @@ import numpy as np
 from blackjax.adaptation.step_size import DualAveragingAdaptationState
 
 from ..base.meshes import chain_placement
+from ..base.programs import remembered
 from ..theory.gradient import INTEGRATION_TIME
 from .engine import ChainState  # the one chain state: here z, log density, ∇_z
 from .metric import to_whitened, whitening_factor  # noqa: F401  (re-exported: older callers)
@@ -249,8 +250,10 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
     mode = np.asarray(mode)
     whitening = np.asarray(whitening).astype(mode.dtype)
     step = transition(int(max_num_doublings))
-    compiled = _compiled(step, logdensity_flat, chains, float(target_acceptance),
-                         float(gamma))
+    compiled = remembered(logdensity_flat, "gradient loop", (  # compiled once per model
+        sampler, int(chains), float(target_acceptance), int(max_num_doublings), float(gamma)),
+        lambda: _compiled(step, logdensity_flat, chains, float(target_acceptance),
+                          float(gamma)))
     placement = chain_placement(chains, devices)
     mode_device, whitening_device = jax.device_put(mode), jax.device_put(whitening)
 
@@ -264,7 +267,8 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
                        whitening_device, draws=int(draws), thin=int(thin))
         return placement.gather(out)
 
-    evaluate = jax.jit(jax.vmap(jax.value_and_grad(logdensity_flat)))
+    evaluate = remembered(logdensity_flat, "gradient evaluate", (), lambda: jax.jit(
+        jax.vmap(jax.value_and_grad(logdensity_flat))))
     return GradientEngine(sampler, int(chains), mode, whitening, float(target_acceptance),
                           int(max_num_doublings), logdensity_flat, run, evaluate, step,
                           placement)

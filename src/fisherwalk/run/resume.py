@@ -30,12 +30,13 @@ from .memory import check_walk_memory
 from .sampling import walk
 from .tuningfile import MAX_DIM, MAX_RECORD_BYTES, walker_from_record
 
-__all__ = ["resume"]
+__all__ = ["resume", "rebuild_walker"]
 
 
 def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: bool | None = None,
            checkpoint_every: float = DEFAULT_EVERY, checkpoint_reclaim: bool = False,
-           pointwise: Callable | None = None, derived: Callable | None = None) -> Trace:
+           pointwise: Callable | None = None, derived: Callable | None = None,
+           predict: Callable | None = None) -> Trace:
     """Finish a checkpointed run from its directory alone and the model's log density.
 
     The walker is rebuilt from the tuning record stored in the checkpoint
@@ -60,9 +61,10 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     checkpoint_reclaim
         Break the directory's lock when it is stale (left by a run on this host that no
         longer runs, e.g. killed); a lock of a running process is never broken.
-    pointwise, derived
+    pointwise, derived, predict
         As in :func:`fisherwalk.walk`; evaluated on all the kept draws at the end (they
-        are not stored in the checkpoint).
+        are not stored in the checkpoint; predictions use each draw's own key, so they
+        equal an uninterrupted run's).
 
     Returns
     -------
@@ -76,8 +78,21 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         density that does not match the one the checkpoint was written with.
     """
     directory = Path(path)
-    run_file = directory / RUN_FILE
     where = f"resume({os.fspath(directory)!r})"
+    walker, key, draws, thin, chunk, (positions0, logdensity0) = rebuild_walker(
+        directory, logdensity_fn, position=position, where=where)
+    _check_logdensity(directory, walker, positions0, logdensity0, where)
+    return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
+                checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,
+                pointwise=pointwise, derived=derived, predict=predict)
+
+
+def rebuild_walker(directory: Path, logdensity_fn: Callable, *, position: Any = None,
+                   where: str) -> tuple:
+    """The walker, key, draws, thin, chunk and the stored starting (positions, log
+    densities) of the checkpoint in ``directory``, every field checked (the log density
+    is not evaluated here)."""
+    run_file = directory / RUN_FILE
     if not run_file.is_file():
         raise CheckpointError(explain(f"There is no checkpoint at {directory} (no {RUN_FILE}).",
                                       where, "pass the directory given to walk(checkpoint=...)."))
@@ -118,10 +133,7 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     if walker.family.stores_state:  # the chains' exact start (a refit would round it)
         walker = walker._replace(state=whitened_state(
             start.get("whitened"), walker.state, chains, dim, str(dtype), run_file))
-    _check_logdensity(directory, walker, positions0, logdensity0, where)
-    return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
-                checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,
-                pointwise=pointwise, derived=derived)
+    return walker, key, draws, thin, chunk, (positions0, logdensity0)
 
 
 def _key(content: Any, run_file: Path) -> jax.Array:

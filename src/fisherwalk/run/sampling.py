@@ -24,6 +24,7 @@ from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, Chunk
 from .memory import check_walk_memory
 from .progress import progress_bar
+from .runfacts import run_facts
 from .walker import Walker, continuable_state
 
 _FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
@@ -87,6 +88,7 @@ def walk(
     checkpoint_reclaim: bool = False,
     pointwise: Callable | None = None,
     derived: Callable | None = None,
+    predict: Callable | None = None,
 ) -> Trace:
     """Run every chain of a walker (a Walker holds all the chains) and collect the draws.
 
@@ -140,6 +142,13 @@ def walk(
         ``{"k": jnp.exp(p["log_k"])}``); evaluated like ``pointwise``, stored as
         ``trace.derived`` and summarised with the parameters. Neither is checkpointed:
         both are recomputed at the end of a resumed run.
+    predict
+        ``predict(position, key) -> pytree``: predictions with their own randomness
+        (e.g. a new observation drawn at each kept draw). Evaluated after sampling with
+        each draw's own key, ``fold_in`` of the run's key and the draw's index
+        (:func:`fisherwalk.run.derive.prediction_keys`), so the same key gives the same
+        predictions whatever the chunking; stored as ``trace.predictions``, summarised
+        after the derived quantities and exported to ArviZ as ``posterior_predictive``.
 
     Returns
     -------
@@ -164,7 +173,7 @@ def walk(
     chunk = whole_number(chunk, "chunk", "walk(chunk=...)")
     key = as_key(rng_key, where="walk(rng_key=...)")
     state = continuable_state(walker, "walk()")
-    derive.check_functions(walker, pointwise=pointwise, derived=derived)
+    derive.check_functions(walker, pointwise=pointwise, derived=derived, predict=predict)
     chains, dim = state.position.shape
     if planned:
         ess_limit = positive_number(ess_limit, "ess_limit", "walk(ess_limit=...)")
@@ -201,14 +210,14 @@ def walk(
             state = store.restore(collector, state)
         return _sample(walker, key, state, collector, store, chunks, planned, total, thin,
                        chunk, progress, (ess_limit, rhat_limit, max_draws, max_seconds),
-                       pointwise, derived)
+                       (pointwise, derived, predict))
     finally:
         if store is not None:
             store.close()
 
 
 def _sample(walker, key, state, collector, store, chunks, planned, total, thin, chunk,
-            progress, limits, pointwise, derived) -> Trace:
+            progress, limits, functions) -> Trace:
     """The chunk loop of walk(): rounds (a planned run) or one fixed length."""
     ess_limit, rhat_limit, max_draws, max_seconds = limits
     bar = progress_bar(total, progress, "sampling, round 1" if planned else "sampling")
@@ -290,7 +299,8 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
     complete = stopped != "interrupted" and (planned or collector.done == total)
     trace = _trace(walker, collector, state, thin, key, seconds, complete=complete,
                    length=length)
-    return derive.attach(trace, pointwise=pointwise, derived=derived)
+    pointwise, derived, predict = functions
+    return derive.attach(trace, pointwise=pointwise, derived=derived, predict=predict)
 
 
 def _show(bar, collector, total, elapsed, first_done, round_number, planned) -> None:
@@ -313,4 +323,5 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  complete, length=length,
                  divergent=collector.divergent if gradient else None,
                  gradients=collector.gradients if gradient else None,
-                 energy=collector.energy if collector.has_energy else None)
+                 energy=collector.energy if collector.has_energy else None,
+                 facts=run_facts(final))

@@ -26,6 +26,7 @@ from . import proposal
 from .progress import progress_bar
 from .samplers import registry
 from .samplers.auto import choose_sampler
+from .starts import chosen_starts
 from .tuningfile import SavedTuning, check_tuning
 from .walker import (
     LaplaceCheck,
@@ -192,6 +193,7 @@ def start(
     scouts: int = SCOUTS,
     progress: bool | None = None,
     sampler: str = "rwm",
+    chain_starts: Any = None,
     **laplace_options,
 ) -> Walker:
     """Tune a sampler from the Laplace approximation of the posterior.
@@ -242,6 +244,11 @@ def start(
         batched log density and one batched gradient here and pick the sampler predicted
         to reach bulk ESS 400 first (the report says why). The choices are the registered
         sampler families (:mod:`fisherwalk.run.samplers.registry`) and ``"auto"``.
+    chain_starts
+        Each chain's own starting point instead of a draw of N(mode, H⁻¹): a pytree with
+        the position's structure and a leading axis of length ``chains`` on every leaf.
+        The report gives each start's distance from the mode in posterior sds
+        (:mod:`fisherwalk.run.starts`); the Laplace draws still feed the PSIS check.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 
@@ -312,7 +319,10 @@ def start(
     model = make_model(logdensity_fn, fit.mode, chains)
     positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
     notes.extend(state_notes)
-    if len(fit.modes_flat) > 1:
+    if chain_starts is not None:
+        positions, logdens, note = chosen_starts(chain_starts, fit, model.evaluate, chains)
+        notes.append(note)
+    elif len(fit.modes_flat) > 1:
         positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
         notes.append(note)
     if sampler == registry.AUTO:

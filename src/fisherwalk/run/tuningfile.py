@@ -36,7 +36,7 @@ import numpy as np
 from ..base import pytrees
 from ..base.checks import positive_number, probability, spd_matrix, whole_number
 from ..base.jsonio import decode_array, decode_number, read_json, to_plain, write_json_atomic
-from ..base.pytrees import name_difference
+from ..base.pytrees import name_difference, written_order
 from ..errors import InputError, explain
 from ..fit.laplace import LaplaceFit
 from .samplers import registry
@@ -507,6 +507,7 @@ def walker_from_record(
         modes=((mode, float(fit_values["logdensity"])),),
         warnings=(),
         seconds={},
+        order=() if position is None else written_order(position),  # the user's order
     )
     notes = tuple(str(n) for n in record.get("notes", ())) + (
         "Walker rebuilt from a saved record: the tuning and the Laplace fit were not "

@@ -29,6 +29,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base import pytrees
+from ..base.programs import remembered, structure_key
 from ..errors import InputError, SamplingError, explain
 from ..fit.laplace import LaplaceFit
 from .metric import spectrum_of
@@ -142,7 +143,13 @@ class Walker(NamedTuple):
 
 def make_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
     """The closures over a log density: ravelled, batched and jitted (no engine yet:
-    :func:`assemble` asks the walker's family for one)."""
+    :func:`assemble` asks the walker's family for one); built once per log density,
+    structure and chains (:mod:`fisherwalk.base.programs`)."""
+    return remembered(logdensity_fn, "model", (structure_key(mode), int(chains)),
+                      lambda: _new_model(logdensity_fn, mode, chains))
+
+
+def _new_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
     _, unravel = jax.flatten_util.ravel_pytree(mode)
 
     def flat(vector):
@@ -153,13 +160,17 @@ def make_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
 
 
 def flat_logdensity(model: Model) -> Callable:
-    """The user's log density on the ravelled position, ``(d,) -> scalar``."""
+    """The user's log density on the ravelled position, ``(d,) -> scalar``: one function
+    object per model, so that the programs built from it are remembered."""
     unravel, fn = model.unravel, model.logdensity_fn
 
-    def flat(vector):
-        return fn(unravel(vector))
+    def build():
+        def flat(vector):
+            return fn(unravel(vector))
 
-    return flat
+        return flat
+
+    return remembered(model.evaluate, "flat log density", (), build)
 
 
 def with_engine(model: Model, tuning: Tuning, mode_flat, chains: int,
