@@ -251,7 +251,8 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
     whitening = np.asarray(whitening).astype(mode.dtype)
     step = transition(int(max_num_doublings))
     compiled = remembered(logdensity_flat, "gradient loop", (  # compiled once per model
-        sampler, int(chains), float(target_acceptance), int(max_num_doublings), float(gamma)),
+        sampler, transition, int(chains), float(target_acceptance), int(max_num_doublings),
+        float(gamma)),
         lambda: _compiled(step, logdensity_flat, chains, float(target_acceptance),
                           float(gamma)))
     placement = chain_placement(chains, devices)
