@@ -127,6 +127,10 @@ def test_to_arviz_for_every_family(walkers, name):
     assert data.posterior["x"].shape == (2, 30, 3)
     parameter = walkers[name].family.parameter
     assert data.sample_stats.attrs[parameter] == getattr(walkers[name].tuning, parameter)
+    # the export and the summary's header name the family
+    label = walkers[name].family.label
+    assert data.sample_stats.attrs["sampler"] == label
+    assert label in str(trace.summary())
     # HMC and NUTS carry their Hamiltonian, so that arviz.bfmi works (MALA has none)
     assert (trace.energy is not None) == (name in ("hmc", "nuts"))
     if trace.energy is not None:
