@@ -12,7 +12,6 @@ import numpy as np
 
 from ..base.pytrees import path_parts
 from ..results.facts import RunFacts
-from ..theory.tolerance import acceptance_band
 
 __all__ = ["run_facts"]
 
@@ -42,7 +41,7 @@ def run_facts(walker) -> RunFacts:
         aim=float(warm.target_acceptance) if warm is not None else predicted,
         predicted_acceptance=predicted,
         predicted_jump=None if tuning.predicted_jump is None else float(tuning.predicted_jump),
-        acceptance_band=acceptance_band(family.name, int(tuning.dim), spectrum),
+        acceptance_band=tuple(family.acceptance_band(tuning)),  # the family's own theory
         shape=np.asarray(tuning.shape, dtype=float),
         whitening=np.asarray(tuning.whitening, dtype=float),
         shape_kind=str(tuning.shape_kind),

@@ -78,6 +78,8 @@ class Family(NamedTuple):
     ess_per_step: Callable[[Any], float]  # tuning -> predicted bulk ESS per step (plan)
     ess_per_evaluation: Callable[[int], float]  # dim -> Gaussian-limit ESS per evaluation
     describe: Callable[[Any], str]  # tuning -> start()'s note on the sampler
+    acceptance_band: Callable[[Any], tuple]  # tuning -> acceptances keeping 80% of the best
+    #                                           jump (fisherwalk.theory.tolerance)
     # -- compiled advance
     engine: Callable[..., Any]  # (flat logdensity, tuning, mode_flat, chains, devices) -> engine
     init: Callable[..., Any]  # (engine, positions, logdensity or None, evaluate, names) -> state

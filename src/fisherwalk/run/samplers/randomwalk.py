@@ -29,6 +29,7 @@ from ...base.keys import stream
 from ...results.diagnostics import ess_mean
 from ...theory.gradient import predicted_ess_per_evaluation
 from ...theory.randomwalk import expected_acceptance, expected_jump, is_matched, optimal_scale
+from ...theory.tolerance import acceptance_band
 from .. import engine as rw_engine
 from .. import proposal
 from ..engine import ChainState, make_engine, run_chunks
@@ -246,6 +247,7 @@ FAMILY = Family(
     ess_per_step=_ess_per_step,
     ess_per_evaluation=lambda dim: predicted_ess_per_evaluation("rwm", dim),
     describe=lambda tuning: "",
+    acceptance_band=lambda tuning: acceptance_band("rwm", tuning.dim, tuning.spectrum),
     engine=_engine,
     init=_init,
     positions=_positions,

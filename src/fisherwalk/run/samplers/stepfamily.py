@@ -22,6 +22,7 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from ...theory.gradient import optimal_gradient_step, predicted_ess_per_evaluation
+from ...theory.tolerance import acceptance_band
 from .. import gradient
 from ..engine import DEFAULT_CHUNK, chunk_loop
 from ..gradient_checks import check_gradients
@@ -172,7 +173,9 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
         predicted_jump=lambda tuning: float(choice(tuning).jump_distance * tuning.dim),
         ess_per_step=ess_per_step,
         ess_per_evaluation=lambda dim: predicted_ess_per_evaluation(name, dim),
-        describe=_describe(name, words), engine=engine, init=_init, positions=_positions,
+        describe=_describe(name, words),
+        acceptance_band=lambda tuning: acceptance_band(name, tuning.dim, tuning.spectrum),
+        engine=engine, init=_init, positions=_positions,
         chunks=_chunks_with(energy), stores_state=True, phase=_phase, reshape=_reshape(engine),
         settle=_settle, covariance_of_squares=True, blackjax=blackjax,
         blackjax_states=blackjax_states, blackjax_parameters=blackjax_parameters,
