@@ -72,7 +72,8 @@ from .engine import ChainState
 from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
-           "decode_state", "damaged", "whitened_state", "MAX_CHAINS"]
+           "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "segment_layout",
+           "segment_bytes", "segment_data"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -155,10 +156,44 @@ def _digest(array: Any) -> str:
     return h.hexdigest()
 
 
-def _segment_bytes(chains: int, draws: int, dim: int, itemsize: int) -> int:
-    """An upper bound on the size of a segment file of ``draws`` draws (uncompressed
-    .npz: the arrays, their headers and the zip directory)."""
-    return chains * draws * (dim * itemsize + 3 * itemsize + 4) + 64 * 1024
+_MEMBER_BYTES = 1024  # per .npz member: its .npy header (padded to 64 bytes, under 256
+# for these shapes), the zip local header and central-directory entry with their zip64
+# extras and the member's name (about 200 bytes); rounded up
+_ZIP_END_BYTES = 1024  # the end-of-central-directory records (zip64 included)
+_FINGERPRINT = np.dtype("<U64")  # the fingerprint member: 64 hexadecimal characters
+
+
+def segment_layout(collector, start: int, stop: int) -> dict[str, tuple[tuple, np.dtype]]:
+    """(shape, dtype) of every array a segment of draws ``[start, stop)`` holds: the
+    collector's arrays in that range, and the start, stop and fingerprint members. The
+    same list that :meth:`Store.save` writes, so the size bound cannot drift from it."""
+    layout = {}
+    for name in _ARRAYS:
+        array = getattr(collector, name)
+        layout[name] = ((array.shape[0], stop - start, *array.shape[2:]), array.dtype)
+    layout.update(start=((), np.dtype(np.int64)), stop=((), np.dtype(np.int64)),
+                  fingerprint=((), _FINGERPRINT))
+    return layout
+
+
+def segment_data(collector, start: int, stop: int, fingerprint: str) -> bytes:
+    """The .npz file of a segment of draws ``[start, stop)``: the arrays of
+    :func:`segment_layout`, uncompressed."""
+    arrays = {name: getattr(collector, name)[:, start:stop] for name in _ARRAYS}
+    arrays.update(start=np.int64(start), stop=np.int64(stop),
+                  fingerprint=np.array(fingerprint, dtype=_FINGERPRINT))
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    return buffer.getvalue()
+
+
+def segment_bytes(layout: dict[str, tuple[tuple, np.dtype]]) -> int:
+    """An upper bound on the size of the uncompressed .npz file of ``layout`` (from
+    :func:`segment_layout`): each array's bytes, plus a bounded overhead per member and
+    for the zip directory's end."""
+    data = sum(int(np.prod(shape, dtype=np.int64)) * np.dtype(dtype).itemsize
+               for shape, dtype in layout.values())
+    return data + len(layout) * _MEMBER_BYTES + _ZIP_END_BYTES
 
 
 # ----------------------------------------------------------------------------- identity
@@ -401,7 +436,7 @@ class Store:
     def _load_segment(self, index: int, start: int, digest: str, collector) -> int:
         file = self.path / _SEGMENT.format(index)
         chains, draws, dim = collector.flat.shape
-        limit = _segment_bytes(chains, draws - start, dim, collector.flat.itemsize)
+        limit = segment_bytes(segment_layout(collector, start, draws))
         if not file.exists():
             raise damaged(file, "the segment file is missing")
         try:
@@ -492,12 +527,7 @@ class Store:
         if not force and done < self.draws and now - self._last < self.every:
             return
         start, index = self._done, self._segments
-        arrays = {name: getattr(collector, name)[:, start:done] for name in _ARRAYS}
-        arrays.update(start=np.int64(start), stop=np.int64(done),
-                      fingerprint=np.array(self.fingerprint))
-        buffer = io.BytesIO()
-        np.savez(buffer, **arrays)
-        data = buffer.getvalue()
+        data = segment_data(collector, start, done, self.fingerprint)
         write_atomic(self.path / _SEGMENT.format(index), lambda handle: handle.write(data),
                      error=CheckpointError, where=self._where())
         digests = [*self._digests, hashlib.sha256(data).hexdigest()]
