@@ -16,9 +16,12 @@
     The kept draws, log densities, acceptance indicators, acceptance rates and faults
     of draws ``[start, stop)``, written once each.
 ``writer.lock``
-    Present while a run writes the directory (:mod:`fisherwalk.base.lock`): a second
-    writer is refused, naming the first. A lock left by a run that died on this host is
-    reported as stale and broken only when asked (``walk(..., checkpoint_reclaim=True)``).
+    The kernel's advisory lock of the run that writes the directory
+    (:mod:`fisherwalk.base.lock`): a second writer is refused, naming the first. The
+    kernel releases it when its owner ends, however it ends, so a killed run's
+    checkpoint continues with no flag. (A pid-file lock of an older fisherwalk whose
+    owner died is reported as stale and broken only when asked,
+    ``walk(..., checkpoint_reclaim=True)``.)
 
 Every file is written through :func:`fisherwalk.base.files.write_atomic` (an
 unpredictable temporary name created exclusively, never through a link, ``fsync``-ed
