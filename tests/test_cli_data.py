@@ -32,6 +32,7 @@ def _csv(tmp_path, text, name="table.csv"):
 
 def _refused(tmp_path, capsys, text):
     out = tmp_path / "out"
+    out.mkdir()  # an existing folder gets the note; a missing one is never created
     code = cli.main(["run", str(TABLE_MODEL), "--data", str(_csv(tmp_path, text)),
                      "--out", str(out), "--no-compile-cache", *SMALL])
     err = capsys.readouterr().err

@@ -168,6 +168,38 @@ def _out_is_a_file(tmp):
     return check_output_folder(tmp / "afile", 0)
 
 
+def _output_link(tmp):
+    from fisherwalk.cli.outputs import check_output_names
+
+    (tmp / "out").mkdir()
+    (tmp / "out" / "draws.npz").symlink_to(tmp / "elsewhere.npz")
+    return check_output_names(tmp / "out", ["draws.npz"])
+
+
+def _users_own_data(tmp):
+    from fisherwalk.cli.outputs import check_demo_folder
+
+    (tmp / "data.csv").write_text("my,own\n1,2\n")
+    return check_demo_folder(tmp)
+
+
+def _second_checkpointed_run(tmp):
+    from fisherwalk.cli.resumable import claim_checkpoint
+
+    (tmp / "checkpoint").mkdir()
+    (tmp / "checkpoint" / "run.json").write_text("{}")
+    return claim_checkpoint(tmp, model_file="model.py")
+
+
+def _held_checkpoint(tmp):
+    from fisherwalk.base.lock import acquire_lock
+
+    path = _checkpoint(tmp)
+    with acquire_lock(path):
+        return fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path,
+                               progress=False)
+
+
 # (where, what is refused, call(tmp_path), exception, words the message must contain)
 def _kinked(x):  # finite everywhere; the gradient in x[1] is NaN wherever x[1] >= 1
     return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[1], 0.0))
@@ -287,6 +319,15 @@ CASES = [
      lambda t: parse_whole_number("1e23", "--seed", "option --seed", minimum=0,
                                   maximum=MAX_SEED),
      fisherwalk.InputError, "not a whole number"),
+    ("walk(checkpoint=...)", "a checkpoint whose lock a live writer holds (the kernel's lock)",
+     _held_checkpoint, fisherwalk.CheckpointError, "in use by process"),
+    ("fisherwalk run / demo / resume", "an output name in --out that is a link or a folder "
+     "(checked before the fit)", _output_link, fisherwalk.InputError, "symbolic link"),
+    ("fisherwalk demo", "a data.csv or record.json in --out that no demo wrote",
+     _users_own_data, fisherwalk.InputError, "did not write"),
+    ("fisherwalk run --checkpoint", "an --out that holds a checkpointed run already (its "
+     "command.json is kept)", _second_checkpointed_run, fisherwalk.InputError,
+     "checkpointed run already"),
 ]
 
 
@@ -340,6 +381,7 @@ def _normalise(text: str) -> str:
     text = re.sub(r"\d+(\.\d+)? (GiB|MiB)", r"# \2", text)
     text = re.sub(r"at most about \d+", "at most about #", text)
     text = re.sub(r"on host '[^']*'", "on host #", text)
+    text = re.sub(r"by process \d{2,} on host #, since [0-9T:+-]+", "by process #", text)
     return re.sub(r"\d\.\d{3,}(e[-+]?\d+)?", "#", text)
 
 
