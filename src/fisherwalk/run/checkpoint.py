@@ -76,7 +76,7 @@ from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
            "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "segment_layout",
-           "segment_bytes", "segment_data"]
+           "segment_bytes", "segment_data", "whitened_digests", "check_start_whitened"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -150,6 +150,24 @@ def decode_state(content: Any, file: Path, dtype, chains: int, dim: int
     return position, logdensity
 
 
+def whitened_digests(state) -> str:
+    """``"position:<sha256>,logdensity:<sha256>,logdensity_grad:<sha256>"`` of a gradient
+    sampler's whitened chain state, or "" for a state without a gradient."""
+    if state is None or not hasattr(state, "logdensity_grad"):
+        return ""
+    return ",".join(f"{f}:{_digest(getattr(state, f))}" for f in _WHITENED_FIELDS)
+
+
+def _changed_field(recorded: str, state, prefix: str) -> str | None:
+    """The first whitened field whose digest differs from ``recorded`` (None: same)."""
+    here = dict(part.split(":", 1) for part in whitened_digests(state).split(",") if part)
+    there = dict(part.split(":", 1) for part in recorded.split(",") if ":" in part)
+    for field in _WHITENED_FIELDS:
+        if here.get(field) != there.get(field):
+            return f"{prefix}{field}"
+    return None
+
+
 def _digest(array: Any) -> str:
     a = np.ascontiguousarray(np.asarray(array))
     h = hashlib.sha256()
@@ -164,6 +182,8 @@ _MEMBER_BYTES = 1024  # per .npz member: its .npy header (padded to 64 bytes, un
 # extras and the member's name (about 200 bytes); rounded up
 _ZIP_END_BYTES = 1024  # the end-of-central-directory records (zip64 included)
 _FINGERPRINT = np.dtype("<U64")  # the fingerprint member: 64 hexadecimal characters
+_WHITENED = np.dtype("<U256")  # digests of a gradient sampler's whitened state (or "")
+_WHITENED_FIELDS = ("position", "logdensity", "logdensity_grad")
 
 
 def segment_layout(collector, start: int, stop: int) -> dict[str, tuple[tuple, np.dtype]]:
@@ -175,16 +195,19 @@ def segment_layout(collector, start: int, stop: int) -> dict[str, tuple[tuple, n
         array = getattr(collector, name)
         layout[name] = ((array.shape[0], stop - start, *array.shape[2:]), array.dtype)
     layout.update(start=((), np.dtype(np.int64)), stop=((), np.dtype(np.int64)),
-                  fingerprint=((), _FINGERPRINT))
+                  fingerprint=((), _FINGERPRINT), whitened=((), _WHITENED))
     return layout
 
 
-def segment_data(collector, start: int, stop: int, fingerprint: str) -> bytes:
+def segment_data(collector, start: int, stop: int, fingerprint: str,
+                 whitened: str = "") -> bytes:
     """The .npz file of a segment of draws ``[start, stop)``: the arrays of
-    :func:`segment_layout`, uncompressed."""
+    :func:`segment_layout`, uncompressed (``whitened``: :func:`whitened_digests` of the
+    state saved with it, for a gradient sampler)."""
     arrays = {name: getattr(collector, name)[:, start:stop] for name in _ARRAYS}
     arrays.update(start=np.int64(start), stop=np.int64(stop),
-                  fingerprint=np.array(fingerprint, dtype=_FINGERPRINT))
+                  fingerprint=np.array(fingerprint, dtype=_FINGERPRINT),
+                  whitened=np.array(whitened, dtype=_WHITENED))
     buffer = io.BytesIO()
     np.savez(buffer, **arrays)
     return buffer.getvalue()
@@ -221,8 +244,19 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
         "digests": {"factor": _digest(np.asarray(tuning.shape) * float(tuning.scale)),
                     "mode": _digest(walker.report.laplace.mode_flat),
                     "states": _digest(positions) + _digest(logdensity),
-                    "record": _record_digest(tuning_record(walker))},
+                    "record": _record_digest(tuning_record(walker)),
+                    **({"whitened": whitened_digests(walker.state)} if walker.gradient else {})},
     }
+
+
+def _legacy_fingerprint(identity: dict) -> str | None:
+    """The fingerprint of ``identity`` as a fisherwalk before the whitened digests wrote
+    it (None when there is nothing to drop)."""
+    digests = identity.get("digests") or {}
+    if "whitened" not in digests:
+        return None
+    return _fingerprint({**identity, "digests": {k: v for k, v in digests.items()
+                                                 if k != "whitened"}})
 
 
 def _record_digest(record: dict) -> str:
@@ -320,6 +354,7 @@ class Store:
         self._segments = 0
         self._digests: list[str] = []
         self._last = time.monotonic()
+        self._saved_whitened: str | None = None
         self.lock: Lock | None = None
         self._open(walker, bool(reclaim))
 
@@ -370,6 +405,12 @@ class Store:
         run_file = p / RUN_FILE
         if RUN_FILE in names:
             run = read_checkpoint_json(run_file, max_bytes=2 * MAX_RECORD_BYTES)
+            if run["fingerprint"] == _legacy_fingerprint(self.identity):
+                # written before the whitened starting states were digested: this walker's
+                # own state is used, so nothing in run.json's start reaches the chains
+                self.identity = {**self.identity, "digests": {
+                    k: v for k, v in self.identity["digests"].items() if k != "whitened"}}
+                self.fingerprint = run["fingerprint"]
             if run["fingerprint"] != self.fingerprint:
                 there = run.get("identity") if isinstance(run.get("identity"), dict) else {}
                 diffs = _differences(there, self.identity) or ["its fingerprint differs"]
@@ -454,6 +495,9 @@ class Store:
             with np.load(io.BytesIO(data), allow_pickle=False) as content:
                 arrays = {name: content[name]
                           for name in (*_ARRAYS, "start", "stop", "fingerprint")}
+                # "" in segments written before the whitened state was digested
+                self._saved_whitened = str(content["whitened"]) if "whitened" in content.files \
+                    else None
         except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
             raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
         if str(arrays["fingerprint"]) != self.fingerprint:
@@ -502,8 +546,16 @@ class Store:
                           jnp.asarray(collector.logdensity[:, done - 1]))
 
     def _whitened(self, saved: dict, state, chains: int, dim: int):
-        return whitened_state(saved.get("whitened"), state, chains, dim, str(self._dtype),
-                              self.path / STATE_FILE)
+        file = self.path / STATE_FILE
+        restored = whitened_state(saved.get("whitened"), state, chains, dim,
+                                  str(self._dtype), file)
+        if self._saved_whitened is not None:  # the last segment records what was saved with it
+            field = _changed_field(self._saved_whitened, restored, "whitened.")
+            if field is not None:
+                raise damaged(file, f"'{field}' is not the gradient sampler's state saved "
+                                    "with the last segment (its SHA-256 differs): the file "
+                                    "was edited")
+        return restored
 
     def _tidy(self) -> None:
         """Remove temporary files and segments no state file counts (a process died
@@ -530,7 +582,8 @@ class Store:
         if not force and done < self.draws and now - self._last < self.every:
             return
         start, index = self._done, self._segments
-        data = segment_data(collector, start, done, self.fingerprint)
+        data = segment_data(collector, start, done, self.fingerprint,
+                            whitened_digests(state))
         write_atomic(self.path / _SEGMENT.format(index), lambda handle: handle.write(data),
                      error=CheckpointError, where=self._where())
         digests = [*self._digests, hashlib.sha256(data).hexdigest()]
@@ -549,6 +602,20 @@ class Store:
             else {f: encode_array(getattr(state, f)) for f in state._fields},
         }, indent=None, error=CheckpointError, where=self._where())
         self._done, self._segments, self._digests, self._last = done, index + 1, digests, now
+
+
+def check_start_whitened(run: dict, state, run_file: Path) -> None:
+    """Refuse a run file whose ``start.whitened`` fields (decoded into ``state``) are not
+    the ones digested in its identity when the run began, naming the field."""
+    identity = run.get("identity") if isinstance(run.get("identity"), dict) else {}
+    recorded = (identity.get("digests") or {}).get("whitened")
+    if recorded is None:
+        return  # written before the digests: the fingerprint check of walk() applies
+    field = _changed_field(str(recorded), state, "start.whitened.")
+    if field is not None:
+        raise damaged(run_file, f"'{field}' is not the chains' starting state the run began "
+                                "with (its SHA-256 differs from identity.digests.whitened): "
+                                "the file was edited")
 
 
 def whitened_state(content, state, chains: int, dim: int, dtype: str, state_file: Path):

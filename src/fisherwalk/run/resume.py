@@ -21,6 +21,7 @@ from .checkpoint import (
     MAX_CHAINS,
     RUN_FILE,
     STATE_FILE,
+    check_start_whitened,
     damaged,
     decode_state,
     read_checkpoint_json,
@@ -118,6 +119,7 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     if walker.gradient:  # the chains' exact whitened start (a refit would round it)
         walker = walker._replace(state=whitened_state(
             start.get("whitened"), walker.state, chains, dim, str(dtype), run_file))
+        check_start_whitened(run, walker.state, run_file)
     _check_logdensity(directory, walker, positions0, logdensity0, where)
     return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
                 checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,
