@@ -150,6 +150,12 @@ def decode_state(content: Any, file: Path, dtype, chains: int, dim: int
     return position, logdensity
 
 
+def _text(value: np.ndarray) -> str:
+    """A segment's short ASCII member as text ("" when it is not one)."""
+    item = value.item() if value.shape == () else b""
+    return item.decode("ascii", "replace") if isinstance(item, bytes) else ""
+
+
 def whitened_digests(state) -> str:
     """``"position:<sha256>,logdensity:<sha256>,logdensity_grad:<sha256>"`` of a gradient
     sampler's whitened chain state, or "" for a state without a gradient."""
@@ -182,7 +188,8 @@ _MEMBER_BYTES = 1024  # per .npz member: its .npy header (padded to 64 bytes, un
 # extras and the member's name (about 200 bytes); rounded up
 _ZIP_END_BYTES = 1024  # the end-of-central-directory records (zip64 included)
 _FINGERPRINT = np.dtype("<U64")  # the fingerprint member: 64 hexadecimal characters
-_WHITENED = np.dtype("<U256")  # digests of a gradient sampler's whitened state (or "")
+_WHITENED = np.dtype("S240")  # ASCII digests of a gradient sampler's whitened state (at
+# most 230 characters; b"" for the random walk, written as the 1-byte string it is)
 _WHITENED_FIELDS = ("position", "logdensity", "logdensity_grad")
 
 
@@ -207,7 +214,8 @@ def segment_data(collector, start: int, stop: int, fingerprint: str,
     arrays = {name: getattr(collector, name)[:, start:stop] for name in _ARRAYS}
     arrays.update(start=np.int64(start), stop=np.int64(stop),
                   fingerprint=np.array(fingerprint, dtype=_FINGERPRINT),
-                  whitened=np.array(whitened, dtype=_WHITENED))
+                  whitened=np.array(whitened.encode("ascii"),
+                                    dtype=f"S{max(len(whitened), 1)}"))
     buffer = io.BytesIO()
     np.savez(buffer, **arrays)
     return buffer.getvalue()
@@ -496,8 +504,8 @@ class Store:
                 arrays = {name: content[name]
                           for name in (*_ARRAYS, "start", "stop", "fingerprint")}
                 # "" in segments written before the whitened state was digested
-                self._saved_whitened = str(content["whitened"]) if "whitened" in content.files \
-                    else None
+                self._saved_whitened = _text(content["whitened"]) \
+                    if "whitened" in content.files else None
         except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
             raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
         if str(arrays["fingerprint"]) != self.fingerprint:
