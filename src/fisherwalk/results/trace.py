@@ -42,6 +42,7 @@ class Trace(NamedTuple):
     length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
     divergent: np.ndarray | None = None  # (chains, draws) divergent transitions (HMC, NUTS)
     gradients: np.ndarray | None = None  # (chains, draws) gradient evaluations (gradient samplers)
+    failures: tuple = ()  # pointwise/derived evaluations that failed (run.derive.EvaluationFailure)
 
     @property
     def names(self) -> tuple[str, ...]:
