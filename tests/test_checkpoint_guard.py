@@ -153,8 +153,13 @@ def test_malformed_run_file_is_a_checkpoint_error(run, tmp_path, edit, message):
 def test_deeply_nested_state_file_is_a_checkpoint_error(run, tmp_path):
     walker, _, directory = run
     copy = _copy(directory, tmp_path / "copy.ckpt")
-    (copy / "state.json").write_text("[" * 100_000 + "]" * 100_000)
+    # within the state file's size bound (about 66 kB here), so that the depth is judged
+    (copy / "state.json").write_text("[" * 30_000 + "]" * 30_000)
     with pytest.raises(CheckpointError, match="deeper than"):
+        walk(walker, jax.random.key(1), DRAWS, chunk=CHUNK, checkpoint=copy)
+    # beyond it: refused by its size, before a byte is parsed
+    (copy / "state.json").write_text("[" * 100_000 + "]" * 100_000)
+    with pytest.raises(CheckpointError, match="more than the"):
         walk(walker, jax.random.key(1), DRAWS, chunk=CHUNK, checkpoint=copy)
 
 

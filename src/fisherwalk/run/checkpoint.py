@@ -76,7 +76,8 @@ from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
            "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "segment_layout",
-           "segment_bytes", "segment_data", "whitened_digests", "check_start_whitened"]
+           "segment_bytes", "segment_data", "whitened_digests", "check_start_whitened",
+           "state_bytes"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -84,7 +85,8 @@ DEFAULT_EVERY = 10.0  # seconds between saves
 RUN_FILE = "run.json"
 STATE_FILE = "state.json"
 MAX_CHAINS = 1_000_000
-_MAX_STATE_BYTES = 2**31
+_NUMBER_BYTES = 32  # a number in JSON: at most 24 characters (-1.2345678901234567e-308)
+# or a quoted non-finite token, a comma and a space; rounded up
 _SEGMENT = "segment-{:06d}.npz"
 _SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
 _TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
@@ -172,6 +174,16 @@ def _changed_field(recorded: str, state, prefix: str) -> str | None:
         if here.get(field) != there.get(field):
             return f"{prefix}{field}"
     return None
+
+
+def state_bytes(chains: int, dim: int, draws: int, chunk: int) -> int:
+    """An upper bound on the size of ``state.json`` of a run: the chains' position and
+    log density, a gradient sampler's whitened position, log density and gradient
+    (``3 chains d + 2 chains`` numbers), one digest per segment (at most one segment per
+    chunk) and 64 KiB for the keys and layout. A padded file is refused by its size,
+    before a byte of it is parsed."""
+    segments = -(-draws // chunk)
+    return (_NUMBER_BYTES * (3 * chains * dim + 2 * chains) + 72 * segments + 64 * 1024)
 
 
 def _digest(array: Any) -> str:
@@ -463,7 +475,8 @@ class Store:
             if any(_SEGMENT_RE.match(f) for f in os.listdir(self.path)):
                 raise damaged(file, "it is missing while segment files exist")
             return None  # the process stopped before its first save
-        state = read_checkpoint_json(file, max_bytes=_MAX_STATE_BYTES)
+        state = read_checkpoint_json(file, max_bytes=state_bytes(chains, dim, self.draws,
+                                                                 self.chunk))
         if state["fingerprint"] != self.fingerprint:
             raise damaged(file, "it was written for another run than run.json")
         done, digests = state.get("done"), state.get("digests")

@@ -25,9 +25,10 @@ from .checkpoint import (
     damaged,
     decode_state,
     read_checkpoint_json,
+    state_bytes,
     whitened_state,
 )
-from .memory import check_walk_memory
+from .memory import check_steps, check_walk_memory
 from .sampling import walk
 from .tuningfile import MAX_DIM, MAX_RECORD_BYTES, walker_from_record
 
@@ -101,7 +102,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     dtype = np.dtype(identity["dtype"])
     positions0, logdensity0 = decode_state(start, run_file, dtype, chains, dim)
     key = _key(identity.get("key"), run_file)
-    check_walk_memory(draws, chains, dim, dtype=dtype, where=where, error=CheckpointError)
+    check_steps(draws, thin, where=where, error=CheckpointError)
+    check_walk_memory(draws, chains, dim, dtype=dtype, where=where, error=CheckpointError,
+                      thin=thin)
     if dtype == np.float64 and not x64_enabled():
         raise CheckpointError(explain(
             "The checkpoint was written in float64 and JAX now computes in float32.", where,
@@ -120,7 +123,8 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
         walker = walker._replace(state=whitened_state(
             start.get("whitened"), walker.state, chains, dim, str(dtype), run_file))
         check_start_whitened(run, walker.state, run_file)
-    _check_logdensity(directory, walker, positions0, logdensity0, where)
+    _check_logdensity(directory, walker, positions0, logdensity0, where,
+                      state_bytes(chains, dim, draws, chunk))
     return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
                 checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,
                 pointwise=pointwise, derived=derived)
@@ -140,12 +144,13 @@ def _key(content: Any, run_file: Path) -> jax.Array:
         raise damaged(run_file, f"its random key is malformed ({err})") from err
 
 
-def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str) -> None:
+def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str,
+                      max_state_bytes: int) -> None:
     """The user's log density must reproduce the saved one at the saved chain states."""
     positions, stored = positions0, logdensity0
     state_file = directory / STATE_FILE
     if state_file.exists():
-        saved = read_checkpoint_json(state_file, max_bytes=2**31)
+        saved = read_checkpoint_json(state_file, max_bytes=max_state_bytes)
         if saved.get("done"):
             positions, stored = decode_state(saved, state_file, positions0.dtype,
                                              *positions0.shape)

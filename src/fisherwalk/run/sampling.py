@@ -23,7 +23,7 @@ from . import derive, engine, plan
 from .checkpoint import Store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
 from .gradient_run import gradient_chunks
-from .memory import check_walk_memory
+from .memory import check_steps, check_walk_memory
 from .progress import progress_bar
 from .walker import Walker, continuable_state
 
@@ -162,7 +162,7 @@ def walk(
     chunk = whole_number(chunk, "chunk", "walk(chunk=...)")
     key = as_key(rng_key, where="walk(rng_key=...)")
     state = continuable_state(walker, "walk()")
-    derive.check_functions(walker, pointwise=pointwise, derived=derived)
+    per_draw = derive.check_functions(walker, pointwise=pointwise, derived=derived)
     chains, dim = state.position.shape
     if planned:
         ess_limit = positive_number(ess_limit, "ess_limit", "walk(ess_limit=...)")
@@ -184,7 +184,9 @@ def walk(
     else:
         total = whole_number(draws, "draws", "walk(draws=...)")
     dtype = np.asarray(state.logdensity).dtype
-    check_walk_memory(total, chains, dim, dtype=dtype)
+    check_steps(max_draws if planned else total, thin)
+    check_walk_memory(total, chains, dim, dtype=dtype, thin=thin,
+                      pointwise=per_draw[0], derived=per_draw[1])
     collector = _Collector(chains, total, dim, dtype)
     if walker.gradient:
         def chunks(state, total, done):

@@ -31,6 +31,7 @@ from .gradient_run import (
     gradient_tuning,
     integration_time_words,
 )
+from .memory import check_start_memory
 from .progress import progress_bar
 from .tuningfile import SavedTuning, check_tuning
 from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
@@ -275,6 +276,7 @@ def start(
     key = as_key(rng_key, where="start(rng_key=...)")
     dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
         int(np.size(leaf)) for leaf in jax.tree.leaves(position))
+    check_start_memory(chains, dim)  # before the fit: chains=10**10 is refused, not tried
     large = [_large_dim_note(dim)] if dim >= LARGE_DIM else []
     for message in large:  # before the fit, which is itself slow at this dimension
         warn_user(message, FisherwalkWarning)
