@@ -265,6 +265,9 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
             previous = (collector.done, max_rhat)
             total = plan.next_total(collector.done, min_ess, max_rhat, chunk, ess_limit,
                                     rhat_limit, max_draws)
+            if total <= collector.done:  # no new draw to take: never an empty round
+                stopped = "draws budget"
+                break
             collector.grow(total)
             if bar is not None:
                 bar.total = total
