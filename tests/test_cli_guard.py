@@ -181,3 +181,13 @@ def test_checkpointed_run_refused_by_a_live_command_writes_no_provenance(model, 
                                    "--draws", "40", "--quiet")
     assert code == 2 and "in use by process" in err and "Laplace fit" not in printed
     assert not (out / "command.json").exists()
+
+
+@pytest.mark.parametrize("code", ["0", "None", "'bye'"])
+def test_sys_exit_in_a_model_file_is_a_refusal_with_a_message(tmp_path, capsys, code):
+    # issue 21, item 12: sys.exit(0) in a model file gave exit 0 with nothing written
+    path = tmp_path / "exits.py"
+    path.write_text(f"import sys\nsys.exit({code})\n")
+    exit_code, printed, err = _main(capsys, "run", path, "--out", tmp_path / "o")
+    assert exit_code == 2 and "sys.exit" in err and "Traceback" not in err
+    assert "Laplace fit" not in printed
