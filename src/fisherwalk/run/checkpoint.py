@@ -69,15 +69,16 @@ from ..base.files import check_folder, fsync_folder, read_bytes, write_atomic
 from ..base.jsonio import decode_array, dumps, encode_array, read_json, write_json_atomic
 from ..base.keys import key_data
 from ..base.lock import LOCK_FILE, Lock, acquire_lock
+from ..base.meshes import failed_processes
 from ..base.pytrees import name_difference
 from ..errors import CheckpointError, FisherwalkWarning, explain
 from .engine import ChainState
 from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
-           "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "segment_layout",
-           "segment_bytes", "segment_data", "whitened_digests", "check_start_whitened",
-           "state_bytes"]
+           "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "open_store",
+           "segment_layout", "segment_bytes", "segment_data", "whitened_digests",
+           "check_start_whitened", "state_bytes"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -156,6 +157,31 @@ def _text(value: np.ndarray) -> str:
     """A segment's short ASCII member as text ("" when it is not one)."""
     item = value.item() if value.shape == () else b""
     return item.decode("ascii", "replace") if isinstance(item, bytes) else ""
+
+
+def open_store(path, walker, rng_key, draws: int, thin: int, chunk: int, *,
+                every: float = DEFAULT_EVERY, reclaim: bool = False) -> Store:
+    """:class:`Store`, opened on every process of a ``jax.distributed`` run together: each
+    process reports whether it opened its checkpoint (one tiny all-gather,
+    :func:`fisherwalk.base.meshes.failed_processes`), so that when one is refused (its
+    lock held by another process given the same folder, a damaged file, ...) it ends with
+    its own error and the others end too, naming it, instead of waiting for it in the
+    sampling's collectives until killed. With one process, just :class:`Store`."""
+    try:
+        store = Store(path, walker, rng_key, draws, thin, chunk, every=every, reclaim=reclaim)
+    except Exception:
+        failed_processes(False)  # tell the others, then end with this process's error
+        raise
+    failed = failed_processes(True)
+    if failed:
+        store.close()
+        raise CheckpointError(explain(
+            f"Process(es) {', '.join(map(str, failed))} of this jax.distributed run could "
+            "not open their checkpoint; this process stops too, instead of waiting for "
+            "them.", f"walk(checkpoint={os.fspath(path)!r}), process {jax.process_index()}",
+            "see the error of the process(es) named; give each process its own checkpoint "
+            "folder, e.g. checkpoint=f\"run.ckpt/{jax.process_index()}\"."))
+    return store
 
 
 def whitened_digests(state) -> str:

@@ -20,7 +20,7 @@ from ..base.keys import as_key, key_data, stream
 from ..errors import FisherwalkWarning, InputError, explain
 from ..results.trace import Trace
 from . import derive, engine, plan
-from .checkpoint import Store
+from .checkpoint import open_store
 from .engine import DEFAULT_CHUNK, ChainState, Chunk, run_chunks
 from .gradient_run import gradient_chunks
 from .memory import check_steps, check_walk_memory
@@ -202,8 +202,8 @@ def walk(
                               chunk=chunk, thin=thin, done=done)
     store = None
     if checkpoint is not None:
-        store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
-                      reclaim=checkpoint_reclaim)
+        store = open_store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
+                           reclaim=checkpoint_reclaim)  # all processes open it, or none
     try:
         if store is not None:
             state = store.restore(collector, state)
