@@ -103,6 +103,7 @@ class Trace(NamedTuple):
             predicted_jump=tuning.predicted_jump,
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
+            gradient_faults=self.gradients is not None,
             header_notes=header,
             proposal_shape=np.asarray(tuning.shape),
             seconds=self.seconds if self.seconds > 0 else None,
@@ -119,6 +120,10 @@ class Trace(NamedTuple):
                     "do: look for a funnel or a boundary in the posterior; reparametrise, or "
                     "run refine() again (a smaller step) and compare.")
             summary = summary._replace(warnings=summary.warnings + (text,))
+        for failure in self.failures:  # walk(pointwise=/derived=) failed after sampling
+            summary = summary._replace(warnings=summary.warnings + (
+                f"walk({failure.function}=...) failed after sampling; its values are not "
+                f"stored (trace.failures): {failure.message}",))
         if modes:
             flags = tuple(flags) + ("",) * (len(names) - len(flags))
             summary = summary._replace(warnings=summary.warnings + (modes,), flags=flags)

@@ -22,6 +22,7 @@ from collections.abc import Callable, Iterator
 from typing import Any, NamedTuple
 
 import jax
+import jax.numpy as jnp
 import numpy as np
 
 from ..errors import InputError, explain
@@ -79,7 +80,9 @@ def _flat(model: Model) -> Callable:
     unravel, fn = model.unravel, model.logdensity_fn
 
     def flat_logdensity(vector):
-        return fn(unravel(vector))
+        # cast at the edge, as the random walk does: a float32 value with x64 on would
+        # give BlackJAX's states and the custom JVP two dtypes
+        return jnp.asarray(fn(unravel(vector)), dtype=vector.dtype)
 
     return flat_logdensity
 
