@@ -73,12 +73,22 @@ from ..base.meshes import failed_processes
 from ..base.pytrees import name_difference
 from ..errors import CheckpointError, FisherwalkWarning, explain
 from .engine import ChainState
+from .segments import (
+    ARRAYS,
+    changed_field,
+    digest,
+    segment_bytes,
+    segment_data,
+    segment_layout,
+    segment_text,
+    state_bytes,
+    whitened_digests,
+)
 from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
            "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "open_store",
-           "segment_layout", "segment_bytes", "segment_data", "whitened_digests",
-           "check_start_whitened", "state_bytes"]
+           "check_start_whitened"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -86,13 +96,10 @@ DEFAULT_EVERY = 10.0  # seconds between saves
 RUN_FILE = "run.json"
 STATE_FILE = "state.json"
 MAX_CHAINS = 1_000_000
-_NUMBER_BYTES = 32  # a number in JSON: at most 24 characters (-1.2345678901234567e-308)
-# or a quoted non-finite token, a comma and a space; rounded up
 _SEGMENT = "segment-{:06d}.npz"
 _SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
 _TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
-_ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")
+
 
 
 # ----------------------------------------------------------------------------- files
@@ -153,12 +160,6 @@ def decode_state(content: Any, file: Path, dtype, chains: int, dim: int
     return position, logdensity
 
 
-def _text(value: np.ndarray) -> str:
-    """A segment's short ASCII member as text ("" when it is not one)."""
-    item = value.item() if value.shape == () else b""
-    return item.decode("ascii", "replace") if isinstance(item, bytes) else ""
-
-
 def open_store(path, walker, rng_key, draws: int, thin: int, chunk: int, *,
                 every: float = DEFAULT_EVERY, reclaim: bool = False) -> Store:
     """:class:`Store`, opened on every process of a ``jax.distributed`` run together: each
@@ -184,90 +185,6 @@ def open_store(path, walker, rng_key, draws: int, thin: int, chunk: int, *,
     return store
 
 
-def whitened_digests(state) -> str:
-    """``"position:<sha256>,logdensity:<sha256>,logdensity_grad:<sha256>"`` of a gradient
-    sampler's whitened chain state, or "" for a state without a gradient."""
-    if state is None or not hasattr(state, "logdensity_grad"):
-        return ""
-    return ",".join(f"{f}:{_digest(getattr(state, f))}" for f in _WHITENED_FIELDS)
-
-
-def _changed_field(recorded: str, state, prefix: str) -> str | None:
-    """The first whitened field whose digest differs from ``recorded`` (None: same)."""
-    here = dict(part.split(":", 1) for part in whitened_digests(state).split(",") if part)
-    there = dict(part.split(":", 1) for part in recorded.split(",") if ":" in part)
-    for field in _WHITENED_FIELDS:
-        if here.get(field) != there.get(field):
-            return f"{prefix}{field}"
-    return None
-
-
-def state_bytes(chains: int, dim: int, draws: int, chunk: int) -> int:
-    """An upper bound on the size of ``state.json`` of a run: the chains' position and
-    log density, a gradient sampler's whitened position, log density and gradient
-    (``3 chains d + 2 chains`` numbers), one digest per segment (at most one segment per
-    chunk) and 64 KiB for the keys and layout. A padded file is refused by its size,
-    before a byte of it is parsed."""
-    segments = -(-draws // chunk)
-    return (_NUMBER_BYTES * (3 * chains * dim + 2 * chains) + 72 * segments + 64 * 1024)
-
-
-def _digest(array: Any) -> str:
-    a = np.ascontiguousarray(np.asarray(array))
-    h = hashlib.sha256()
-    h.update(a.dtype.str.encode())
-    h.update(repr(a.shape).encode())
-    h.update(a.tobytes())
-    return h.hexdigest()
-
-
-_MEMBER_BYTES = 1024  # per .npz member: its .npy header (padded to 64 bytes, under 256
-# for these shapes), the zip local header and central-directory entry with their zip64
-# extras and the member's name (about 200 bytes); rounded up
-_ZIP_END_BYTES = 1024  # the end-of-central-directory records (zip64 included)
-_FINGERPRINT = np.dtype("<U64")  # the fingerprint member: 64 hexadecimal characters
-_WHITENED = np.dtype("S240")  # ASCII digests of a gradient sampler's whitened state (at
-# most 230 characters; b"" for the random walk, written as the 1-byte string it is)
-_WHITENED_FIELDS = ("position", "logdensity", "logdensity_grad")
-
-
-def segment_layout(collector, start: int, stop: int) -> dict[str, tuple[tuple, np.dtype]]:
-    """(shape, dtype) of every array a segment of draws ``[start, stop)`` holds: the
-    collector's arrays in that range, and the start, stop and fingerprint members. The
-    same list that :meth:`Store.save` writes, so the size bound cannot drift from it."""
-    layout = {}
-    for name in _ARRAYS:
-        array = getattr(collector, name)
-        layout[name] = ((array.shape[0], stop - start, *array.shape[2:]), array.dtype)
-    layout.update(start=((), np.dtype(np.int64)), stop=((), np.dtype(np.int64)),
-                  fingerprint=((), _FINGERPRINT), whitened=((), _WHITENED))
-    return layout
-
-
-def segment_data(collector, start: int, stop: int, fingerprint: str,
-                 whitened: str = "") -> bytes:
-    """The .npz file of a segment of draws ``[start, stop)``: the arrays of
-    :func:`segment_layout`, uncompressed (``whitened``: :func:`whitened_digests` of the
-    state saved with it, for a gradient sampler)."""
-    arrays = {name: getattr(collector, name)[:, start:stop] for name in _ARRAYS}
-    arrays.update(start=np.int64(start), stop=np.int64(stop),
-                  fingerprint=np.array(fingerprint, dtype=_FINGERPRINT),
-                  whitened=np.array(whitened.encode("ascii"),
-                                    dtype=f"S{max(len(whitened), 1)}"))
-    buffer = io.BytesIO()
-    np.savez(buffer, **arrays)
-    return buffer.getvalue()
-
-
-def segment_bytes(layout: dict[str, tuple[tuple, np.dtype]]) -> int:
-    """An upper bound on the size of the uncompressed .npz file of ``layout`` (from
-    :func:`segment_layout`): each array's bytes, plus a bounded overhead per member and
-    for the zip directory's end."""
-    data = sum(int(np.prod(shape, dtype=np.int64)) * np.dtype(dtype).itemsize
-               for shape, dtype in layout.values())
-    return data + len(layout) * _MEMBER_BYTES + _ZIP_END_BYTES
-
-
 # ----------------------------------------------------------------------------- identity
 
 
@@ -287,9 +204,9 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
         "tuning": {"scale": float(tuning.scale),
                    "target_acceptance": float(tuning.target_acceptance),
                    "shape_kind": str(tuning.shape_kind)},
-        "digests": {"factor": _digest(np.asarray(tuning.shape) * float(tuning.scale)),
-                    "mode": _digest(walker.report.laplace.mode_flat),
-                    "states": _digest(positions) + _digest(logdensity),
+        "digests": {"factor": digest(np.asarray(tuning.shape) * float(tuning.scale)),
+                    "mode": digest(walker.report.laplace.mode_flat),
+                    "states": digest(positions) + digest(logdensity),
                     "record": _record_digest(tuning_record(walker)),
                     **({"whitened": whitened_digests(walker.state)} if walker.gradient else {})},
     }
@@ -541,9 +458,9 @@ class Store:
         try:
             with np.load(io.BytesIO(data), allow_pickle=False) as content:
                 arrays = {name: content[name]
-                          for name in (*_ARRAYS, "start", "stop", "fingerprint")}
+                          for name in (*ARRAYS, "start", "stop", "fingerprint")}
                 # "" in segments written before the whitened state was digested
-                self._saved_whitened = _text(content["whitened"]) \
+                self._saved_whitened = segment_text(content["whitened"]) \
                     if "whitened" in content.files else None
         except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
             raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
@@ -552,7 +469,7 @@ class Store:
         first, stop = int(arrays["start"]), int(arrays["stop"])
         if first != start or not start < stop <= self.draws:
             raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
-        for name in _ARRAYS:
+        for name in ARRAYS:
             target = getattr(collector, name)
             value = arrays[name]
             expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
@@ -572,8 +489,8 @@ class Store:
             return state
         done, digests = saved["done"], saved["digests"]
         stop = 0
-        for index, digest in enumerate(digests):
-            stop = self._load_segment(index, stop, digest, collector)
+        for index, recorded in enumerate(digests):
+            stop = self._load_segment(index, stop, recorded, collector)
         state_file = self.path / STATE_FILE
         if stop != done:
             raise damaged(state_file, f"it counts {done} draws, the segments hold {stop}")
@@ -597,7 +514,7 @@ class Store:
         restored = whitened_state(saved.get("whitened"), state, chains, dim,
                                   str(self._dtype), file)
         if self._saved_whitened is not None:  # the last segment records what was saved with it
-            field = _changed_field(self._saved_whitened, restored, "whitened.")
+            field = changed_field(self._saved_whitened, restored, "whitened.")
             if field is not None:
                 raise damaged(file, f"'{field}' is not the gradient sampler's state saved "
                                     "with the last segment (its SHA-256 differs): the file "
@@ -658,7 +575,7 @@ def check_start_whitened(run: dict, state, run_file: Path) -> None:
     recorded = (identity.get("digests") or {}).get("whitened")
     if recorded is None:
         return  # written before the digests: the fingerprint check of walk() applies
-    field = _changed_field(str(recorded), state, "start.whitened.")
+    field = changed_field(str(recorded), state, "start.whitened.")
     if field is not None:
         raise damaged(run_file, f"'{field}' is not the chains' starting state the run began "
                                 "with (its SHA-256 differs from identity.digests.whitened): "
