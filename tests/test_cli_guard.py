@@ -191,3 +191,29 @@ def test_sys_exit_in_a_model_file_is_a_refusal_with_a_message(tmp_path, capsys, 
     exit_code, printed, err = _main(capsys, "run", path, "--out", tmp_path / "o")
     assert exit_code == 2 and "sys.exit" in err and "Traceback" not in err
     assert "Laplace fit" not in printed
+
+
+POINTWISE_MODEL = textwrap.dedent("""
+    import jax.numpy as jnp
+    import numpy as np
+
+    def logdensity(p):
+        return -0.5 * jnp.sum((p["x"] - 1.0) ** 2)
+
+    def pointwise(p):  # 10**10 observations' worth of values per draw
+        return jnp.zeros(10**10) + p["x"][0]
+
+    initial_position = {"x": np.zeros(2)}
+""")
+
+
+def test_pointwise_that_would_not_fit_is_refused_before_the_fit(tmp_path, capsys):
+    # issue 21, item 5: with 10**5 observations the run sampled, then failed with a raw
+    # MemoryError and lost the draws; the estimate now counts pointwise before any work
+    path = tmp_path / "model.py"
+    path.write_text(POINTWISE_MODEL)
+    code, printed, err = _main(capsys, "run", path, "--pointwise", "--draws", "100",
+                               "--out", tmp_path / "o")
+    assert code == 2 and "pointwise and derived values" in err and "Traceback" not in err
+    assert "Laplace fit" not in printed
+    assert not (tmp_path / "o").exists()  # --out left untouched (not even created)

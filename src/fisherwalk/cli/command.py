@@ -229,13 +229,34 @@ def _output_bytes(chains: int, draws: int, dim: int) -> int:
     return chains * draws * (dim + 2) * 8 + 125 * dim * dim + 4 * 2**20
 
 
-def _check_before_work(args, dim: int) -> Path:
+def _values_per_draw(fn, position) -> int:
+    """How many numbers ``fn(position)`` returns (traced, not run); 0 when it cannot be
+    traced here (walk() then reports the function's problem)."""
+    if fn is None:
+        return 0
+    import jax
+
+    try:
+        shapes = jax.eval_shape(fn, position)
+    except Exception:  # noqa: BLE001 - reported by walk() with its own message
+        return 0
+    return sum(math.prod(leaf.shape) for leaf in jax.tree_util.tree_leaves(shapes))
+
+
+def _check_before_work(args, dim: int, model=None) -> Path:
     """The output folder (a writable folder with room for the outputs) and the memory
-    the run needs, checked before the fit."""
+    the run needs (with the model's pointwise and derived values), checked before the
+    fit."""
     draws = MAX_DRAWS if args.draws is None else args.draws  # a planned run: its budget
+    pointwise = derived = 0
+    if model is not None:
+        if getattr(args, "pointwise", False):
+            pointwise = _values_per_draw(model.pointwise, model.initial_position)
+        derived = _values_per_draw(model.derived, model.initial_position)
     check_walk_memory(draws, args.chains, dim, where="options --draws and --chains",
                       todo="pass --draws {draws} or fewer (or fewer --chains); nothing was "
-                           "fitted or sampled.")
+                           "fitted or sampled.", thin=args.thin, pointwise=pointwise,
+                      derived=derived)
     out = check_output_folder(args.out, _output_bytes(args.chains, draws, dim))
     checkpoint = bool(getattr(args, "checkpoint", False))
     outputs.check_output_names(out, outputs.output_names(args.command, checkpoint=checkpoint))
@@ -370,7 +391,7 @@ def _run(args, argv) -> int:
             "--checkpoint needs a run of fixed length, and --draws was not given.",
             "option --checkpoint", "pass --draws N with --checkpoint (a planned run's length "
             "is not known in advance, so it cannot be resumed)."))
-    out = _check_before_work(args, model.dim)
+    out = _check_before_work(args, model.dim, model)
     checkpoint = None
     if not args.checkpoint:
         return _run_in(args, argv, say, began, model, out, None)
