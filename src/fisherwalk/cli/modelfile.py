@@ -100,8 +100,13 @@ def load_model(path, data=None) -> ModelSpec:
     try:
         spec.loader.exec_module(module)
     except BaseException as err:  # noqa: BLE001 - any failure of the user's code is reported
-        if isinstance(err, KeyboardInterrupt | SystemExit):
+        if isinstance(err, KeyboardInterrupt):
             raise
+        if isinstance(err, SystemExit):  # sys.exit(0) in the file must not pass for success
+            raise _file_problem(path, f"Importing it called sys.exit({err.code!r:.40}) (or "
+                                "raised SystemExit): the command would end with nothing "
+                                "written.", "remove the exit from the model file (guard "
+                                "script code with `if __name__ == \"__main__\":`).") from None
         raise _file_problem(path, f"Importing it raised {_describe(err, path)}",
                             "fix the file so that `python MODEL_FILE` runs without error."
                             ) from None
@@ -127,6 +132,10 @@ def load_model(path, data=None) -> ModelSpec:
     try:
         value = logdensity(position)
         shape = np.shape(value)
+    except SystemExit as err:
+        raise _file_problem(path, f"logdensity(initial_position) called "
+                            f"sys.exit({err.code!r:.40}).",
+                            "remove the exit from logdensity.") from None
     except Exception as err:  # noqa: BLE001
         raise _file_problem(path, f"logdensity(initial_position) raised {_describe(err, path)}",
                             _advice(err)) from None
@@ -179,6 +188,9 @@ def _made(module, table: Table, path: Path) -> dict:
                             "define make(data) as a function.")
     try:
         made = make(dict(table.columns))
+    except SystemExit as err:
+        raise _file_problem(path, f"make(data) called sys.exit({err.code!r:.40}).",
+                            "remove the exit from make(data).") from None
     except Exception as err:  # noqa: BLE001 - any failure of the user's code is reported
         raise _file_problem(path, f"make(data) raised {_describe(err, path)}",
                             "data maps each column name of the table to a float array; "

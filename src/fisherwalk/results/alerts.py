@@ -236,13 +236,17 @@ def separated_chains(names: Sequence[str], used: Sequence[int], chain_means: np.
     return out
 
 
-def fault_warnings(faults: np.ndarray | None) -> list[str]:
-    """Proposals rejected for a NaN or +inf log density, per chain."""
+def fault_warnings(faults: np.ndarray | None, *, gradient: bool = False) -> list[str]:
+    """Proposals rejected for a NaN or +inf log density, per chain (``gradient``: a
+    gradient sampler, whose faults are also non-finite gradients)."""
     if faults is None or not np.any(faults > 0):
         return []
     hit = [f"chain {c}: {int(faults[c])}" for c in range(faults.size) if faults[c] > 0]
+    what = ("a NaN or +inf log density, or a gradient that is not finite (NaN or inf: the "
+            "log density is not differentiable there)," if gradient
+            else "a NaN or +inf log density")
     return [_warn(
-        f"{int(faults.sum())} proposal(s) had a NaN or +inf log density and were "
+        f"{int(faults.sum())} proposal(s) had {what} and were "
         f"rejected ({', '.join(hit)}).",
         "a NaN usually means the model is evaluated outside its domain (a negative "
         "scale, the log of a negative number): sample such parameters on an "

@@ -54,6 +54,7 @@ class Trace(NamedTuple):
     predictions: Any = None  # walk(predict=...) pytree, leaves with leading (chains, draws)
     predictions_order: tuple[int, ...] = ()  # prediction columns in written order
     energy: np.ndarray | None = None  # (chains, draws) Hamiltonian energy (HMC, NUTS)
+    failures: tuple = ()  # pointwise/derived evaluations that failed (run.derive.EvaluationFailure)
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -132,6 +133,7 @@ class Trace(NamedTuple):
             predicted_jump=facts.predicted_jump,
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
+            gradient_faults=self.gradients is not None,
             header_notes=header,
             proposal_shape=shape,
             seconds=self.seconds if self.seconds > 0 else None,
@@ -146,6 +148,10 @@ class Trace(NamedTuple):
         text = divergence_warning(self.divergent)
         if text:
             summary = summary._replace(warnings=summary.warnings + (text,))
+        for failure in self.failures:  # walk(pointwise=/derived=) failed after sampling
+            summary = summary._replace(warnings=summary.warnings + (
+                f"walk({failure.function}=...) failed after sampling; its values are not "
+                f"stored (trace.failures): {failure.message}",))
         if modes:
             shown = tuple(flags[int(order[j])] if j < dim else "" for j in keep)
             summary = summary._replace(warnings=summary.warnings + (modes,), flags=shown)

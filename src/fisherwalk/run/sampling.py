@@ -20,9 +20,9 @@ from ..base.keys import as_key, key_data
 from ..errors import FisherwalkWarning, InputError, explain
 from ..results.trace import Trace
 from . import derive, plan
-from .checkpoint import Store
+from .checkpoint import open_store
 from .engine import DEFAULT_CHUNK, Chunk
-from .memory import check_walk_memory
+from .memory import check_steps, check_walk_memory
 from .progress import progress_bar
 from .runfacts import run_facts
 from .walker import Walker, continuable_state
@@ -173,7 +173,8 @@ def walk(
     chunk = whole_number(chunk, "chunk", "walk(chunk=...)")
     key = as_key(rng_key, where="walk(rng_key=...)")
     state = continuable_state(walker, "walk()")
-    derive.check_functions(walker, pointwise=pointwise, derived=derived, predict=predict)
+    per_draw = derive.check_functions(walker, pointwise=pointwise, derived=derived,
+                                      predict=predict)
     chains, dim = state.position.shape
     if planned:
         ess_limit = positive_number(ess_limit, "ess_limit", "walk(ess_limit=...)")
@@ -195,7 +196,9 @@ def walk(
     else:
         total = whole_number(draws, "draws", "walk(draws=...)")
     dtype = np.asarray(state.logdensity).dtype
-    check_walk_memory(total, chains, dim, dtype=dtype)
+    check_steps(max_draws if planned else total, thin)
+    check_walk_memory(total, chains, dim, dtype=dtype, thin=thin,
+                      pointwise=per_draw[0], derived=per_draw[1])
     collector = _Collector(chains, total, dim, dtype)
     family, engine = walker.family, walker.model.engine
 
@@ -203,8 +206,8 @@ def walk(
         return family.chunks(engine, walker.tuning, key, state, total, chunk, thin, done)
     store = None
     if checkpoint is not None:
-        store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
-                      reclaim=checkpoint_reclaim)
+        store = open_store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
+                           reclaim=checkpoint_reclaim)  # all processes open it, or none
     try:
         if store is not None:
             state = store.restore(collector, state)
@@ -262,6 +265,9 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
             previous = (collector.done, max_rhat)
             total = plan.next_total(collector.done, min_ess, max_rhat, chunk, ess_limit,
                                     rhat_limit, max_draws)
+            if total <= collector.done:  # no new draw to take: never an empty round
+                stopped = "draws budget"
+                break
             collector.grow(total)
             if bar is not None:
                 bar.total = total
