@@ -17,6 +17,9 @@ from .errors import (
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
+from .models.declared import constrained_problem
+from .models.numpyro_model import model_problem
+from .models.space import ModelProblem
 from .results.trace import Trace
 from .run.blackjax_handoff import handoff
 from .run.resume import resume
@@ -49,6 +52,9 @@ __all__ = [
     "save_tuning",
     "load_tuning",
     "handoff",
+    "model_problem",
+    "constrained_problem",
+    "ModelProblem",
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",

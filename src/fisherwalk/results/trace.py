@@ -13,6 +13,7 @@ import jax
 import numpy as np
 
 from ..base.pytrees import parameter_names, ravel_batch
+from ..models.space import space_note
 from .coverage import mode_caveats
 from .diagnostics import whitened_jump
 from .report import summarize
@@ -42,26 +43,43 @@ class Trace(NamedTuple):
     length: Any = None  # how the run length was decided and why it stopped (run.plan.RunLength)
     divergent: np.ndarray | None = None  # (chains, draws) divergent transitions (HMC, NUTS)
     gradients: np.ndarray | None = None  # (chains, draws) gradient evaluations (gradient samplers)
+    # The model's own space (fisherwalk.models.space.Space) when the log density came from
+    # model_problem / constrained_problem: `draws` then holds every site's value in the
+    # model's order (deterministic sites included) while `flat` stays on the unconstrained
+    # space the sampler moved on; the summary, plots and to_arviz() show the sites.
+    space: Any = None
 
     @property
     def names(self) -> tuple[str, ...]:
         return self.walker.names
 
+    @property
+    def unconstrained(self) -> Any:
+        """The draws on the sampler's space in the position's pytree (the same as
+        ``draws`` unless the model has a space of its own)."""
+        return self.walker.unravel_many(self.flat) if self.space is not None else self.draws
+
     def columns(self) -> tuple[np.ndarray, tuple[str, ...]]:
         """The draws ravelled with the derived quantities after the parameters:
-        ``(chains, draws, d + k)`` and their names (``walk(derived=...)`` adds k)."""
+        ``(chains, draws, d + k)`` and their names (``walk(derived=...)`` adds k). With a
+        model space, the parameters are the model's sites (constrained, model order)."""
+        flat, names = self.flat, self.names
+        if self.space is not None and self.draws is not None:
+            flat = self.space.columns(self.draws).astype(self.flat.dtype)
+            names = self.space.names
         if self.derived is None:
-            return self.flat, self.names
+            return flat, names
         extra = ravel_batch(self.derived, 2)
-        return (np.concatenate([self.flat, extra.astype(self.flat.dtype)], axis=-1),
-                self.names + derived_names(self.derived))
+        return (np.concatenate([flat, extra.astype(flat.dtype)], axis=-1),
+                names + derived_names(self.derived))
 
-    def to_arviz(self):
+    def to_arviz(self, *, predictive: bool = True, prior_draws: int = 0):
         """The run as ArviZ ``InferenceData`` (:func:`fisherwalk.results.export.to_arviz`;
-        needs the optional extra ``arviz``)."""
+        needs the optional extra ``arviz``). For a NumPyro model, ``predictive`` fills
+        ``posterior_predictive`` and ``prior_draws`` > 0 adds that many prior draws."""
         from .export import to_arviz
 
-        return to_arviz(self)
+        return to_arviz(self, predictive=predictive, prior_draws=prior_draws)
 
     def summary(self, interval: float = 0.9):
         """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it).
@@ -90,6 +108,8 @@ class Trace(NamedTuple):
             header += (f"realised jump per step converted from draws kept every {self.thin} "
                        "steps (AR(1) picture: E|x(t+k) - x(t)|² = 2(1 - (1 - J/2)^k) per "
                        "whitened direction)",)
+        if self.space is not None:  # which space the figures are in
+            header += (space_note(self.space),)
         flat, names = self.columns()
         summary = summarize(
             flat,
@@ -103,7 +123,8 @@ class Trace(NamedTuple):
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
             header_notes=header,
-            proposal_shape=np.asarray(tuning.shape),
+            # the correlation check compares the draws with the proposal: sampler's space only
+            proposal_shape=None if self.space is not None else np.asarray(tuning.shape),
             seconds=self.seconds if self.seconds > 0 else None,
             **limits,
         )
@@ -118,7 +139,9 @@ class Trace(NamedTuple):
                     "do: look for a funnel or a boundary in the posterior; reparametrise, or "
                     "run refine() again (a smaller step) and compare.")
             summary = summary._replace(warnings=summary.warnings + (text,))
-        if modes:
+        if modes and self.space is not None:  # rows are sites, not the sampler's coordinates
+            summary = summary._replace(warnings=summary.warnings + (modes,))
+        elif modes:
             flags = tuple(flags) + ("",) * (len(names) - len(flags))
             summary = summary._replace(warnings=summary.warnings + (modes,), flags=flags)
         return summary

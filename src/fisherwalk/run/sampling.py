@@ -18,6 +18,7 @@ import numpy as np
 from ..base.checks import positive_number, whole_number
 from ..base.keys import as_key, key_data, stream
 from ..errors import FisherwalkWarning, InputError, explain
+from ..models.space import space_of
 from ..results.trace import Trace
 from . import derive, engine, plan
 from .checkpoint import Store
@@ -322,4 +323,5 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  collector.acceptance_rate, collector.faults, thin, key_data(key), seconds,
                  complete, length=length,
                  divergent=collector.divergent if gradient else None,
-                 gradients=collector.gradients if gradient else None)
+                 gradients=collector.gradients if gradient else None,
+                 space=space_of(walker.logdensity_fn))  # a model's own space, or None
