@@ -97,7 +97,8 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "warmup": walker.report.warmup,
         "summary": result.summary.to_dict(),
         "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin,
-                     "derived": list(trace.columns()[1][len(trace.names):]),
+                     "derived": list(trace.columns()[1][_parameter_columns(trace):]),
+                     "space": _space_record(trace),
                      "pointwise_observations": None if trace.pointwise is None
                      else int(trace.pointwise.shape[-1]),
                      "draws": int(trace.flat.shape[1]),
@@ -105,6 +106,23 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "seconds": result.seconds,
         **extra,
     })
+
+
+def _parameter_columns(trace) -> int:
+    """How many of trace.columns() are parameters (the model's sites, for a model with
+    a space of its own); derived quantities follow them."""
+    return len(trace.space.names) if trace.space is not None else len(trace.names)
+
+
+def _space_record(trace) -> dict | None:
+    """The model's sites for the record (None for a plain log density)."""
+    if trace.space is None:
+        return None
+    return {"language": trace.space.language,
+            "note": "draws.npz 'draws' and summary.parameters hold the sites' values "
+                    "(constrained); 'unconstrained' holds the sampler's coordinates",
+            "sites": [{"name": s.name, "shape": list(s.shape), "kind": s.kind}
+                      for s in trace.space.sites + trace.space.observed]}
 
 
 def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[str, Path]:
@@ -117,10 +135,15 @@ def write_outputs(out: Path, result: RunResult, record: dict, labels) -> dict[st
     arrays = {"draws": np.asarray(trace.flat), "names": np.asarray(trace.names),
               "logdensity": np.asarray(trace.logdensity),
               "accepted": np.asarray(trace.accepted)}
+    flat, names = trace.columns()
+    shown = _parameter_columns(trace)
+    if trace.space is not None:  # a model's own space: draws are the sites' values
+        arrays.update(draws=flat[..., :shown], names=np.asarray(names[:shown]),
+                      unconstrained=np.asarray(trace.flat),
+                      unconstrained_names=np.asarray(trace.names))
     if trace.derived is not None:  # walk(derived=...): ravelled after the parameters
-        flat, names = trace.columns()
-        arrays["derived"] = flat[..., len(trace.names):]
-        arrays["derived_names"] = np.asarray(names[len(trace.names):])
+        arrays["derived"] = flat[..., shown:]
+        arrays["derived_names"] = np.asarray(names[shown:])
     if trace.pointwise is not None:  # walk(pointwise=...): (chains, draws, n_obs)
         arrays["pointwise"] = np.asarray(trace.pointwise)
     write_atomic(draws_path, lambda handle: np.savez(handle, **arrays))
