@@ -93,6 +93,13 @@ def _trace(model, args, kwargs, key):
                                  "would run it (the data and shapes given).")) from err
 
 
+def _is_discrete(support) -> bool:
+    try:
+        return bool(support.is_discrete)
+    except NotImplementedError:  # a support known only at run time: not a discrete one
+        return False
+
+
 def _sites(trace) -> tuple[tuple[Site, ...], tuple[Site, ...]]:
     """(latent and deterministic sites, observed sites), each in the model's order."""
     from numpyro.distributions.transforms import biject_to
@@ -108,7 +115,7 @@ def _sites(trace) -> tuple[tuple[Site, ...], tuple[Site, ...]]:
             observed.append(Site(name, tuple(shape), "observed"))
             continue
         support = site["fn"].support
-        if support.is_discrete:
+        if _is_discrete(support):
             raise ModelError(explain(
                 f"Site {name!r} is a discrete latent variable ({type(site['fn']).__name__}); "
                 "fisherwalk samples continuous parameters on an unconstrained space.",
