@@ -118,6 +118,21 @@ def test_forgotten_jacobian_is_caught_by_the_closed_form():
         _within_mcse(s2, _variance_law(y), "no Jacobian")
 
 
+@pytest.mark.slow
+def test_pymc_variance_matches_inverse_gamma():
+    # the same conjugate model written in PyMC (its JAX graphs: log density with the
+    # Jacobian of s2's log transform, the map back, the observed pointwise log likelihood)
+    pm = pytest.importorskip("pymc")
+    y = np.asarray(_nile())
+    with pm.Model() as model:
+        s2 = pm.InverseGamma("s2", alpha=A0, beta=B0)
+        mu = pm.Normal("mu", MU0, sigma=pm.math.sqrt(s2 / K0))
+        pm.Normal("y", mu, sigma=pm.math.sqrt(s2), observed=y)
+    trace = _run(fisherwalk.model_problem(model), draws=3000, seed=2)
+    assert list(trace.draws) == ["s2", "mu"] and trace.pointwise.shape[-1] == y.size
+    _within_mcse(trace.draws["s2"], _variance_law(y), "PyMC model, rwm")
+
+
 # --- a hand-written transform with its Jacobian against the declared one --------------
 @pytest.mark.slow
 def test_manual_jacobian_and_declared_transform_agree():

@@ -213,6 +213,15 @@ def _numpyro_refused(kind):
     return lambda t: fisherwalk.model_problem(_numpyro_model(kind))
 
 
+def _pymc_discrete(tmp):
+    import pymc as pm
+
+    with pm.Model() as model:
+        count = pm.Poisson("count", 3.0)
+        pm.Normal("y", count, 1.0, observed=np.asarray([2.0, 4.0]))
+    return fisherwalk.model_problem(model)
+
+
 def _model_file_bad_args(tmp):
     from fisherwalk.cli.modelfile import load_model
 
@@ -341,6 +350,8 @@ CASES = [
      _numpyro_refused("subsampled"), fisherwalk.ModelError, "subsample"),
     ("model_problem", "a discrete latent site (NumPyro)",
      _numpyro_refused("discrete"), fisherwalk.ModelError, "marginalise"),
+    ("model_problem", "a discrete free variable (PyMC)",
+     _pymc_discrete, fisherwalk.ModelError, "marginalise"),
     ("model_problem", "a NumPyro model with no latent sample site",
      _numpyro_refused("no_latent"), fisherwalk.ModelError, "no latent sample site"),
     ("model_problem", "a site whose support has no transform",

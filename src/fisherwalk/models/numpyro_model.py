@@ -32,6 +32,7 @@ import numpy as np
 
 from ..base.keys import as_key
 from ..errors import InputError, ModelError, explain
+from .pymc_model import is_pymc_model, pymc_problem
 from .space import ModelLogDensity, ModelProblem, Site, Space
 
 __all__ = ["model_problem", "import_numpyro"]
@@ -149,7 +150,9 @@ def model_problem(model: Callable, args: tuple = (), kwargs: dict | None = None,
     ----------
     model
         A NumPyro model, a Python function with ``numpyro.sample`` sites (observed sites
-        carry ``obs=...``), ``numpyro.deterministic`` sites and plates.
+        carry ``obs=...``), ``numpyro.deterministic`` sites and plates; or a PyMC model
+        (``pymc.Model``, which holds its data: no arguments; see
+        :mod:`fisherwalk.models.pymc_model`).
     args, kwargs
         The model's arguments (data included), as in ``model(*args, **kwargs)``.
     rng_key
@@ -177,6 +180,8 @@ def model_problem(model: Callable, args: tuple = (), kwargs: dict | None = None,
     >>> problem = fisherwalk.model_problem(model, (x,), {"y": y})      # doctest: +SKIP
     >>> walker = fisherwalk.start(problem.logdensity_fn, problem.position, key)  # +SKIP
     """
+    if is_pymc_model(model):  # the same problem from a PyMC model (models.pymc_model)
+        return pymc_problem(model)
     import_numpyro()
     from numpyro import handlers
     from numpyro.infer import Predictive
