@@ -85,7 +85,8 @@ def _nig_logdensity(y):
     return logdensity
 
 
-@pytest.mark.parametrize("sampler", ["rwm", pytest.param("nuts", marks=pytest.mark.slow)])
+@pytest.mark.slow
+@pytest.mark.parametrize("sampler", ["rwm", "nuts"])
 def test_numpyro_variance_matches_inverse_gamma(sampler):
     y = _nile()
     trace = _run(fisherwalk.model_problem(_nig_model, (y,)), sampler,
@@ -226,6 +227,7 @@ def _logistic_model(x, y=None):
         numpyro.sample("y", dist.Bernoulli(logits=x @ beta), obs=y)
 
 
+@pytest.mark.slow
 def test_logistic_map_matches_statsmodels_penalised_fit():
     # the mode of the N(0, SCALE²) prior x likelihood is the ridge-penalised fit:
     # statsmodels' GLM.fit_regularized minimises -loglik/n + alpha/2 |b|² (L1_wt = 0),
