@@ -222,6 +222,16 @@ def _pymc_discrete(tmp):
     return fisherwalk.model_problem(model)
 
 
+def _pymc_minibatch(tmp):
+    import pymc as pm
+
+    y = np.linspace(-1.0, 1.0, 40)
+    with pm.Model() as model:
+        mu = pm.Normal("mu", 0.0, 1.0)
+        pm.Normal("y", mu, 1.0, observed=pm.Minibatch(y, batch_size=10), total_size=40)
+    return fisherwalk.model_problem(model)
+
+
 def _model_file_bad_args(tmp):
     from fisherwalk.cli.modelfile import load_model
 
@@ -352,6 +362,8 @@ CASES = [
      _numpyro_refused("discrete"), fisherwalk.ModelError, "marginalise"),
     ("model_problem", "a discrete free variable (PyMC)",
      _pymc_discrete, fisherwalk.ModelError, "marginalise"),
+    ("model_problem", "a minibatch of the data (PyMC)",
+     _pymc_minibatch, fisherwalk.ModelError, "all the data"),
     ("model_problem", "a NumPyro model with no latent sample site",
      _numpyro_refused("no_latent"), fisherwalk.ModelError, "no latent sample site"),
     ("model_problem", "a site whose support has no transform",

@@ -120,7 +120,9 @@ def _space_record(trace) -> dict | None:
         return None
     return {"language": trace.space.language,
             "note": "draws.npz 'draws' and summary.parameters hold the sites' values "
-                    "(constrained); 'unconstrained' holds the sampler's coordinates",
+                    "(constrained); draws.npz 'unconstrained' and this record's laplace and "
+                    "tuning are on the sampler's unconstrained coordinates (named after "
+                    "their sites)",
             "sites": [{"name": s.name, "shape": list(s.shape), "kind": s.kind}
                       for s in trace.space.sites + trace.space.observed]}
 

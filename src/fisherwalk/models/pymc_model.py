@@ -46,7 +46,8 @@ def pymc_problem(model) -> ModelProblem:
     Raises
     ------
     ModelError
-        A discrete free variable (marginalise it), or a model with no free variable.
+        A discrete free variable (marginalise it), a minibatch of the data, or a model
+        with no free variable.
     """
     from pymc.sampling.jax import get_jaxified_graph
 
@@ -63,6 +64,13 @@ def pymc_problem(model) -> ModelProblem:
                 f"{WHERE}, variable {rv.name!r}",
                 "sum the discrete variable out of the model (marginalise it, e.g. with "
                 "pm.Mixture), or use a sampler that handles discrete parameters."))
+    for rv in model.observed_RVs:  # observed=pm.Minibatch(...), total_size=...
+        if type(rv.owner.op).__name__ == "MinibatchRandomVariable":
+            raise ModelError(explain(
+                f"Observed variable {rv.name!r} is a minibatch of its data (total_size=...); "
+                "the Laplace fit and every sampler here need the log density of all the data.",
+                f"{WHERE}, variable {rv.name!r}",
+                "pass the whole data set as observed=... and leave out total_size."))
     values = list(model.value_vars)
     order = {name: i for i, name in enumerate(model.named_vars)}
     shown = sorted(free + list(model.deterministics), key=lambda v: order[v.name])
