@@ -220,3 +220,19 @@ def test_command_line_runs_a_numpyro_model_of_a_table(tmp_path):
     record = json.loads((out / "record.json").read_text())
     assert [p["name"] for p in record["summary"]["parameters"]] == ["a", "b", "rate_at_zero"]
     assert record["sampling"]["pointwise_observations"] == 5
+
+
+def test_a_factor_term_gives_a_log_likelihood_but_no_replicates():
+    # numpyro.factor adds a term to the log density: an observed site with nothing to draw
+    pytest.importorskip("arviz")
+    y = jnp.asarray([0.3, 1.2, -0.4, 0.8])
+
+    def model(y):
+        mu = numpyro.sample("mu", dist.Normal(0.0, 1.0))
+        numpyro.factor("fit", jnp.sum(-0.5 * (y - mu) ** 2))
+
+    problem = fisherwalk.model_problem(model, (y,))
+    walker = fisherwalk.start(problem.logdensity_fn, problem.position, KEY, progress=False)
+    idata = fisherwalk.walk(walker, KEY, draws=50, progress=False).to_arviz(prior_draws=5)
+    assert "log_likelihood" in idata.groups() and "prior" in idata.groups()
+    assert "posterior_predictive" not in idata.groups()

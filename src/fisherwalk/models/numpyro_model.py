@@ -225,7 +225,8 @@ def model_problem(model: Callable, args: tuple = (), kwargs: dict | None = None,
             latent_samples = {site.name: samples[site.name] for site in latent}
             out = Predictive(unobserve(model), posterior_samples=latent_samples,
                              batch_ndims=2)(rng_key, *args, **kwargs)
-        return {name: np.asarray(value) for name, value in out.items()}
+        # a numpyro.factor term draws nothing (an empty array): it has no replicate
+        return {name: np.asarray(value) for name, value in out.items() if np.size(value)}
 
     space = Space("numpyro", sites, constrain, observed,
                   pointwise if observed else None, predict)

@@ -56,12 +56,15 @@ def predictive_groups(trace, predictive: bool = True, prior_draws: int = 0) -> d
         samples = {site.name: trace.draws[site.name] for site in space.sites
                    if site.kind == "sample"}
         drawn = space.predict(jax.random.fold_in(key, POSTERIOR_TAG), samples, 0)
-        groups["posterior_predictive"] = {name: drawn[name] for name in observed}
+        replicates = {name: drawn[name] for name in observed if name in drawn}
+        if replicates:  # none when every observed site is a numpyro.factor term
+            groups["posterior_predictive"] = replicates
     if prior_draws:
         drawn = space.predict(jax.random.fold_in(key, PRIOR_TAG), None, prior_draws)
         one_chain = {name: value[None] for name, value in drawn.items()}
         groups["prior"] = {site.name: one_chain[site.name] for site in space.sites
                            if site.name in one_chain}
-        groups["prior_predictive"] = {name: one_chain[name] for name in observed
-                                      if name in one_chain}
+        prior_replicates = {name: one_chain[name] for name in observed if name in one_chain}
+        if prior_replicates:
+            groups["prior_predictive"] = prior_replicates
     return groups
