@@ -273,6 +273,74 @@ def _focus_nothing(tmp):
     return trace.summary(focus="sigma*")
 
 
+def _numpyro_model(kind):
+    """Models a NumPyro user could write that fisherwalk cannot use (demo data)."""
+    import numpyro
+    import numpyro.distributions as dist
+
+    y = jnp.asarray([0.3, -1.2, 0.8, 2.1, 0.4, -0.5])
+
+    def subsampled():
+        mu = numpyro.sample("mu", dist.Normal(0.0, 1.0))
+        with numpyro.plate("rows", 6, subsample_size=3) as idx:
+            numpyro.sample("y", dist.Normal(mu, 1.0), obs=y[idx])
+
+    def discrete():
+        group = numpyro.sample("group", dist.Bernoulli(0.5))
+        numpyro.sample("y", dist.Normal(2.0 * group, 1.0), obs=y)
+
+    def no_latent():
+        numpyro.sample("y", dist.Normal(0.0, 1.0), obs=y)
+
+    class Unbounded(dist.Distribution):  # a support no transform maps
+        support = dist.constraints.dependent
+
+        def sample(self, key, sample_shape=()):
+            return jnp.zeros(sample_shape)
+
+        def log_prob(self, value):
+            return -0.5 * value**2
+
+    def no_transform():
+        numpyro.sample("odd", Unbounded())
+
+    return {"subsampled": subsampled, "discrete": discrete, "no_latent": no_latent,
+            "no_transform": no_transform}[kind]
+
+
+def _numpyro_refused(kind):
+    return lambda t: fisherwalk.model_problem(_numpyro_model(kind))
+
+
+def _pymc_discrete(tmp):
+    import pymc as pm
+
+    with pm.Model() as model:
+        count = pm.Poisson("count", 3.0)
+        pm.Normal("y", count, 1.0, observed=np.asarray([2.0, 4.0]))
+    return fisherwalk.model_problem(model)
+
+
+def _pymc_minibatch(tmp):
+    import pymc as pm
+
+    y = np.linspace(-1.0, 1.0, 40)
+    with pm.Model() as model:
+        mu = pm.Normal("mu", 0.0, 1.0)
+        pm.Normal("y", mu, 1.0, observed=pm.Minibatch(y, batch_size=10), total_size=40)
+    return fisherwalk.model_problem(model)
+
+
+def _model_file_bad_args(tmp):
+    from fisherwalk.cli.modelfile import load_model
+
+    path = tmp / "model.py"
+    path.write_text("import numpyro, numpyro.distributions as dist\n"
+                    "def model(y):\n    numpyro.sample('m', dist.Normal(0, 1))\n"
+                    "model_args = [1.0]\nmodel_kwargs = {}\n")
+    return load_model(path)
+
+
 CASES = [
     ("start", "an unknown sampler",
      lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, sampler="slice"),
@@ -447,6 +515,30 @@ CASES = [
      fisherwalk.FitError, "NaN"),
     ("start / laplace", "Neal's funnel: a curvature spread beyond float64 at the end point",
      lambda t: fisherwalk.start(_funnel, jnp.zeros(10), KEY), fisherwalk.FitError, "funnel"),
+
+    ("model_problem", "a NumPyro plate with a subsample size",
+     _numpyro_refused("subsampled"), fisherwalk.ModelError, "subsample"),
+    ("model_problem", "a discrete latent site (NumPyro)",
+     _numpyro_refused("discrete"), fisherwalk.ModelError, "marginalise"),
+    ("model_problem", "a discrete free variable (PyMC)",
+     _pymc_discrete, fisherwalk.ModelError, "marginalise"),
+    ("model_problem", "a minibatch of the data (PyMC)",
+     _pymc_minibatch, fisherwalk.ModelError, "all the data"),
+    ("model_problem", "a NumPyro model with no latent sample site",
+     _numpyro_refused("no_latent"), fisherwalk.ModelError, "no latent sample site"),
+    ("model_problem", "a site whose support has no transform",
+     _numpyro_refused("no_transform"), fisherwalk.ModelError, "no transform"),
+    ("constrained_problem", "an unknown constraint",
+     lambda t: fisherwalk.constrained_problem(_normal, {"s": 1.0}, {"s": "round"}),
+     fisherwalk.InputError, "not a known constraint"),
+    ("constrained_problem", "a constraint for a name the position lacks",
+     lambda t: fisherwalk.constrained_problem(_normal, {"s": 1.0}, {"t": "positive"}),
+     fisherwalk.InputError, "does not hold"),
+    ("constrained_problem", "a starting value outside its constraint",
+     lambda t: fisherwalk.constrained_problem(_normal, {"s": -1.0}, {"s": "positive"}),
+     fisherwalk.InputError, "outside its constraint"),
+    ("fisherwalk run", "a NumPyro model file whose model_args is not a tuple",
+     _model_file_bad_args, fisherwalk.ModelFileError, "tuple"),
 ]
 
 

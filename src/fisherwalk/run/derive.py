@@ -289,5 +289,13 @@ def attach(trace, *, pointwise: Callable | None = None, derived: Callable | None
         warnings.warn(f"walk({argument}=...) failed after sampling; the draws are kept and "
                       f"trace.{name} is not set (trace.failures says where).\n"
                       f"{failures[-1].message}", FisherwalkWarning, stacklevel=3)
+    space = trace.space
+    if space is not None:  # a model's own space (fisherwalk.models): its sites' values
+        where = f"the map to the model's sites ({space.language})"
+        changes["draws"] = space.ordered(evaluate_draws(space.constrain, trace.flat, unravel,
+                                                        where=where))
+        if pointwise is None and space.pointwise is not None:  # the observed sites'
+            changes["pointwise"] = evaluate_draws(space.pointwise, trace.flat, unravel,
+                                                  where="the observed sites' log likelihood")
     return trace._replace(**changes, failures=tuple(failures))
 

@@ -18,6 +18,7 @@ import numpy as np
 from ..base.checks import positive_number, whole_number
 from ..base.keys import as_key, key_data
 from ..errors import FisherwalkWarning, InputError, explain
+from ..models.space import space_of
 from ..results.trace import Trace
 from . import derive, plan
 from .checkpoint import open_store
@@ -330,4 +331,5 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  divergent=collector.divergent if gradient else None,
                  gradients=collector.gradients if gradient else None,
                  energy=collector.energy if collector.has_energy else None,
-                 facts=run_facts(final))
+                 facts=run_facts(final),
+                 space=space_of(walker.logdensity_fn))  # a model's own space, or None
