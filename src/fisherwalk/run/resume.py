@@ -61,8 +61,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     checkpoint_every
         Seconds between saves (0: after every chunk).
     checkpoint_reclaim
-        Break the directory's lock when it is stale (left by a run on this host that no
-        longer runs, e.g. killed); a lock of a running process is never broken.
+        Break a stale pid-file lock left by an older fisherwalk; not needed after a crash
+        of this version (the kernel released its lock). A lock of a running process is
+        never broken.
     pointwise, derived, predict
         As in :func:`fisherwalk.walk`; evaluated on all the kept draws at the end (they
         are not stored in the checkpoint; predictions use each draw's own key, so they

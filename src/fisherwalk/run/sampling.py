@@ -129,10 +129,10 @@ def walk(
         Seconds between checkpoint saves (0: after every chunk); the end of the run and
         Ctrl-C always save.
     checkpoint_reclaim
-        Break the checkpoint directory's lock when it is stale: left by a run on this
-        host that no longer runs (killed, or the machine restarted). A lock held by a
-        running process is never broken; by default a stale lock is refused with a
-        message naming its owner.
+        Break a stale pid-file lock left by an older fisherwalk (its owner on this host
+        no longer runs). The lock of this version is the kernel's: it goes when its
+        process ends, however it ends, so a killed run continues with no flag; a lock
+        held by a running process is never broken.
     pointwise
         ``pointwise(position) -> (n_obs,)``, the log likelihood of each observation;
         evaluated after sampling at the kept draws (in chunks, :mod:`fisherwalk.run.derive`)
