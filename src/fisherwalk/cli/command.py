@@ -75,13 +75,13 @@ class _Say:
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
              warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
-             checkpoint=None, labels=None, sampler: str = "rwm", focus=None,
-             predict=None) -> RunResult:
+             checkpoint=None, labels=None, sampler: str = "rwm", predict=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
 
     ``draws=None`` plans the run length; ``labels`` (one per scalar parameter, e.g. a
-    model file's ``names``) replace the ravelled names everywhere; ``focus`` chooses the
-    summary's rows (:mod:`fisherwalk.results.focus`).
+    model file's ``names``) replace the ravelled names everywhere. The summary has every
+    row (the record and summary.csv keep them all); ``run --focus`` chooses the printed
+    rows and the figures' panels.
 
     ``thin``, ``pointwise``, ``derived`` and ``checkpoint`` go to :func:`fisherwalk.walk`,
     ``restarts`` (mode searches from dispersed points) to :func:`fisherwalk.start`.
@@ -116,7 +116,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
 
     t = time.perf_counter()
     trace = labelled(trace, labels)
-    summary = trace.summary(focus=focus)
+    summary = trace.summary()  # every row: the record and summary.csv keep them all
     seconds["diagnostics"] = time.perf_counter() - t
     _say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
@@ -390,13 +390,19 @@ def _run(args, argv) -> int:
                       fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
                       pointwise=model.pointwise if args.pointwise else None,
                       derived=model.derived, checkpoint=checkpoint, labels=model.labels,
-                      sampler=args.sampler, focus=args.focus, predict=model.predict)
+                      sampler=args.sampler, predict=model.predict)
     print()
-    print(str(result.summary))
+    focus = args.focus
+    try:
+        shown = result.summary if focus is None else result.trace.summary(focus=focus)
+    except InputError as err:  # after the sampling: keep the run, show every row
+        print(f"fisherwalk run: --focus ignored: {err}", file=sys.stderr)
+        shown, focus = result.summary, None
+    print(str(shown))
     extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
     say.busy("writing the figures and the record")
     record = build_record("run", argv, _options(args), result, extra)
-    files = write_outputs(out, result, record, focus=args.focus)
+    files = write_outputs(out, result, record, focus=focus)
     say()
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
