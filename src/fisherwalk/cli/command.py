@@ -442,7 +442,8 @@ def _resume(args, argv) -> int:
     trace = fisherwalk.resume(folder / resumable.CHECKPOINT_FOLDER, model.logdensity,
                               position=model.initial_position,
                               progress=None if not args.quiet else False,
-                              pointwise=pointwise, derived=model.derived)
+                              pointwise=pointwise, derived=model.derived,
+                              predict=model.predict)
     seconds = {"sampling": time.perf_counter() - t}
     t = time.perf_counter()
     trace = labelled(trace, model.labels)
@@ -545,7 +546,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "random-walk Metropolis,\nMALA, HMC or NUTS (BlackJAX), a short warm-up, "
                     "diagnostics, figures and a record.",
         epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
-               "  fisherwalk run my_model.py --out results\n\n"
+               "  fisherwalk run my_model.py --out results\n  fisherwalk show results --focus "
+               "'beta*'\n\n"
                "'fisherwalk COMMAND --help' describes each command.")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
@@ -586,6 +588,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "(--pointwise)\n"
                     "  derived(position) -> pytree      quantities summarised with the "
                     "parameters\n"
+                    "  predict(position, key) -> pytree predictions with their own randomness "
+                    "(a key per draw)\n"
                     "With --data table.csv it defines instead\n"
                     "  make(data) -> (logdensity, initial_position), or a dict of the names "
                     "above,\n"
