@@ -77,13 +77,13 @@ class _Say:
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
              warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
-             checkpoint=None, labels=None, sampler: str = "rwm", focus=None,
-             predict=None) -> RunResult:
+             checkpoint=None, labels=None, sampler: str = "rwm", predict=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
 
     ``draws=None`` plans the run length; ``labels`` (one per scalar parameter, e.g. a
-    model file's ``names``) replace the ravelled names everywhere; ``focus`` chooses the
-    summary's rows (:mod:`fisherwalk.results.focus`).
+    model file's ``names``) replace the ravelled names everywhere. The summary has every
+    row (the record and summary.csv keep them all); ``run --focus`` chooses the printed
+    rows and the figures' panels.
 
     ``thin``, ``pointwise``, ``derived`` and ``checkpoint`` go to :func:`fisherwalk.walk`,
     ``restarts`` (mode searches from dispersed points) to :func:`fisherwalk.start`.
@@ -118,7 +118,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
 
     t = time.perf_counter()
     trace = labelled(trace, labels)
-    summary = trace.summary(focus=focus)
+    summary = trace.summary()  # every row: the record and summary.csv keep them all
     seconds["diagnostics"] = time.perf_counter() - t
     _say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
@@ -428,13 +428,19 @@ def _run_in(args, argv, say, began, model, out: Path, checkpoint: Path | None) -
                       fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
                       pointwise=model.pointwise if args.pointwise else None,
                       derived=model.derived, checkpoint=checkpoint, labels=model.labels,
-                      sampler=args.sampler, focus=args.focus, predict=model.predict)
+                      sampler=args.sampler, predict=model.predict)
     print()
-    print(str(result.summary))
+    focus = args.focus
+    try:
+        shown = result.summary if focus is None else result.trace.summary(focus=focus)
+    except InputError as err:  # after the sampling: keep the run, show every row
+        print(f"fisherwalk run: --focus ignored: {err}", file=sys.stderr)
+        shown, focus = result.summary, None
+    print(str(shown))
     extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
     say.busy("writing the figures and the record")
     record = build_record("run", argv, _options(args), result, extra)
-    files = write_outputs(out, result, record, focus=args.focus)
+    files = write_outputs(out, result, record, focus=focus)
     say()
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
@@ -482,7 +488,8 @@ def _resume_in(args, argv, say, began, folder: Path, plan: dict) -> int:
     trace = fisherwalk.resume(folder / resumable.CHECKPOINT_FOLDER, model.logdensity,
                               position=model.initial_position,
                               progress=None if not args.quiet else False,
-                              pointwise=pointwise, derived=model.derived)
+                              pointwise=pointwise, derived=model.derived,
+                              predict=model.predict)
     seconds = {"sampling": time.perf_counter() - t}
     t = time.perf_counter()
     trace = labelled(trace, model.labels)
@@ -585,7 +592,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "random-walk Metropolis,\nMALA, HMC or NUTS (BlackJAX), a short warm-up, "
                     "diagnostics, figures and a record.",
         epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
-               "  fisherwalk run my_model.py --out results\n\n"
+               "  fisherwalk run my_model.py --out results\n  fisherwalk show results --focus "
+               "'beta*'\n\n"
                "'fisherwalk COMMAND --help' describes each command.")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
@@ -626,6 +634,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "(--pointwise)\n"
                     "  derived(position) -> pytree      quantities summarised with the "
                     "parameters\n"
+                    "  predict(position, key) -> pytree predictions with their own randomness "
+                    "(a key per draw)\n"
                     "With --data table.csv it defines instead\n"
                     "  make(data) -> (logdensity, initial_position), or a dict of the names "
                     "above,\n"

@@ -42,7 +42,6 @@ APART_SPREAD = 2.0  # ... and beyond 2 within-chain standard deviations of the o
 ACCEPTANCE_NOISE = 4.0  # acceptance departs: beyond 4 Monte Carlo errors ...
 ACCEPTANCE_SLACK = 0.005  # ... plus this much
 ACCEPTANCE_MIN_DRAWS = 20  # fewer draws per chain: no acceptance rule
-BAND_KEEP = 0.8  # the tolerated band keeps this share of the best jump (theory.tolerance)
 SAME_TARGET = 5e-4  # a target within this of the Gaussian prediction is that prediction
 CORRELATION_LIMIT = 0.95  # |posterior correlation| above this is worth a word ...
 RESIDUAL_LIMIT = 0.5  # ... when the proposal leaves more than this after whitening
@@ -286,7 +285,7 @@ def acceptance_warning(realised: float, error: float, target: float, draws: int,
             f"from the target {target:.3f}{at} shown above")
     rule = (f", by more than {ACCEPTANCE_NOISE:.0f} Monte Carlo errors + {ACCEPTANCE_SLACK}"
             + ("." if band is None else f", and lies outside {band[0]:.3f} to {band[1]:.3f}, "
-               "where the theory keeps 80% of the best jump."))
+               "the theory's tolerance (an acceptance that costs little efficiency)."))
     if gaussian is None or abs(gaussian - target) <= SAME_TARGET:
         return _warn(
             what + rule + " That target is what the Gaussian picture N(mode, H⁻¹) predicts "

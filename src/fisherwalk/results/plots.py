@@ -84,6 +84,13 @@ def _labels(trace, labels: Sequence[str] | None) -> list[str]:
             for name, label in zip(names, labels, strict=True)]
 
 
+def _matches(names: list[str], text: Any) -> bool:
+    try:
+        return bool(focus_indices(names, text))
+    except InputError:
+        return False
+
+
 def panels(trace, focus: Any = None, max_panels: int = MAX_PANELS) -> tuple[list[int], str]:
     """The parameters a figure shows, as indices into ``trace.flat``, in written order, and
     a note for the title. ``focus`` chooses them (:mod:`fisherwalk.results.focus`); with
@@ -93,8 +100,12 @@ def panels(trace, focus: Any = None, max_panels: int = MAX_PANELS) -> tuple[list
     dim = flat.shape[2]
     order = in_written_order(trace.facts.order, dim)
     written = [trace.names[j] for j in order]
-    if focus is not None:
-        chosen = focus_indices(written, focus, where="plots (focus=...)")
+    if focus is not None:  # derived quantities and predictions have no panels: skipped
+        texts = [focus] if isinstance(focus, str) else list(focus)
+        chosen = sorted({j for text in texts if _matches(written, text)
+                         for j in focus_indices(written, text, where="plots (focus=...)")})
+        if not chosen:
+            focus_indices(written, focus, where="plots (focus=...)")  # refuse, naming them
         note = f" ({len(chosen[:max_panels])} chosen of {dim} parameters)"
         return [int(order[j]) for j in chosen[:max_panels]], note
     if dim <= max_panels:
