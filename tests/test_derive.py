@@ -135,7 +135,40 @@ def test_derived_leaf_named_like_a_parameter_leaf_is_refused():
 
 def test_non_finite_derived_value_names_chain_and_draw(lognormal_run):
     with pytest.raises(ModelError, match=r"chain \d+, draw \d+"):
-        derive.attach(lognormal_run, derived=lambda p: {"bad": jnp.log(p["log_k"])})
+        derive.evaluate_derived(lambda p: {"bad": jnp.log(p["log_k"])}, lognormal_run.flat,
+                                lognormal_run.walker.unravel, lognormal_run.names)
+
+
+def test_nan_in_derived_at_some_draws_keeps_the_draws(lognormal_run):
+    # issue 21, item 6: a NaN at some draws discarded the whole run after sampling
+    walker = lognormal_run.walker
+    with pytest.warns(fisherwalk.FisherwalkWarning, match=r"walk\(derived=...\) failed"):
+        trace = fisherwalk.walk(walker, jax.random.key(1), 200, progress=False,
+                                derived=lambda p: {"bad": jnp.log(p["log_k"])})
+    reference = fisherwalk.walk(walker, jax.random.key(1), 200, progress=False)
+    np.testing.assert_array_equal(trace.flat, reference.flat)  # the parameters intact
+    assert trace.derived is None and len(trace.failures) == 1
+    failure = trace.failures[0]
+    negative = np.argwhere(reference.flat[..., 0] < 0)  # log of a negative log_k: NaN
+    assert failure.function == "derived" and failure.count == len(negative) > 0
+    assert [list(d) for d in failure.draws] == negative[:20].tolist()
+    assert "chain" in failure.message
+
+
+def test_exception_in_pointwise_keeps_the_draws(lognormal_run):
+    def failing(p):  # traces fine, fails when run
+        def host(x):
+            raise ValueError("the observations file moved")
+        return jax.pure_callback(host, jax.ShapeDtypeStruct((2,), p["log_k"].dtype),
+                                 p["log_k"], vmap_method="sequential")
+
+    with pytest.warns(fisherwalk.FisherwalkWarning, match="pointwise"):
+        trace = fisherwalk.walk(lognormal_run.walker, jax.random.key(1), 50, progress=False,
+                                pointwise=failing, derived=lambda p: {"k": jnp.exp(p["log_k"])})
+    assert trace.pointwise is None and trace.derived is not None
+    (failure,) = trace.failures
+    assert failure.function == "pointwise" and failure.count == 0
+    assert "observations file moved" in failure.message
 
 
 # ------------------------------------------------------------------- checkpoint and resume

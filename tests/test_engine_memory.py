@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 
 import fisherwalk as fw
+from fisherwalk.base import programs
 from fisherwalk.run import engine
 
 
@@ -27,6 +28,7 @@ def _logdensity(x):
 
 def _walk(budget, monkeypatch, thin):
     monkeypatch.setattr(engine, "NOISE_BUDGET", budget)
+    programs.forget()  # the engine reads the budget when it is built: build it anew
     walker = fw.start(_logdensity, jnp.zeros(3), jax.random.key(0), chains=2)
     return fw.walk(walker, jax.random.key(1), draws=7, thin=thin, chunk=7, progress=False)
 

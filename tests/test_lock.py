@@ -1,5 +1,7 @@
-"""One writer per folder (fisherwalk.base.lock): a second writer is refused by name, a
-stale lock is detected and broken only on request."""
+"""One writer per folder (fisherwalk.base.lock): the kernel's advisory lock (flock) refuses
+a live second writer by name and is gone when its owner dies, however it dies; a lock
+file of the old format (a pid file) is still judged by the old rules: a stale one is
+broken only on request."""
 
 import json
 import os
@@ -35,8 +37,8 @@ def _dead_pid():
 def test_lock_file_names_its_owner_and_is_removed_on_release(tmp_path):
     with acquire_lock(tmp_path, error=CheckpointError) as lock:
         assert lock.broken is None
-        owner = json.loads((tmp_path / LOCK_FILE).read_text())
-        assert owner["pid"] == os.getpid() and owner["host"] == socket.gethostname()
+        owner = read_lock(tmp_path / LOCK_FILE)
+        assert owner.pid == os.getpid() and owner.host == socket.gethostname()
         assert read_lock(tmp_path / LOCK_FILE) == lock.owner and lock.held
     assert not (tmp_path / LOCK_FILE).exists() and not lock.held
     lock.release()  # idempotent
@@ -107,7 +109,7 @@ def test_a_lock_from_another_host_is_not_judged(tmp_path):
     assert f"delete {tmp_path / LOCK_FILE}" in str(info.value)
 
 
-@pytest.mark.parametrize("content", ["", "{not json", '{"pid": true, "host": "h", '
+@pytest.mark.parametrize("content", ["{not json", '{"pid": true, "host": "h", '
                                      '"started": "s", "token": "t"}', "[" * 10_000])
 def test_an_unreadable_lock_is_refused(tmp_path, content):
     (tmp_path / LOCK_FILE).write_text(content)
@@ -137,3 +139,36 @@ def test_release_leaves_a_lock_taken_over_by_someone_else(tmp_path):
 def test_a_missing_folder_is_explained(tmp_path):
     with pytest.raises(CheckpointError, match="cannot be created"):
         acquire_lock(tmp_path / "missing", error=CheckpointError)
+
+
+def test_a_killed_writers_lock_is_taken_without_a_flag(tmp_path):
+    # The child takes the lock and kills itself with SIGKILL (no release, no cleanup):
+    # the kernel dropped its lock, the file it left is taken by the next writer as is.
+    script = textwrap.dedent(f"""
+        import os, signal, sys
+        sys.path.insert(0, {SRC!r})
+        from fisherwalk.base.lock import acquire_lock
+        lock = acquire_lock({str(tmp_path)!r})
+        os.kill(os.getpid(), signal.SIGKILL)
+    """)
+    child = subprocess.Popen([sys.executable, "-c", script])
+    assert child.wait(timeout=120) == -9
+    # the file is left behind, naming the dead child
+    assert read_lock(tmp_path / LOCK_FILE).pid == child.pid
+    with acquire_lock(tmp_path, error=CheckpointError) as lock:
+        assert lock.broken is None and read_lock(tmp_path / LOCK_FILE) == lock.owner
+    assert not (tmp_path / LOCK_FILE).exists()
+
+
+def test_an_empty_lock_file_left_by_a_crash_is_taken(tmp_path):
+    # a writer killed between creating the file and writing its name leaves it empty
+    (tmp_path / LOCK_FILE).write_bytes(b"")
+    with acquire_lock(tmp_path, error=CheckpointError) as lock:
+        assert lock.broken is None
+
+
+def test_a_dropped_lock_object_lets_the_folder_go(tmp_path):
+    # the kernel's lock follows the open file: once it is closed, the folder is free
+    lock = acquire_lock(tmp_path)
+    del lock
+    acquire_lock(tmp_path, error=CheckpointError).release()

@@ -46,6 +46,18 @@ def test_the_draws_budget_stops_the_run_and_says_so(walker3):
     assert "stopped: draws budget (700 draws per chain)" in text
 
 
+def test_draws_budget_not_a_multiple_of_chunk_takes_no_empty_round(walker3):
+    # issue 21, item 10: max_draws=1050 with chunk 100 capped the totals at 1000 and the
+    # loop ran empty rounds until max_seconds; now the last round ends at 1050
+    trace = fw.walk(walker3, jax.random.key(6), rhat_limit=1.000001, max_draws=1050,
+                    max_seconds=600)
+    rounds = trace.length.rounds
+    assert trace.length.stopped == "draws budget" and trace.flat.shape[1] == 1050
+    assert rounds[-1] == 1050 and list(rounds) == sorted(set(rounds))
+    assert plan.next_total(1000, 10.0, 1.5, 100, 400, 1.01, 1050) == 1050
+    assert plan.first_round(walker3.tuning, 4, 1, 100, 400, 1.01, 30) == 30
+
+
 def test_the_seconds_budget_stops_the_run_and_says_so(walker3):
     trace = fw.walk(walker3, jax.random.key(7), rhat_limit=1.000001, max_seconds=1e-9)
     assert trace.length.stopped == "seconds budget"

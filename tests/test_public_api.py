@@ -7,6 +7,7 @@ from __future__ import annotations
 import ast
 import importlib
 import re
+import textwrap
 from pathlib import Path
 
 import jax
@@ -21,7 +22,9 @@ SRC = ROOT / "src" / "fisherwalk"
 
 
 def _code_blocks(markdown: str) -> list[str]:
-    return re.findall(r"```python\n(.*?)```", markdown, flags=re.S)
+    # blocks inside a list item are indented as a whole
+    return [textwrap.dedent(block)
+            for block in re.findall(r"```python\n(.*?)```", markdown, flags=re.S)]
 
 
 def test_readme_imports_only_from_the_package_root():

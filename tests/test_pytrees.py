@@ -77,3 +77,16 @@ def test_parameter_names_follow_ravel_order():
     flat, _ = ravel_pytree({"b": np.array([5.0, 6.0]), "a": np.arange(4.0).reshape(2, 2),
                             "c": np.asarray(7.0)})
     assert list(np.asarray(flat)) == [0.0, 1.0, 2.0, 3.0, 5.0, 6.0, 7.0]
+
+
+def test_written_order_follows_the_dicts_as_written():
+    from fisherwalk.base.pytrees import parameter_names, written_order
+
+    position = {"span": np.zeros(2), "floor": 0.0, "noise": {"tau": 0.0, "log_sd": 0.0}}
+    names = parameter_names(position)  # ravelled: floor, noise.log_sd, noise.tau, span[0..1]
+    order = written_order(position)
+    assert [names[j] for j in order] == ["span[0]", "span[1]", "floor", "noise.tau",
+                                         "noise.log_sd"]
+    assert sorted(order) == list(range(len(names)))
+    assert written_order(np.zeros(3)) == (0, 1, 2)  # nothing to reorder
+    assert written_order((1.0, {"b": 1.0, "a": 2.0})) == (0, 2, 1)

@@ -168,6 +168,88 @@ def _out_is_a_file(tmp):
     return check_output_folder(tmp / "afile", 0)
 
 
+def _output_link(tmp):
+    from fisherwalk.cli.outputs import check_output_names
+
+    (tmp / "out").mkdir()
+    (tmp / "out" / "draws.npz").symlink_to(tmp / "elsewhere.npz")
+    return check_output_names(tmp / "out", ["draws.npz"])
+
+
+def _users_own_data(tmp):
+    from fisherwalk.cli.outputs import check_demo_folder
+
+    (tmp / "data.csv").write_text("my,own\n1,2\n")
+    return check_demo_folder(tmp)
+
+
+def _second_checkpointed_run(tmp):
+    from fisherwalk.cli.resumable import claim_checkpoint
+
+    (tmp / "checkpoint").mkdir()
+    (tmp / "checkpoint" / "run.json").write_text("{}")
+    return claim_checkpoint(tmp, model_file="model.py")
+
+
+def _held_checkpoint(tmp):
+    from fisherwalk.base.lock import acquire_lock
+
+    path = _checkpoint(tmp)
+    with acquire_lock(path):
+        return fisherwalk.walk(_walker(), KEY, draws=30, chunk=10, checkpoint=path,
+                               progress=False)
+
+
+def _structure_huge(tmp):
+    path = tmp / "run.ckpt"
+    walker = fisherwalk.start(lambda p: _normal(p["a"]), {"a": jnp.zeros(2)}, KEY, chains=2)
+    fisherwalk.walk(walker, KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+    content = json.loads((path / "run.json").read_text())
+    content["record"]["structure"]["dict"]["a"]["array"]["shape"] = [20000, 20000]
+    (path / "run.json").write_text(json.dumps(content))
+    return fisherwalk.resume(path, lambda p: _normal(p["a"]), progress=False)
+
+
+def _padded_state(tmp):
+    path = _checkpoint(tmp)
+    (path / "state.json").write_text((path / "state.json").read_text() + " " * 2**20)
+    return fisherwalk.resume(path, _normal, progress=False)
+
+
+def _whitened_edit(tmp):
+    path = tmp / "run.ckpt"
+    walker = fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=2, sampler="mala",
+                              progress=False)
+    fisherwalk.walk(walker, KEY, draws=30, chunk=10, checkpoint=path, progress=False)
+    content = json.loads((path / "state.json").read_text())
+    content["whitened"]["logdensity_grad"]["values"][0] += 0.25
+    (path / "state.json").write_text(json.dumps(content))
+    return fisherwalk.resume(path, _normal, progress=False)
+
+
+def _csv_other_digits(tmp):
+    from fisherwalk.cli.datafile import read_table
+
+    (tmp / "t.csv").write_text("count\n3\n1_000\n")
+    return read_table(tmp / "t.csv")
+
+
+def _model_file_exits(tmp):
+    from fisherwalk.cli.modelfile import load_model
+
+    (tmp / "model.py").write_text("import sys\nsys.exit(0)\n")
+    return load_model(tmp / "model.py")
+
+
+def _nan_gradient_band(x):  # finite; the gradient in x[0] is NaN wherever |x[0]| < 0.1
+    return -0.5 * jnp.sum((x - 0.02) ** 2) + 0.0 * jnp.sqrt(
+        jnp.maximum(jnp.abs(x[0]) - 0.1, 0.0))
+
+
+def _funnel(p):  # Neal (2003), "Slice sampling", section 8, in d = 10
+    return -0.5 * p[0] ** 2 / 9.0 - 0.5 * jnp.sum(p[1:] ** 2) * jnp.exp(-p[0]) - 4.5 * p[0]
+
+
 # (where, what is refused, call(tmp_path), exception, words the message must contain)
 def _kinked(x):  # finite everywhere; the gradient in x[1] is NaN wherever x[1] >= 1
     return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.0 - x[1], 0.0))
@@ -189,6 +271,74 @@ def _unfinished_checkpoint(tmp):
 def _focus_nothing(tmp):
     trace = fisherwalk.walk(_walker(), KEY, draws=30, progress=False)
     return trace.summary(focus="sigma*")
+
+
+def _numpyro_model(kind):
+    """Models a NumPyro user could write that fisherwalk cannot use (demo data)."""
+    import numpyro
+    import numpyro.distributions as dist
+
+    y = jnp.asarray([0.3, -1.2, 0.8, 2.1, 0.4, -0.5])
+
+    def subsampled():
+        mu = numpyro.sample("mu", dist.Normal(0.0, 1.0))
+        with numpyro.plate("rows", 6, subsample_size=3) as idx:
+            numpyro.sample("y", dist.Normal(mu, 1.0), obs=y[idx])
+
+    def discrete():
+        group = numpyro.sample("group", dist.Bernoulli(0.5))
+        numpyro.sample("y", dist.Normal(2.0 * group, 1.0), obs=y)
+
+    def no_latent():
+        numpyro.sample("y", dist.Normal(0.0, 1.0), obs=y)
+
+    class Unbounded(dist.Distribution):  # a support no transform maps
+        support = dist.constraints.dependent
+
+        def sample(self, key, sample_shape=()):
+            return jnp.zeros(sample_shape)
+
+        def log_prob(self, value):
+            return -0.5 * value**2
+
+    def no_transform():
+        numpyro.sample("odd", Unbounded())
+
+    return {"subsampled": subsampled, "discrete": discrete, "no_latent": no_latent,
+            "no_transform": no_transform}[kind]
+
+
+def _numpyro_refused(kind):
+    return lambda t: fisherwalk.model_problem(_numpyro_model(kind))
+
+
+def _pymc_discrete(tmp):
+    import pymc as pm
+
+    with pm.Model() as model:
+        count = pm.Poisson("count", 3.0)
+        pm.Normal("y", count, 1.0, observed=np.asarray([2.0, 4.0]))
+    return fisherwalk.model_problem(model)
+
+
+def _pymc_minibatch(tmp):
+    import pymc as pm
+
+    y = np.linspace(-1.0, 1.0, 40)
+    with pm.Model() as model:
+        mu = pm.Normal("mu", 0.0, 1.0)
+        pm.Normal("y", mu, 1.0, observed=pm.Minibatch(y, batch_size=10), total_size=40)
+    return fisherwalk.model_problem(model)
+
+
+def _model_file_bad_args(tmp):
+    from fisherwalk.cli.modelfile import load_model
+
+    path = tmp / "model.py"
+    path.write_text("import numpyro, numpyro.distributions as dist\n"
+                    "def model(y):\n    numpyro.sample('m', dist.Normal(0, 1))\n"
+                    "model_args = [1.0]\nmodel_kwargs = {}\n")
+    return load_model(path)
 
 
 CASES = [
@@ -330,6 +480,67 @@ CASES = [
      lambda t: parse_whole_number("1e23", "--seed", "option --seed", minimum=0,
                                   maximum=MAX_SEED),
      fisherwalk.InputError, "not a whole number"),
+    ("walk(checkpoint=...)", "a checkpoint whose lock a live writer holds (the kernel's lock)",
+     _held_checkpoint, fisherwalk.CheckpointError, "in use by process"),
+    ("fisherwalk run / demo / resume", "an output name in --out that is a link or a folder "
+     "(checked before the fit)", _output_link, fisherwalk.InputError, "symbolic link"),
+    ("fisherwalk demo", "a data.csv or record.json in --out that no demo wrote",
+     _users_own_data, fisherwalk.InputError, "did not write"),
+    ("fisherwalk run --checkpoint", "an --out that holds a checkpointed run already (its "
+     "command.json is kept)", _second_checkpointed_run, fisherwalk.InputError,
+     "checkpointed run already"),
+    ("walk", "a thinning that makes more than 2**50 steps per chain (thin=10**15)",
+     lambda t: fisherwalk.walk(_walker(), KEY, draws=10, thin=10**15),
+     fisherwalk.InputError, "steps per chain"),
+    ("start", "more chains than this process can hold (chains=10**10), before allocating",
+     lambda t: fisherwalk.start(_normal, jnp.zeros(2), KEY, chains=10**10),
+     fisherwalk.InputError, "chains"),
+    ("walk", "pointwise values that would not fit in memory (before sampling)",
+     lambda t: fisherwalk.walk(_walker(), KEY, draws=10,
+                               pointwise=lambda x: jnp.zeros(10**10) + x[0]),
+     fisherwalk.InputError, "pointwise and derived values"),
+    ("resume", "a run file whose record.structure declares a leaf larger than the run "
+     "(refused before allocating it)", _structure_huge, fisherwalk.CheckpointError,
+     "structure"),
+    ("walk(checkpoint=...) / resume", "a state file larger than its contents can be "
+     "(padded; refused before parsing)", _padded_state, fisherwalk.CheckpointError,
+     "more than the"),
+    ("resume", "an edited whitened state of a gradient sampler (state.json or run.json)",
+     _whitened_edit, fisherwalk.CheckpointError, "whitened.logdensity_grad"),
+    ("fisherwalk run --data", "a CSV cell that is not a plain ASCII decimal (1_000, "
+     "Arabic-Indic or full-width digits)", _csv_other_digits, fisherwalk.InputError,
+     "ASCII digits"),
+    ("fisherwalk run", "a model file that calls sys.exit()", _model_file_exits,
+     fisherwalk.ModelFileError, "sys.exit"),
+    ("start / laplace", "a band of NaN gradient at the mode (the log density finite)",
+     lambda t: fisherwalk.start(_nan_gradient_band, jnp.array([1.0, 1.0]), KEY),
+     fisherwalk.FitError, "NaN"),
+    ("start / laplace", "Neal's funnel: a curvature spread beyond float64 at the end point",
+     lambda t: fisherwalk.start(_funnel, jnp.zeros(10), KEY), fisherwalk.FitError, "funnel"),
+
+    ("model_problem", "a NumPyro plate with a subsample size",
+     _numpyro_refused("subsampled"), fisherwalk.ModelError, "subsample"),
+    ("model_problem", "a discrete latent site (NumPyro)",
+     _numpyro_refused("discrete"), fisherwalk.ModelError, "marginalise"),
+    ("model_problem", "a discrete free variable (PyMC)",
+     _pymc_discrete, fisherwalk.ModelError, "marginalise"),
+    ("model_problem", "a minibatch of the data (PyMC)",
+     _pymc_minibatch, fisherwalk.ModelError, "all the data"),
+    ("model_problem", "a NumPyro model with no latent sample site",
+     _numpyro_refused("no_latent"), fisherwalk.ModelError, "no latent sample site"),
+    ("model_problem", "a site whose support has no transform",
+     _numpyro_refused("no_transform"), fisherwalk.ModelError, "no transform"),
+    ("constrained_problem", "an unknown constraint",
+     lambda t: fisherwalk.constrained_problem(_normal, {"s": 1.0}, {"s": "round"}),
+     fisherwalk.InputError, "not a known constraint"),
+    ("constrained_problem", "a constraint for a name the position lacks",
+     lambda t: fisherwalk.constrained_problem(_normal, {"s": 1.0}, {"t": "positive"}),
+     fisherwalk.InputError, "does not hold"),
+    ("constrained_problem", "a starting value outside its constraint",
+     lambda t: fisherwalk.constrained_problem(_normal, {"s": -1.0}, {"s": "positive"}),
+     fisherwalk.InputError, "outside its constraint"),
+    ("fisherwalk run", "a NumPyro model file whose model_args is not a tuple",
+     _model_file_bad_args, fisherwalk.ModelFileError, "tuple"),
 ]
 
 
@@ -384,6 +595,7 @@ def _normalise(text: str) -> str:
     text = re.sub(r"\d+(\.\d+)? (GiB|MiB)", r"# \2", text)
     text = re.sub(r"at most about \d+", "at most about #", text)
     text = re.sub(r"on host '[^']*'", "on host #", text)
+    text = re.sub(r"by process \d{2,} on host #, since [0-9T:+-]+", "by process #", text)
     return re.sub(r"\d\.\d{3,}(e[-+]?\d+)?", "#", text)
 
 

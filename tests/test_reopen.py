@@ -137,3 +137,22 @@ def test_an_unfinished_checkpoint_is_refused(tmp_path):
     state.write_text(json.dumps(content))
     with pytest.raises(CheckpointError, match="not finished"):
         fisherwalk.reopen(tmp_path / "run.ckpt")
+
+
+def test_run_focus_prints_some_rows_and_keeps_every_row_in_the_files(tmp_path, capsys):
+    from fisherwalk.cli import command as cli
+
+    (tmp_path / "model.py").write_text(MODEL)
+    out = tmp_path / "out"
+    code = cli.main(["run", str(tmp_path / "model.py"), "--out", str(out), "--quiet",
+                     "--draws", "300", "--chains", "2", "--warmup", "200",
+                     "--no-compile-cache", "--focus", "level", "y_*"])
+    assert code == 0
+    printed = capsys.readouterr().out
+    rows = [line.split()[0] for line in printed.splitlines()
+            if line.split() and line.split()[0] in ("level", "log_noise", "sigma", "cv",
+                                                    "y_new")]
+    assert rows == ["level", "y_new"] * 2
+    lines = (out / "summary.csv").read_text().splitlines()
+    assert [line.split(",")[0] for line in lines[1:]] == [
+        "level", "log_noise", "sigma", "cv", "y_new"]

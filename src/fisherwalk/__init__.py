@@ -18,6 +18,9 @@ from .errors import (
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
+from .models.declared import constrained_problem
+from .models.numpyro_model import model_problem
+from .models.space import ModelProblem
 from .results.facts import RunFacts
 from .results.report import Summary
 from .results.trace import Trace
@@ -59,6 +62,9 @@ __all__ = [
     "handoff",
     "spread_chains",
     "sharded_logdensity",
+    "model_problem",
+    "constrained_problem",
+    "ModelProblem",
     "ScaleChoice",
     "LaplaceFit",
     "Tuning",

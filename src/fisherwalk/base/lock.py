@@ -1,28 +1,40 @@
-"""One writer per folder: a lock file created exclusively, naming its owner.
+"""One writer per folder: the kernel's advisory lock on ``<folder>/writer.lock``.
 
-:func:`acquire_lock` creates ``<folder>/writer.lock`` with
-``O_CREAT | O_EXCL | O_WRONLY | O_NOFOLLOW``: the system creates it for exactly one
-process, and never through a planted link. It holds JSON (:mod:`.jsonio`)
-``{"pid", "host", "started", "token"}``. A second writer finds the file and is refused
-with the owner's process id, host and start time, and what to do.
+:func:`acquire_lock` opens (creating if needed) ``<folder>/writer.lock`` with
+``O_NOFOLLOW`` (never through a planted link) and takes ``fcntl.flock(LOCK_EX |
+LOCK_NB)`` on it. The kernel grants that lock to one open file at a time and releases it
+when the holder's file is closed, which happens however the holder ends: a crash, a
+``SIGKILL`` or a power cut leave no lock to reclaim, and a later run simply takes it. A
+second writer while the first lives is refused, with the owner the file names (process
+id, host, start time) and what to do.
 
-A lock whose owner is on this host and no longer running (``os.kill(pid, 0)`` reports
-no such process) is stale: it is reported as such, and removed only when the caller asks
-(``break_stale=True``). A lock from another host, or one that cannot be read, is never
-broken automatically: this process cannot tell whether its owner still runs.
+The file holds the line ``fisherwalk-lock 2`` and then JSON (:mod:`.jsonio`)
+``{"pid", "host", "started", "token"}``, written after the lock is taken. On release
+the holder removes the file and then closes it; a process that opened the file before
+the removal finds, once it holds the lock, that the path no longer names its file, and
+starts again (so two processes never hold locks on two different files of one name).
 
-Limits. A pid can be reused by an unrelated process after the owner died (then the lock
-looks alive and the user deletes it by hand, as the message says). Two processes
-breaking the same stale lock at the same instant could both proceed; breaking is a
-deliberate step for one user, not a race to win.
+Old lock files. Versions before this one wrote the JSON alone and judged the owner by
+hand. For one release such a file is still judged by those rules: its owner on this host
+and running (``os.kill(pid, 0)``), on another host, or unreadable: refused; on this host
+and no longer running: stale, broken only when the caller asks (``break_stale=True``).
+
+Limits. ``flock`` is local to one machine's kernel unless the file system forwards it:
+Linux forwards it over NFS (v4, or v3 with the lock manager running) as a whole-file
+POSIX lock, but some network or FUSE file systems (older NFS setups, SMB mounts without
+lock support, sshfs) keep it local, and two machines could then both write one folder.
+Keep a checkpoint on a local disk, or make sure one machine writes it.
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
+import fcntl
 import os
 import secrets
 import socket
+import stat
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import NamedTuple
@@ -35,7 +47,9 @@ __all__ = ["LOCK_FILE", "LockOwner", "Lock", "acquire_lock", "read_lock", "pid_a
 
 LOCK_FILE = "writer.lock"
 _MAX_LOCK_BYTES = 4096
-_FLAGS = os.O_CREAT | os.O_EXCL | os.O_WRONLY | getattr(os, "O_NOFOLLOW", 0)
+_MAGIC = b"fisherwalk-lock 2\n"  # the first line of a lock file of this format
+_FLAGS = (os.O_RDWR | os.O_CREAT | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0)
+          | getattr(os, "O_CLOEXEC", 0))
 
 
 class LockOwner(NamedTuple):
@@ -61,46 +75,68 @@ def pid_alive(pid: int) -> bool:
     return True
 
 
+def _owner(content: bytes) -> LockOwner | None:
+    """The owner in a lock file's bytes (either format), or None."""
+    if content.startswith(_MAGIC):
+        content = content[len(_MAGIC):]
+    try:
+        plain = loads(content.decode("utf-8"), max_depth=2)
+    except (FisherwalkError, UnicodeDecodeError):
+        return None
+    if not isinstance(plain, dict) or set(plain) != set(LockOwner._fields):
+        return None
+    pid = plain["pid"]
+    if isinstance(pid, bool) or not isinstance(pid, int) or not 0 < pid < 2**31:
+        return None
+    if not all(isinstance(plain[f], str) for f in ("host", "started", "token")):
+        return None
+    return LockOwner(**plain)
+
+
+def _new_format(content: bytes) -> bool:
+    """A lock file of this format (or one whose writer died before finishing its first
+    line: empty, or a part of that line)."""
+    return content.startswith(_MAGIC) or _MAGIC.startswith(content)
+
+
 def read_lock(path: str | os.PathLike) -> LockOwner | None:
     """The owner written in a lock file, or None when the file is missing, is not a
     regular file, or does not hold a well-formed owner."""
     try:
-        content = loads(read_bytes(path, max_bytes=_MAX_LOCK_BYTES, follow_symlinks=False)
-                        .decode("utf-8"), max_depth=2)
-    except (FisherwalkError, UnicodeDecodeError):
+        content = read_bytes(path, max_bytes=_MAX_LOCK_BYTES, follow_symlinks=False)
+    except FisherwalkError:
         return None
-    if not isinstance(content, dict) or set(content) != set(LockOwner._fields):
-        return None
-    pid = content["pid"]
-    if isinstance(pid, bool) or not isinstance(pid, int) or not 0 < pid < 2**31:
-        return None
-    if not all(isinstance(content[f], str) for f in ("host", "started", "token")):
-        return None
-    return LockOwner(**content)
+    return _owner(content)
 
 
 class Lock:
     """A lock held by this process; :meth:`release` it, or use it in a ``with`` block."""
 
-    __slots__ = ("path", "owner", "broken", "_held")
+    __slots__ = ("path", "owner", "broken", "_fd")
 
-    def __init__(self, path: Path, owner: LockOwner, broken: LockOwner | None = None):
-        self.path, self.owner, self._held = path, owner, True
-        self.broken = broken  # the stale owner whose lock was broken to take this one
+    def __init__(self, path: Path, owner: LockOwner, broken: LockOwner | None = None,
+                 fd: int | None = None):
+        self.path, self.owner, self._fd = path, owner, fd
+        self.broken = broken  # the stale owner (old format) whose lock was broken
 
     @property
     def held(self) -> bool:
-        return self._held
+        return self._fd is not None
 
     def release(self) -> None:
-        """Remove the lock file if it is still this holder's (idempotent; never raises)."""
-        if not self._held:
+        """Remove the lock file if it is still this holder's, then let the kernel's lock
+        go (idempotent; never raises)."""
+        fd, self._fd = self._fd, None
+        if fd is None:
             return
-        self._held = False
-        if read_lock(self.path) == self.owner:
+        try:
             with contextlib.suppress(OSError):
-                os.unlink(self.path)
-                fsync_folder(self.path.parent)
+                if _same_file(fd, self.path) and read_lock(self.path) == self.owner:
+                    os.unlink(self.path)
+                    fsync_folder(self.path.parent)
+        finally:
+            with contextlib.suppress(OSError):
+                os.close(fd)  # releases the flock
 
     def __enter__(self) -> Lock:
         return self
@@ -108,36 +144,80 @@ class Lock:
     def __exit__(self, *exc) -> None:
         self.release()
 
+    def __del__(self) -> None:  # a Lock dropped without release: the kernel lock goes
+        fd = getattr(self, "_fd", None)
+        if fd is not None:
+            with contextlib.suppress(OSError):
+                os.close(fd)
+
     def __repr__(self) -> str:
-        state = "held" if self._held else "released"
+        state = "held" if self.held else "released"
         return f"Lock({os.fspath(self.path)!r}, pid={self.owner.pid}, {state})"
 
 
+def _same_file(fd: int, path: Path) -> bool:
+    """Whether ``path`` still names the file open as ``fd``."""
+    try:
+        here, there = os.fstat(fd), os.lstat(path)
+    except OSError:
+        return False
+    return (here.st_dev, here.st_ino) == (there.st_dev, there.st_ino)
+
+
 def _refusal(path: Path, holder: LockOwner | None, host: str, where: str,
-             break_hint: str) -> str:
+             break_hint: str, *, held: bool) -> str:
+    """The message refusing a lock: ``held`` when the kernel's lock is held by another
+    open file (a live writer), else the judgement of an old-format file."""
     folder = path.parent
     remove = f"delete {path}"
     if holder is None:
+        if held:
+            return explain(f"The folder {folder} is in use by another process (it holds the "
+                           f"lock {path} and has not yet written its name).", where,
+                           "wait for that run to finish or use another folder.")
         return explain(f"The folder {folder} is locked, and the lock file {path} cannot be "
-                       "read (being written this instant, or damaged).", where,
-                       f"wait a moment and retry; if no other fisherwalk run writes to "
-                       f"{folder}, {remove} and retry.")
+                       "read (damaged, or left by an older fisherwalk).", where,
+                       f"if no other fisherwalk run writes to {folder}, {remove} and retry.")
     who = f"process {holder.pid} on host {holder.host!r}, since {holder.started}"
+    if held:
+        this = " (this very process: is another walk still writing here?)" \
+            if holder.pid == os.getpid() and holder.host == host else ""
+        return explain(f"The folder {folder} is in use by {who}{this}: only one run may "
+                       "write it at a time.", where,
+                       "wait for that run to finish or stop it, or use another folder.")
+    # an old-format lock file, judged by the old rules
     if holder.host != host:
-        return explain(f"The folder {folder} is in use by {who}.", where,
+        return explain(f"The folder {folder} is in use by {who} (a lock file of an older "
+                       "fisherwalk).", where,
                        f"wait for that run to finish or use another folder; if it has "
                        f"ended without releasing the lock, {remove}.")
     if pid_alive(holder.pid):
-        this = " (this very process: is another walk still writing here?)" \
-            if holder.pid == os.getpid() else ""
-        return explain(f"The folder {folder} is in use by {who}{this}: only one run may "
-                       "write it at a time.", where,
+        return explain(f"The folder {folder} is in use by {who} (a lock file of an older "
+                       "fisherwalk): only one run may write it at a time.", where,
                        "wait for that run to finish or stop it, or use another folder; if "
                        f"that process is not a fisherwalk run (a reused process id), {remove}.")
-    return explain(f"The folder {folder} holds a stale lock: it was taken by {who}, and that "
-                   "process no longer runs (it ended without releasing the lock).", where,
+    return explain(f"The folder {folder} holds a stale lock of an older fisherwalk: it was "
+                   f"taken by {who}, and that process no longer runs.", where,
                    f"if no other run writes to {folder}, {break_hint} to break the lock and "
                    "continue.")
+
+
+def _open(path: Path, error: type[FisherwalkError], where: str) -> int:
+    try:
+        fd = os.open(path, _FLAGS, 0o644)
+    except OSError as err:
+        if err.errno == errno.ELOOP or os.path.islink(path):
+            raise error(explain(f"The lock file {path} cannot be read: it is a symbolic "
+                                "link, which fisherwalk does not follow.", where,
+                                f"remove the link {path}; nothing was written.")) from err
+        raise error(explain(f"The lock file {path} cannot be created ({err.strerror}).",
+                            where, "check that the folder exists and is writable.")) from err
+    info = os.fstat(fd)
+    if not stat.S_ISREG(info.st_mode):
+        os.close(fd)
+        raise error(explain(f"The lock file {path} cannot be read: it is not a regular "
+                            "file.", where, f"remove {path}; nothing was written."))
+    return fd
 
 
 def acquire_lock(folder: str | os.PathLike, *, break_stale: bool = False,
@@ -151,7 +231,8 @@ def acquire_lock(folder: str | os.PathLike, *, break_stale: bool = False,
     folder
         An existing folder.
     break_stale
-        Remove a stale lock (owner on this host, no longer running) and take it.
+        Break an old-format lock file whose owner (on this host) no longer runs. A lock
+        of this format needs no breaking: the kernel released it when its owner ended.
     name
         The lock file's name inside ``folder``.
     error, where
@@ -162,53 +243,57 @@ def acquire_lock(folder: str | os.PathLike, *, break_stale: bool = False,
     Returns
     -------
     Lock
-        Held by this process; ``Lock.broken`` is the stale owner removed, if any (say
-        so to the user).
+        Held by this process until :meth:`Lock.release` (or the process ends);
+        ``Lock.broken`` is the stale old-format owner replaced, if any.
 
     Raises
     ------
     error
-        Another owner holds the lock (the message names its pid, host and start), the
-        lock is stale and ``break_stale`` is False, or the lock file cannot be created.
+        A live process holds the lock (the message names its pid, host and start), an
+        old-format lock is live, unreadable or stale (and ``break_stale`` is False), or
+        the lock file cannot be created.
     """
     path = Path(folder) / name
     where = where or f"folder {os.fspath(folder)}"
     host = socket.gethostname()
     owner = LockOwner(os.getpid(), host, datetime.now(UTC).isoformat(timespec="seconds"),
                       secrets.token_hex(8))
-    broken = None
-    for _ in range(3):  # a lock released or broken meanwhile is retried
+    for _ in range(5):  # a file removed by its releasing holder meanwhile: retried
+        fd = _open(path, error, where)
         try:
-            fd = os.open(path, _FLAGS, 0o644)
-        except FileExistsError:
-            holder = read_lock(path)
-            if holder is None and not os.path.lexists(path):
-                continue  # released between our attempt and the read
-            stale = (holder is not None and holder.host == host
-                     and not pid_alive(holder.pid))
-            if stale and break_stale and read_lock(path) == holder:
-                with contextlib.suppress(FileNotFoundError):
-                    os.unlink(path)
-                broken = holder
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                raise error(_refusal(path, read_lock(path), host, where, break_hint,
+                                     held=True)) from None
+            if not _same_file(fd, path):
+                os.close(fd)
+                fd = None
                 continue
-            raise error(_refusal(path, holder, host, where, break_hint)) from None
+            content = os.pread(fd, _MAX_LOCK_BYTES + 1, 0)
+            broken = None
+            if not _new_format(content):
+                holder = _owner(content)
+                stale = (holder is not None and holder.host == host
+                         and not pid_alive(holder.pid))
+                if not (stale and break_stale):
+                    raise error(_refusal(path, holder, host, where, break_hint, held=False))
+                broken = holder
+            data = _MAGIC + dumps(owner._asdict()).encode("utf-8")
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, data, 0)
+            os.fsync(fd)
         except OSError as err:
-            raise error(explain(f"The lock file {path} cannot be created ({err.strerror}).",
-                                where, "check that the folder exists and is writable.")) from err
-        try:
-            with os.fdopen(fd, "wb") as handle:
-                handle.write(dumps(owner._asdict()).encode("utf-8"))
-                handle.flush()
-                os.fsync(handle.fileno())
-        except BaseException as err:
-            with contextlib.suppress(OSError):
-                os.unlink(path)
-            if isinstance(err, OSError):
-                raise error(explain(f"The lock file {path} cannot be written "
-                                    f"({err.strerror}).", where,
-                                    "check the free space of the folder.")) from err
+            if fd is not None:
+                os.close(fd)
+            raise error(explain(f"The lock file {path} cannot be written ({err.strerror}).",
+                                where, "check the folder's permissions and free space."
+                                )) from err
+        except BaseException:
+            if fd is not None:
+                os.close(fd)
             raise
         fsync_folder(path.parent)
-        return Lock(path, owner, broken)
+        return Lock(path, owner, broken, fd)
     raise error(explain(f"The lock of {path.parent} changed hands repeatedly.", where,
                         "make sure a single run writes to this folder, then retry."))

@@ -36,7 +36,7 @@ from jax.sharding import PartitionSpec as P
 from ..errors import InputError, ModelError, explain
 
 __all__ = ["CHAINS", "ROWS", "automatic", "ChainPlacement", "chain_placement", "chain_mesh",
-           "agree_across_processes"]
+           "agree_across_processes", "failed_processes"]
 
 CHAINS = "chains"  # the mesh axis the chains are split over
 ROWS = "rows"  # the mesh axis the data rows are split over (fisherwalk.sharded_logdensity)
@@ -198,3 +198,17 @@ def agree_across_processes(what: str, description: Any) -> None:
             f"jax.distributed run, {what}",
             "start every process with the same model, the same data shapes and the same "
             "chain count (the same script and the same data files on every host)."))
+
+
+def failed_processes(ok: bool) -> list[int]:
+    """The indices of the processes of a ``jax.distributed`` run that report ``ok=False``
+    (this one included), from one tiny all-gather that every process must call at the
+    same point, whether its step succeeded or not. A process refused at that point (e.g.
+    by a checkpoint's lock) thus tells the others, which stop too instead of waiting for
+    it in a collective. With one process: ``[]`` or ``[0]``, no communication.
+    """
+    if jax.process_count() == 1:
+        return [] if ok else [jax.process_index()]
+    flags = np.asarray(multihost_utils.process_allgather(np.asarray([int(bool(ok))],
+                                                                    dtype=np.int32)))
+    return [int(i) for i in np.flatnonzero(flags.reshape(-1) == 0)]

@@ -31,11 +31,12 @@ import numpy as np
 from ..base.checks import parse_whole_number
 from ..base.files import check_output_folder
 from ..base.jsonio import dumps
+from ..base.lock import acquire_lock
 from ..errors import FisherwalkError, InputError, ModelFileError, explain
 from ..run.memory import check_walk_memory
 from ..run.plan import MAX_DRAWS
 from ..run.samplers import registry
-from . import compilecache, resumable
+from . import compilecache, outputs, resumable
 from .modelfile import load_model
 from .runrecord import RunResult, build_record, run_keys, sha256_file, write_outputs
 
@@ -76,13 +77,13 @@ class _Say:
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
              warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
-             checkpoint=None, labels=None, sampler: str = "rwm", focus=None,
-             predict=None) -> RunResult:
+             checkpoint=None, labels=None, sampler: str = "rwm", predict=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
 
     ``draws=None`` plans the run length; ``labels`` (one per scalar parameter, e.g. a
-    model file's ``names``) replace the ravelled names everywhere; ``focus`` chooses the
-    summary's rows (:mod:`fisherwalk.results.focus`).
+    model file's ``names``) replace the ravelled names everywhere. The summary has every
+    row (the record and summary.csv keep them all); ``run --focus`` chooses the printed
+    rows and the figures' panels.
 
     ``thin``, ``pointwise``, ``derived`` and ``checkpoint`` go to :func:`fisherwalk.walk`,
     ``restarts`` (mode searches from dispersed points) to :func:`fisherwalk.start`.
@@ -117,7 +118,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
 
     t = time.perf_counter()
     trace = labelled(trace, labels)
-    summary = trace.summary(focus=focus)
+    summary = trace.summary()  # every row: the record and summary.csv keep them all
     seconds["diagnostics"] = time.perf_counter() - t
     _say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
@@ -240,14 +241,40 @@ def _output_bytes(chains: int, draws: int, dim: int) -> int:
     return chains * draws * (dim + 2) * 8 + 125 * dim * dim + 4 * 2**20
 
 
-def _check_before_work(args, dim: int) -> Path:
+def _values_per_draw(fn, position) -> int:
+    """How many numbers ``fn(position)`` returns (traced, not run); 0 when it cannot be
+    traced here (walk() then reports the function's problem)."""
+    if fn is None:
+        return 0
+    import jax
+
+    try:
+        shapes = jax.eval_shape(fn, position)
+    except Exception:  # noqa: BLE001 - reported by walk() with its own message
+        return 0
+    return sum(math.prod(leaf.shape) for leaf in jax.tree_util.tree_leaves(shapes))
+
+
+def _check_before_work(args, dim: int, model=None) -> Path:
     """The output folder (a writable folder with room for the outputs) and the memory
-    the run needs, checked before the fit."""
+    the run needs (with the model's pointwise and derived values), checked before the
+    fit."""
     draws = MAX_DRAWS if args.draws is None else args.draws  # a planned run: its budget
+    pointwise = derived = 0
+    if model is not None:
+        if getattr(args, "pointwise", False):
+            pointwise = _values_per_draw(model.pointwise, model.initial_position)
+        derived = _values_per_draw(model.derived, model.initial_position)
     check_walk_memory(draws, args.chains, dim, where="options --draws and --chains",
                       todo="pass --draws {draws} or fewer (or fewer --chains); nothing was "
-                           "fitted or sampled.")
-    return check_output_folder(args.out, _output_bytes(args.chains, draws, dim))
+                           "fitted or sampled.", thin=args.thin, pointwise=pointwise,
+                      derived=derived)
+    out = check_output_folder(args.out, _output_bytes(args.chains, draws, dim))
+    checkpoint = bool(getattr(args, "checkpoint", False))
+    outputs.check_output_names(out, outputs.output_names(args.command, checkpoint=checkpoint))
+    if args.command == "demo":
+        outputs.check_demo_folder(out)
+    return out
 
 
 def _options(args) -> dict:
@@ -376,12 +403,21 @@ def _run(args, argv) -> int:
             "--checkpoint needs a run of fixed length, and --draws was not given.",
             "option --checkpoint", "pass --draws N with --checkpoint (a planned run's length "
             "is not known in advance, so it cannot be resumed)."))
-    out = _check_before_work(args, model.dim)
+    out = _check_before_work(args, model.dim, model)
     checkpoint = None
-    if args.checkpoint:
-        checkpoint = out / resumable.CHECKPOINT_FOLDER
+    if not args.checkpoint:
+        return _run_in(args, argv, say, began, model, out, None)
+    # one command at a time in a checkpointed --out; the plan (command.json) is written
+    # only once this command is sure to start its own run, never before a refusal
+    with acquire_lock(out, where=f"fisherwalk run --out {out} --checkpoint"):
+        checkpoint = resumable.claim_checkpoint(out, model_file=model.path)
         resumable.write_plan(out, argv=argv, options=_options(args), keys=run_keys(args.seed)[1],
                              model=model, pointwise=args.pointwise)
+        return _run_in(args, argv, say, began, model, out, checkpoint)
+
+
+def _run_in(args, argv, say, began, model, out: Path, checkpoint: Path | None) -> int:
+    """The work of ``run`` once its folder is checked (and, with --checkpoint, held)."""
     data = f", {model.data.rows:,} rows of {model.data.path.name}" if model.data else ""
     say(f"fisherwalk run: {model.path} ({model.dim} parameters{data})")
     say("=" * 72)
@@ -392,13 +428,19 @@ def _run(args, argv) -> int:
                       fisher=model.fisher, say=say, thin=args.thin, restarts=args.restarts,
                       pointwise=model.pointwise if args.pointwise else None,
                       derived=model.derived, checkpoint=checkpoint, labels=model.labels,
-                      sampler=args.sampler, focus=args.focus, predict=model.predict)
+                      sampler=args.sampler, predict=model.predict)
     print()
-    print(str(result.summary))
+    focus = args.focus
+    try:
+        shown = result.summary if focus is None else result.trace.summary(focus=focus)
+    except InputError as err:  # after the sampling: keep the run, show every row
+        print(f"fisherwalk run: --focus ignored: {err}", file=sys.stderr)
+        shown, focus = result.summary, None
+    print(str(shown))
     extra = {**resumable.model_facts(model), "compile_cache": _cache_facts(args)}
     say.busy("writing the figures and the record")
     record = build_record("run", argv, _options(args), result, extra)
-    files = write_outputs(out, result, record, focus=args.focus)
+    files = write_outputs(out, result, record, focus=focus)
     say()
     _say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
@@ -417,12 +459,20 @@ def _interrupted(args, result: RunResult, out: Path) -> int:
 
 
 def _resume(args, argv) -> int:
-    import fisherwalk
-
     say = _Say(args.quiet)
     began = time.perf_counter()
     folder = Path(args.folder)
-    plan = resumable.read_plan(folder)
+    resumable.read_plan(folder)  # refuses a folder without a run, creating nothing
+    outputs.check_output_names(folder, outputs.output_names("resume"),
+                               where=f"fisherwalk resume {folder}")
+    with acquire_lock(folder, where=f"fisherwalk resume {folder}"):
+        return _resume_in(args, argv, say, began, folder, resumable.read_plan(folder))
+
+
+def _resume_in(args, argv, say, began, folder: Path, plan: dict) -> int:
+    """The work of ``resume`` while it holds its folder."""
+    import fisherwalk
+
     data = args.data or (plan.get("data_file") or {}).get("path")
     model = load_model(args.model, data=data)
     pointwise = None
@@ -438,7 +488,8 @@ def _resume(args, argv) -> int:
     trace = fisherwalk.resume(folder / resumable.CHECKPOINT_FOLDER, model.logdensity,
                               position=model.initial_position,
                               progress=None if not args.quiet else False,
-                              pointwise=pointwise, derived=model.derived)
+                              pointwise=pointwise, derived=model.derived,
+                              predict=model.predict)
     seconds = {"sampling": time.perf_counter() - t}
     t = time.perf_counter()
     trace = labelled(trace, model.labels)
@@ -541,7 +592,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "random-walk Metropolis,\nMALA, HMC or NUTS (BlackJAX), a short warm-up, "
                     "diagnostics, figures and a record.",
         epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
-               "  fisherwalk run my_model.py --out results\n\n"
+               "  fisherwalk run my_model.py --out results\n  fisherwalk show results --focus "
+               "'beta*'\n\n"
                "'fisherwalk COMMAND --help' describes each command.")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
@@ -582,6 +634,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "(--pointwise)\n"
                     "  derived(position) -> pytree      quantities summarised with the "
                     "parameters\n"
+                    "  predict(position, key) -> pytree predictions with their own randomness "
+                    "(a key per draw)\n"
                     "With --data table.csv it defines instead\n"
                     "  make(data) -> (logdensity, initial_position), or a dict of the names "
                     "above,\n"
@@ -699,12 +753,7 @@ def _error_note(args, err: Exception) -> None:
     print(text, file=sys.stderr)
     folder = {"run": getattr(args, "out", None), "resume": getattr(args, "folder", None)}.get(
         args.command)
-    if folder is not None:
-        try:
-            Path(folder).mkdir(parents=True, exist_ok=True)
-            (Path(folder) / "error.txt").write_text(text + "\n", encoding="utf-8")
-        except OSError:
-            pass  # the message is on standard error already
+    outputs.write_error_note(folder, text)  # into an existing folder only, never a link
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -4,7 +4,13 @@
 library's :mod:`csv` module and returns one float array per column. Every refusal names
 the column, and the row where one applies (data rows count from 1; the file's line is
 given too): a missing column the model declares, a row with too many or too few cells,
-an empty cell, a cell that is not a number, a NaN or infinite value.
+an empty cell, a cell that is not a plain ASCII decimal number (``1_000``, ``1,000``,
+Arabic-Indic or full-width digits, ``nan`` and ``inf`` are refused, though Python's
+``float`` would read some of them), a value beyond float64's range.
+
+The file is read one record at a time into growing float64 arrays, one per needed
+column, so the memory is the file's text and eight bytes per needed number, not a
+Python string per cell.
 """
 
 from __future__ import annotations
@@ -12,7 +18,8 @@ from __future__ import annotations
 import csv
 import hashlib
 import math
-from collections.abc import Sequence
+import re
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import NamedTuple
 
@@ -60,16 +67,29 @@ def read_table(path, columns: Sequence[str] | None = None) -> Table:
         raise _refuse(path, "The data file does not exist (or is not a file).", "--data",
                       "give the path of a CSV file with a header row.")
     raw = path.read_bytes()
+    digest = hashlib.sha256(raw).hexdigest()
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as err:
         raise _refuse(path, f"The file is not UTF-8 text ({err.reason} at byte {err.start}).",
                       "the whole file", "save the table as UTF-8 CSV.") from None
-    records = [row for row in csv.reader(text.splitlines()) if row]
-    if not records:
+    del raw
+    if "\r" in text and "\n" not in text:  # lines ended by a carriage return alone
+        text = text.replace("\r", "\n")
+    try:
+        return _read(path, text, columns, digest)
+    except csv.Error as err:
+        raise _refuse(path, f"The file is not valid CSV ({err}).", "the whole file",
+                      "save the table as comma-separated text.") from None
+
+
+def _read(path: Path, text: str, columns: Sequence[str] | None, digest: str) -> Table:
+    reader = csv.reader(_lines(text))
+    head = next((row for row in reader if row), None)
+    if head is None:
         raise _refuse(path, "The file is empty.", "the whole file",
                       "write a header row of column names, then one row per observation.")
-    header = [name.strip() for name in records[0]]
+    header = [name.strip() for name in head]
     for index, name in enumerate(header):
         if not name:
             raise _refuse(path, f"Column {index + 1} of the header has no name.",
@@ -85,23 +105,35 @@ def read_table(path, columns: Sequence[str] | None = None) -> Table:
                       "the header (line 1)",
                       f"add the column(s) or correct the name(s); the file has "
                       f"{', '.join(header)}.")
-    body = records[1:]
-    if not body:
+    values = {name: np.empty(1024) for name in wanted}
+    where = {name: header.index(name) for name in wanted}
+    rows = 0
+    line = reader.line_num + 1  # the line the next record starts on
+    for cells in reader:  # one record at a time: the cells of a row are dropped after it
+        first, line = line, reader.line_num + 1
+        if not cells:
+            continue
+        rows += 1
+        if len(cells) != len(header):
+            raise _refuse(path, f"Row {rows} has {len(cells)} cell(s); the header has "
+                          f"{len(header)}.", f"row {rows} (line {first})",
+                          "give every row one cell per column (quote cells holding commas).")
+        if rows > len(next(iter(values.values()))):
+            values = {name: np.resize(column, 2 * len(column))
+                      for name, column in values.items()}
+        for name in wanted:
+            values[name][rows - 1] = _number(path, cells[where[name]].strip(), name, rows,
+                                             first)
+    if not rows:
         raise _refuse(path, "The file has a header but no data rows.", "the whole file",
                       "add one row per observation.")
-    values = {name: np.empty(len(body)) for name in wanted}
-    where = {name: header.index(name) for name in wanted}
-    lines = _line_numbers(text)
-    for row, cells in enumerate(body, start=1):
-        line = lines[row] if row < len(lines) else row + 1
-        if len(cells) != len(header):
-            raise _refuse(path, f"Row {row} has {len(cells)} cell(s); the header has "
-                          f"{len(header)}.", f"row {row} (line {line})",
-                          "give every row one cell per column (quote cells holding commas).")
-        for name in wanted:
-            cell = cells[where[name]].strip()
-            values[name][row - 1] = _number(path, cell, name, row, line)
-    return Table(path, values, len(body), hashlib.sha256(raw).hexdigest())
+    return Table(path, {name: column[:rows].copy() for name, column in values.items()}, rows,
+                 digest)
+
+
+# a plain ASCII decimal number: digits 0-9 only, an optional sign, point and exponent (no
+# digit separators such as 1_000, no other scripts' digits, no nan/inf words)
+_NUMBER = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
 
 
 def _number(path: Path, cell: str, name: str, row: int, line: int) -> float:
@@ -109,26 +141,26 @@ def _number(path: Path, cell: str, name: str, row: int, line: int) -> float:
     if not cell:
         raise _refuse(path, f"The cell in column '{name}', row {row} is empty.", place,
                       "fill in the value, or drop the row (fisherwalk does not impute).")
-    try:
-        number = float(cell)
-    except ValueError:
-        raise _refuse(path, f"The cell in column '{name}', row {row} holds {cell!r}, not a "
-                      "number.", place, "write a plain number there (e.g. 3.25 or 1e-3), or "
-                      "leave the column out of the model's columns.") from None
+    if not _NUMBER.fullmatch(cell):
+        raise _refuse(path, f"The cell in column '{name}', row {row} holds {cell!r:.60}, not a "
+                      "plain decimal number.", place,
+                      "write a number in ASCII digits 0-9 (e.g. 3.25, -1e-3; no digit "
+                      "separators such as 1_000 or 1,000, no other scripts' digits), or "
+                      "leave the column out of the model's columns.")
+    number = float(cell)
     if not math.isfinite(number):
-        raise _refuse(path, f"The cell in column '{name}', row {row} holds {cell!r}.", place,
-                      "give a finite number; a missing value must be handled in the model or "
-                      "the row dropped.")
+        raise _refuse(path, f"The cell in column '{name}', row {row} holds {cell!r:.60}, "
+                      "beyond the range of a float64.", place,
+                      "give a finite number of magnitude below 1.8e308.")
     return number
 
 
-def _line_numbers(text: str) -> list[int]:
-    """The file line on which each non-empty record starts (records may span lines)."""
-    starts = []
-    reader = csv.reader(text.splitlines())
-    line = 1
-    for record in reader:
-        if record:
-            starts.append(line)
-        line = reader.line_num + 1
-    return starts
+def _lines(text: str) -> Iterator[str]:
+    """The lines of ``text`` with their ends, one at a time (a StringIO would copy the
+    text in four bytes a character, a list of lines would hold them all)."""
+    begin = 0
+    while begin < len(text):
+        end = text.find("\n", begin)
+        end = len(text) if end < 0 else end + 1
+        yield text[begin:end]
+        begin = end

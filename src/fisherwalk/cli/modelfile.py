@@ -10,6 +10,12 @@ receives the table as a mapping column name -> float array and returns
 ``(logdensity, initial_position)``, or a dict or object with those names (and any of the
 optional ones); it may declare the columns it needs, ``columns = ("y", "x")``, so that
 only these are read and a missing one is named before ``make`` runs.
+
+Instead of ``logdensity`` and ``initial_position``, a file (or what ``make(data)``
+returns) may define a NumPyro ``model`` with ``model_args`` (a tuple) and
+``model_kwargs`` (a dict): :func:`fisherwalk.model_problem` turns it into the log density
+on the unconstrained space, the model's own starting point and its sites, and the run
+reports the sites' values under their names.
 :func:`load_model` imports the file (running its code) and checks these eagerly, raising
 :class:`~fisherwalk.errors.ModelFileError` with the file and, for a failure inside the
 user's code, the line.
@@ -25,7 +31,8 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from ..errors import ModelFileError, explain
+from ..errors import FisherwalkError, ModelFileError, explain
+from ..models.numpyro_model import model_problem
 from .datafile import Table, read_table
 
 __all__ = ["ModelSpec", "load_model"]
@@ -51,6 +58,7 @@ def _file_problem(path: Path, what: str, todo: str) -> ModelFileError:
 
 
 _OPTIONAL = ("fisher", "names", "pointwise", "derived", "predict")
+_NUMPYRO = ("model", "model_args", "model_kwargs")  # a NumPyro model instead of logdensity
 
 
 def _advice(err: Exception) -> str:
@@ -100,20 +108,28 @@ def load_model(path, data=None) -> ModelSpec:
     try:
         spec.loader.exec_module(module)
     except BaseException as err:  # noqa: BLE001 - any failure of the user's code is reported
-        if isinstance(err, KeyboardInterrupt | SystemExit):
+        if isinstance(err, KeyboardInterrupt):
             raise
+        if isinstance(err, SystemExit):  # sys.exit(0) in the file must not pass for success
+            raise _file_problem(path, f"Importing it called sys.exit({err.code!r:.40}) (or "
+                                "raised SystemExit): the command would end with nothing "
+                                "written.", "remove the exit from the model file (guard "
+                                "script code with `if __name__ == \"__main__\":`).") from None
         raise _file_problem(path, f"Importing it raised {_describe(err, path)}",
                             "fix the file so that `python MODEL_FILE` runs without error."
                             ) from None
     table = None
     parts = {name: getattr(module, name) for name in ("logdensity", "initial_position",
-                                                         *_OPTIONAL) if hasattr(module, name)}
+                                                         *_OPTIONAL, *_NUMPYRO)
+             if hasattr(module, name)}
     if data is not None:
         table = read_table(data, _declared_columns(module, path))
         parts = {**parts, **_made(module, table, path)}
     elif hasattr(module, "make"):
         raise _file_problem(path, "It defines make(data), so it needs a data file.",
                             "pass the table: fisherwalk run MODEL_FILE --data table.csv.")
+    if "model" in parts and "logdensity" not in parts:
+        parts = {**parts, **_from_numpyro(parts, path)}
     missing = [n for n in ("logdensity", "initial_position") if n not in parts]
     if missing:
         raise _file_problem(path, f"It does not define {' or '.join(missing)}.",
@@ -127,6 +143,10 @@ def load_model(path, data=None) -> ModelSpec:
     try:
         value = logdensity(position)
         shape = np.shape(value)
+    except SystemExit as err:
+        raise _file_problem(path, f"logdensity(initial_position) called "
+                            f"sys.exit({err.code!r:.40}).",
+                            "remove the exit from logdensity.") from None
     except Exception as err:  # noqa: BLE001
         raise _file_problem(path, f"logdensity(initial_position) raised {_describe(err, path)}",
                             _advice(err)) from None
@@ -155,6 +175,26 @@ def load_model(path, data=None) -> ModelSpec:
                      parts.get("predict"))
 
 
+def _from_numpyro(parts: dict, path: Path) -> dict:
+    """logdensity, initial_position (and the observed sites' pointwise log likelihood)
+    of a NumPyro ``model`` with ``model_args`` and ``model_kwargs``."""
+    args, kwargs = parts.get("model_args", ()), parts.get("model_kwargs", {})
+    if not isinstance(args, tuple) or not isinstance(kwargs, dict):
+        raise _file_problem(path, f"model_args is a {type(args).__name__} and model_kwargs a "
+                            f"{type(kwargs).__name__}.",
+                            "define model_args as a tuple and model_kwargs as a dict, "
+                            "e.g. model_args = (x,) and model_kwargs = {'y': y}.")
+    try:
+        problem = model_problem(parts["model"], args, kwargs)
+    except FisherwalkError as err:
+        raise _file_problem(path, f"Its NumPyro model cannot be used: {err}",
+                            "fix the model as the message says.") from None
+    made = {"logdensity": problem.logdensity_fn, "initial_position": problem.position}
+    if problem.space.pointwise is not None and parts.get("pointwise") is None:
+        made["pointwise"] = problem.space.pointwise
+    return made
+
+
 def _declared_columns(module, path: Path) -> tuple[str, ...] | None:
     """The model file's ``columns`` (names of the data columns it needs), or None."""
     if not hasattr(module, "make"):
@@ -179,6 +219,9 @@ def _made(module, table: Table, path: Path) -> dict:
                             "define make(data) as a function.")
     try:
         made = make(dict(table.columns))
+    except SystemExit as err:
+        raise _file_problem(path, f"make(data) called sys.exit({err.code!r:.40}).",
+                            "remove the exit from make(data).") from None
     except Exception as err:  # noqa: BLE001 - any failure of the user's code is reported
         raise _file_problem(path, f"make(data) raised {_describe(err, path)}",
                             "data maps each column name of the table to a float array; "
@@ -187,9 +230,9 @@ def _made(module, table: Table, path: Path) -> dict:
         return {"logdensity": made[0], "initial_position": made[1]}
     if isinstance(made, dict):
         return {k: v for k, v in made.items() if k in ("logdensity", "initial_position",
-                                                        *_OPTIONAL)}
-    found = {k: getattr(made, k) for k in ("logdensity", "initial_position", *_OPTIONAL)
-             if hasattr(made, k)}
+                                                        *_OPTIONAL, *_NUMPYRO)}
+    found = {k: getattr(made, k) for k in ("logdensity", "initial_position", *_OPTIONAL,
+                                           *_NUMPYRO) if hasattr(made, k)}
     if found:
         return found
     raise _file_problem(path, f"make(data) returned a {type(made).__name__}.",

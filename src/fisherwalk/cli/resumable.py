@@ -17,7 +17,8 @@ from ..base.jsonio import read_json, write_json_atomic
 from ..errors import InputError, explain
 from .runrecord import sha256_file
 
-__all__ = ["PLAN_FILE", "CHECKPOINT_FOLDER", "write_plan", "read_plan", "model_facts"]
+__all__ = ["PLAN_FILE", "CHECKPOINT_FOLDER", "write_plan", "read_plan", "model_facts",
+           "claim_checkpoint"]
 
 PLAN_FILE = "command.json"
 CHECKPOINT_FOLDER = "checkpoint"
@@ -37,6 +38,25 @@ def model_facts(model) -> dict[str, Any]:
                               "sha256": model.data.sha256, "rows": model.data.rows,
                               "columns": list(model.data.columns)}
     return facts
+
+
+def claim_checkpoint(out: Path, *, model_file) -> Path:
+    """The checkpoint folder of a new ``run --checkpoint`` in ``out``, refused when ``out``
+    holds a checkpointed run already (its command.json and draws are kept: a second run
+    there would replace the provenance of the first) or when the name is not a folder."""
+    folder = out / CHECKPOINT_FOLDER
+    where = f"fisherwalk run --out {out} --checkpoint"
+    if folder.is_symlink() or (folder.exists() and not folder.is_dir()):
+        raise InputError(explain(f"{folder} exists and is not a folder.", where,
+                                 f"remove {folder} or pass another --out; nothing was "
+                                 "fitted or sampled."))
+    if (folder / "run.json").exists():
+        raise InputError(explain(
+            f"{out} holds a checkpointed run already ({folder}).", where,
+            f"finish it with: fisherwalk resume {out} --model {model_file}; or pass another "
+            "--out for a new run. Nothing was written: that run's command.json and "
+            "checkpoint are left as they were."))
+    return folder
 
 
 def write_plan(folder: Path, *, argv, options: dict, keys: dict, model,

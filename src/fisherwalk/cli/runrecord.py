@@ -119,7 +119,8 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
         "summary": result.summary.to_dict(),
         "facts": facts_record(facts),
         "sampling": {"seconds": trace.seconds, "complete": trace.complete, "thin": trace.thin,
-                     "derived": list(trace.columns()[1][len(trace.names):]),
+                     "derived": list(trace.columns()[1][_parameter_columns(trace):]),
+                     "space": _space_record(trace),
                      "pointwise_observations": None if trace.pointwise is None
                      else int(trace.pointwise.shape[-1]),
                      "draws": int(trace.flat.shape[1]),
@@ -129,18 +130,42 @@ def build_record(command: str, argv: Sequence[str], options: dict, result: RunRe
     })
 
 
+def _parameter_columns(trace) -> int:
+    """How many of trace.columns() are parameters (the model's sites, for a model with
+    a space of its own); derived quantities and predictions follow them."""
+    return len(trace.space.names) if trace.space is not None else len(trace.names)
+
+
+def _space_record(trace) -> dict | None:
+    """The model's sites for the record (None for a plain log density)."""
+    if trace.space is None:
+        return None
+    return {"language": trace.space.language,
+            "note": "draws.npz 'draws' and summary.parameters hold the sites' values "
+                    "(constrained); draws.npz 'unconstrained' and this record's laplace and "
+                    "tuning are on the sampler's unconstrained coordinates (named after "
+                    "their sites)",
+            "sites": [{"name": s.name, "shape": list(s.shape), "kind": s.kind}
+                      for s in trace.space.sites + trace.space.observed]}
+
+
 def draws_arrays(trace) -> dict[str, np.ndarray]:
-    """draws.npz's arrays: the parameters in the order the user wrote them, under the same
-    names as the summary and the record; derived quantities and predictions after them,
-    under ``derived``/``predicted`` with their own names; the sampler's statistics."""
+    """draws.npz's arrays: the parameters in the order the user wrote them (a model's
+    sites, constrained, when it has a space of its own, with the sampler's coordinates as
+    ``unconstrained``), under the same names as the summary and the record; derived
+    quantities and predictions after them, under ``derived``/``predicted`` with their own
+    names; the sampler's statistics."""
     flat, names = trace.columns()
-    dim = trace.flat.shape[-1]
+    dim = _parameter_columns(trace)
     extra = names[dim:]
     arrays = {"draws": flat[..., :dim], "names": np.asarray(names[:dim]),
               "logdensity": np.asarray(trace.logdensity),
               "accepted": np.asarray(trace.accepted),
               "acceptance_rate": np.asarray(trace.acceptance_rate),
               "faults": np.asarray(trace.faults)}
+    if trace.space is not None:
+        arrays.update(unconstrained=np.asarray(trace.flat),
+                      unconstrained_names=np.asarray(trace.names))
     for field in ("divergent", "energy", "gradients"):
         value = getattr(trace, field)
         if value is not None:

@@ -10,6 +10,7 @@ convergence test and the runaway-mode test are described in
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Callable
 from typing import Any
 
@@ -165,10 +166,48 @@ def check_end(s: Search) -> None:
             "shrinking to zero): add a proper prior, or start nearer the expected mode."))
 
 
+def _nan_gradient_near(s: Search, gradient_at) -> tuple[np.ndarray, int] | None:
+    """A point a short way from the search's end, uphill, where the gradient is not
+    finite (and which coordinate), or None: a band of NaN gradient the search could not
+    cross. Probed at 1e-3 .. 1 times max(1, |x|) along the gradient."""
+    if gradient_at is None:
+        return None
+    x, g = np.asarray(s.x, dtype=float), np.asarray(s.gradient, dtype=float)
+    norm = float(np.linalg.norm(g))
+    if not np.isfinite(norm) or norm == 0.0:
+        return None
+    scale = max(1.0, float(np.linalg.norm(x)))
+    for t in (1e-3, 3e-3, 1e-2, 3e-2, 0.1, 0.3, 1.0):
+        point = x + t * scale * g / norm
+        with contextlib.suppress(Exception):
+            grad = np.asarray(gradient_at(point))
+            bad = np.flatnonzero(~np.isfinite(grad))
+            if bad.size:
+                return point, int(bad[0])
+    return None
+
+
+def _ill_conditioned(info: np.ndarray) -> float | None:
+    """The ratio largest/smallest eigenvalue of a Fisher information whose eigenvalues are
+    all positive but too spread for float64 (the definiteness check's failure then says
+    'not positive definite' of a matrix that is, at this point, only ill-conditioned)."""
+    with contextlib.suppress(np.linalg.LinAlgError, ValueError):
+        eig, vectors = np.linalg.eigh(info)
+        v = vectors[:, 0]
+        along = float(np.sum(v**2 * np.diag(info)))  # the curvature of v's own parameters
+        # an unidentified combination is a cancellation (eig[0] far below ``along``);
+        # a funnel's smallest curvature is a parameter's own, dwarfed by the others'
+        if eig[0] > 0 and eig[0] >= 0.5 * along:
+            return float(eig[-1] / eig[0])
+    return None
+
+
 def check_search(s: Search, info: np.ndarray, x0: np.ndarray, names: tuple[str, ...],
-                  tol: float, max_iterations: int, use_hessian: bool) -> None:
+                  tol: float, max_iterations: int, use_hessian: bool,
+                  gradient_at=None) -> None:
     """Raise FitError for a non-finite end, a runaway mode, no convergence, or a Fisher
-    information that is not finite or not positive definite."""
+    information that is not finite or not positive definite. ``gradient_at(x)`` (the
+    log density's gradient) lets a search stopped by a band of NaN gradient say so."""
     where = "laplace(): the mode search"
     bad = np.argwhere(~np.isfinite(info))
     if bad.size:
@@ -194,6 +233,20 @@ def check_search(s: Search, info: np.ndarray, x0: np.ndarray, names: tuple[str, 
             "that splits the outcomes perfectly); a hierarchical scale whose density is "
             "unbounded near zero needs a non-centred parameterisation."))
     if not converged(s, info, tol):
+        band = _nan_gradient_near(s, gradient_at) if s.stalled else None
+        if band is not None:
+            point, j = band
+            raise FitError(explain(
+                f"The mode search stopped at the edge of a region where the gradient of the "
+                f"log density is NaN (not finite), though the log density is finite: at "
+                f"{names[j]} = {point[j]:.4g} the gradient component of {names[j]} is NaN, a "
+                "short way uphill from where the search stopped.",
+                f"{where}; the NaN gradient near "
+                + ", ".join(f"{names[i]} = {point[i]:.4g}" for i in range(min(len(names), 6))),
+                "make the log density differentiable there: a sqrt, log or power of a term "
+                "that reaches zero (e.g. jnp.sqrt(jnp.maximum(t, 0))) has an infinite or NaN "
+                "derivative; use a smooth form, or guard the term with jnp.where so that "
+                "both branches are differentiable."))
         gmax = float(np.max(np.abs(s.gradient)))
         threshold = tol * max(1.0, abs(float(s.logdensity)))
         decrement = _newton_decrement(s.gradient, info)
@@ -215,6 +268,19 @@ def check_search(s: Search, info: np.ndarray, x0: np.ndarray, names: tuple[str, 
             "prior; a hierarchical scale may need a non-centred parameterisation)."))
     if use_hessian:
         problem = definiteness_problem(info, names)
+        ratio = _ill_conditioned(info) if problem else None
+        if problem and ratio is not None:
+            raise FitError(explain(
+                f"The curvature of the log density at the end point spans a factor "
+                f"{ratio:.3g} between directions, more than float64 resolves: {problem}. "
+                "No single Gaussian describes the posterior there; the search ran toward a "
+                "region where its scale changes by orders of magnitude (a funnel: a "
+                "hierarchical scale and the effects it scales) and the end point is not a "
+                "mode a Laplace approximation can use.", where,
+                "reparameterise (a non-centred form: effects = scale x standard-normal "
+                "variables), or give the scale a prior that keeps it away from the funnel's "
+                "neck; the Laplace-tuned samplers need a posterior that is roughly Gaussian "
+                "at its mode."))
         if problem:
             raise FitError(explain(
                 f"The observed Fisher information (-Hessian) is not positive definite at the "

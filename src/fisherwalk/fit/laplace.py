@@ -241,7 +241,8 @@ def laplace(
     check_start(main, logdensity_fn, position, names)
     check_end(main)
     info = information(main, fisher, unravel, names)
-    check_search(main, info, np.asarray(x0), names, tol, max_iterations, use_hessian)
+    check_search(main, info, np.asarray(x0), names, tol, max_iterations, use_hessian,
+                 gradient_at=lambda x: np.asarray(jax.grad(logp)(jnp.asarray(x))))
     seconds = {"compile": compile_s, "run": run_s}
     notes: list[str] = []
     modes = [(main, info)]

@@ -42,7 +42,6 @@ APART_SPREAD = 2.0  # ... and beyond 2 within-chain standard deviations of the o
 ACCEPTANCE_NOISE = 4.0  # acceptance departs: beyond 4 Monte Carlo errors ...
 ACCEPTANCE_SLACK = 0.005  # ... plus this much
 ACCEPTANCE_MIN_DRAWS = 20  # fewer draws per chain: no acceptance rule
-BAND_KEEP = 0.8  # the tolerated band keeps this share of the best jump (theory.tolerance)
 SAME_TARGET = 5e-4  # a target within this of the Gaussian prediction is that prediction
 CORRELATION_LIMIT = 0.95  # |posterior correlation| above this is worth a word ...
 RESIDUAL_LIMIT = 0.5  # ... when the proposal leaves more than this after whitening
@@ -236,13 +235,17 @@ def separated_chains(names: Sequence[str], used: Sequence[int], chain_means: np.
     return out
 
 
-def fault_warnings(faults: np.ndarray | None) -> list[str]:
-    """Proposals rejected for a NaN or +inf log density, per chain."""
+def fault_warnings(faults: np.ndarray | None, *, gradient: bool = False) -> list[str]:
+    """Proposals rejected for a NaN or +inf log density, per chain (``gradient``: a
+    gradient sampler, whose faults are also non-finite gradients)."""
     if faults is None or not np.any(faults > 0):
         return []
     hit = [f"chain {c}: {int(faults[c])}" for c in range(faults.size) if faults[c] > 0]
+    what = ("a NaN or +inf log density, or a gradient that is not finite (NaN or inf: the "
+            "log density is not differentiable there)," if gradient
+            else "a NaN or +inf log density")
     return [_warn(
-        f"{int(faults.sum())} proposal(s) had a NaN or +inf log density and were "
+        f"{int(faults.sum())} proposal(s) had {what} and were "
         f"rejected ({', '.join(hit)}).",
         "a NaN usually means the model is evaluated outside its domain (a negative "
         "scale, the log of a negative number): sample such parameters on an "
@@ -282,7 +285,7 @@ def acceptance_warning(realised: float, error: float, target: float, draws: int,
             f"from the target {target:.3f}{at} shown above")
     rule = (f", by more than {ACCEPTANCE_NOISE:.0f} Monte Carlo errors + {ACCEPTANCE_SLACK}"
             + ("." if band is None else f", and lies outside {band[0]:.3f} to {band[1]:.3f}, "
-               "where the theory keeps 80% of the best jump."))
+               "the theory's tolerance (an acceptance that costs little efficiency)."))
     if gaussian is None or abs(gaussian - target) <= SAME_TARGET:
         return _warn(
             what + rule + " That target is what the Gaussian picture N(mode, H⁻¹) predicts "

@@ -21,6 +21,13 @@ in groups of labelled arrays with chain and draw dimensions first. The groups fi
     ``observations`` with dimension ``observation``, when the trace holds a pointwise log
     likelihood (``walk(pointwise=...)``): what ``arviz.loo`` and ``arviz.waic`` read.
 
+For a model with a space of its own (:func:`fisherwalk.model_problem`,
+:func:`fisherwalk.constrained_problem`) the posterior holds the sites' values in the
+model's order (constrained, deterministic sites beside them), ``log_likelihood`` one
+variable per observed site, filled automatically, and ``posterior_predictive`` (and
+``prior``/``prior_predictive`` when ``prior_draws`` is given) come from the model's own
+predictive draws, keyed from the run's key (:mod:`fisherwalk.models.predictive`).
+
 The run's settings (the sampler's name, its scale or step size, target acceptance,
 shape kind, thin, seconds, version) are
 the attributes of the InferenceData and of its posterior and sample_stats groups.
@@ -36,6 +43,7 @@ import numpy as np
 
 from ..base.pytrees import path_parts
 from ..errors import InputError, explain
+from ..models.predictive import predictive_groups
 from .facts import in_written_order
 
 __all__ = ["to_arviz", "leaf_variables", "settings"]
@@ -97,13 +105,17 @@ def settings(trace) -> dict[str, Any]:
     }
 
 
-def to_arviz(trace):
+def to_arviz(trace, *, predictive: bool = True, prior_draws: int = 0):
     """The run as ``arviz.InferenceData`` (groups described in the module docstring).
 
     Parameters
     ----------
     trace
         A :class:`fisherwalk.Trace` with at least one kept draw.
+    predictive
+        For a model with predictive draws (NumPyro): fill ``posterior_predictive``.
+    prior_draws
+        For such a model: this many prior draws in ``prior`` and ``prior_predictive``.
 
     Returns
     -------
@@ -119,7 +131,9 @@ def to_arviz(trace):
     if trace.draws is None or trace.flat.shape[1] == 0:
         raise InputError(explain("The trace holds no draws.", "Trace.to_arviz()",
                                  "hand over a trace with at least one kept draw."))
-    posterior = _written(leaf_variables(trace.draws, bare="x"), trace)
+    # a model's own space: its sites in the model's order (trace.draws is ordered)
+    posterior = (dict(trace.draws) if trace.space is not None
+                 else _written(leaf_variables(trace.draws, bare="x"), trace))
     if trace.derived is not None:
         extra = leaf_variables(trace.derived, bare="derived")
         clash = sorted(set(extra) & set(posterior))
@@ -145,9 +159,11 @@ def to_arviz(trace):
     if trace.predictions is not None:
         groups["posterior_predictive"] = leaf_variables(trace.predictions, bare="predicted")
     dims = {}
-    if trace.pointwise is not None:
+    extra = predictive_groups(trace, predictive, prior_draws)  # {} for a plain model
+    if trace.pointwise is not None and "log_likelihood" not in extra:
         groups["log_likelihood"] = {"observations": np.asarray(trace.pointwise)}
         dims["observations"] = ["observation"]
+    groups.update(extra)
     attrs = settings(trace)
     return arviz.from_dict(**groups, dims=dims, attrs=dict(attrs),
                            posterior_attrs=dict(attrs), sample_stats_attrs=dict(attrs))

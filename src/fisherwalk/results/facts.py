@@ -29,7 +29,7 @@ class RunFacts(NamedTuple):
     aim: float  # the acceptance the sampler aimed for (the warm-up's target, else predicted)
     predicted_acceptance: float  # the Gaussian picture's acceptance at ``setting``
     predicted_jump: float | None  # expected squared whitened jump per step (all directions)
-    acceptance_band: tuple[float, float]  # acceptances keeping 80% of the best jump
+    acceptance_band: tuple[float, float]  # the theory's tolerance (theory.tolerance)
     shape: np.ndarray  # (d, d) S of the proposal or metric
     whitening: np.ndarray  # (d, d) lower L, L Lᵀ = the precision the walker believes
     shape_kind: str  # "fisher", "diagonal", "identity", "user", "saved" or "warm-up"

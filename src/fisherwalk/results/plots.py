@@ -84,6 +84,13 @@ def _labels(trace, labels: Sequence[str] | None) -> list[str]:
             for name, label in zip(names, labels, strict=True)]
 
 
+def _matches(names: list[str], text: Any) -> bool:
+    try:
+        return bool(focus_indices(names, text))
+    except InputError:
+        return False
+
+
 def panels(trace, focus: Any = None, max_panels: int = MAX_PANELS) -> tuple[list[int], str]:
     """The parameters a figure shows, as indices into ``trace.flat``, in written order, and
     a note for the title. ``focus`` chooses them (:mod:`fisherwalk.results.focus`); with
@@ -93,8 +100,12 @@ def panels(trace, focus: Any = None, max_panels: int = MAX_PANELS) -> tuple[list
     dim = flat.shape[2]
     order = in_written_order(trace.facts.order, dim)
     written = [trace.names[j] for j in order]
-    if focus is not None:
-        chosen = focus_indices(written, focus, where="plots (focus=...)")
+    if focus is not None:  # derived quantities and predictions have no panels: skipped
+        texts = [focus] if isinstance(focus, str) else list(focus)
+        chosen = sorted({j for text in texts if _matches(written, text)
+                         for j in focus_indices(written, text, where="plots (focus=...)")})
+        if not chosen:
+            focus_indices(written, focus, where="plots (focus=...)")  # refuse, naming them
         note = f" ({len(chosen[:max_panels])} chosen of {dim} parameters)"
         return [int(order[j]) for j in chosen[:max_panels]], note
     if dim <= max_panels:
@@ -109,6 +120,14 @@ def panels(trace, focus: Any = None, max_panels: int = MAX_PANELS) -> tuple[list
     note = (f" ({len(picked)} of {dim} parameters: worst R-hat, lowest ESS, "
             "group-level scales)")
     return [int(order[j]) for j in picked], note
+
+
+def _space(trace, sites: bool) -> str:
+    """Which space a figure is in, for a model with a space of its own ('' otherwise)."""
+    if trace.space is None:
+        return ""
+    return ("\n(the model's sites, constrained values)" if sites
+            else "\n(the sampler's unconstrained coordinates, where the Laplace fit lives)")
 
 
 def _grid(fig, count: int):
@@ -179,10 +198,17 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
     matplotlib.figure.Figure
     """
     flat = np.asarray(trace.flat)
-    chains, draws, dim = flat.shape
-    chosen, note = panels(trace, focus, max_panels)
     names = _labels(trace, labels)
     mode, _ = _laplace_moments(trace)
+    if trace.space is not None:  # a model's own space (fisherwalk.models): the sites' values
+        flat, site_names = trace.columns()
+        names, mode = list(site_names), None
+        chosen = (list(range(len(names))) if focus is None
+                  else focus_indices(names, focus, where="plots (focus=...)"))[:max_panels]
+        note = f" ({len(chosen)} of {len(names)} sites)" if len(chosen) < len(names) else ""
+    else:
+        chosen, note = panels(trace, focus, max_panels)
+    chains, draws, dim = flat.shape
     fig = _figure(*_panel_size(len(chosen)))
     every = max(1, math.ceil(draws / max_points))
     steps = np.arange(0, draws, every) * trace.thin
@@ -193,14 +219,16 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
             ax.plot(steps, flat[c, ::every, i], lw=0.5, alpha=0.75,
                     color=_CHAIN_COLOURS[c % len(_CHAIN_COLOURS)],
                     label=f"chain {c}" if k == 0 else None)
-        ax.axhline(mode[i], color="black", ls="--", lw=0.9,
-                   label="Laplace mode" if k == 0 else None)
+        if mode is not None:
+            ax.axhline(mode[i], color="black", ls="--", lw=0.9,
+                       label="Laplace mode" if k == 0 else None)
         ax.set_title(names[i], fontsize=9)
         ax.set_xlabel("step after warm-up" if trace.facts.warmed else "step (no warm-up)",
                       fontsize=8)
         ax.set_ylabel("value", fontsize=8)
     _legend(fig, min(chains + 1, 9))
-    fig.suptitle(f"Chain traces: {chains} chains x {draws} draws{note}", fontsize=11)
+    fig.suptitle(f"Chain traces: {chains} chains x {draws} draws{note}{_space(trace, True)}",
+                 fontsize=11)
     _save(fig, path)
     return fig
 
@@ -378,7 +406,7 @@ def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
         ax.set_ylabel("density", fontsize=8)
     _legend(fig, 3)
     fig.suptitle(f"Marginals of {chains * draws} draws against the Laplace approximation"
-                 f"{note}", fontsize=11)
+                 f"{note}{_space(trace, False)}", fontsize=11)
     _save(fig, path)
     return fig
 
@@ -425,7 +453,7 @@ def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = Non
         ax.set_ylabel("autocorrelation", fontsize=8)
     _legend(fig, 2)
     fig.suptitle(f"Autocorrelation by lag, mean over {chains} chains; τ: integrated "
-                 f"autocorrelation time{note}", fontsize=11)
+                 f"autocorrelation time{note}{_space(trace, False)}", fontsize=11)
     _save(fig, path)
     return fig
 

@@ -306,6 +306,7 @@ def summarize(
     setting_label: str = "scale",
     acceptance_band: tuple[float, float] | None = None,
     jump_dim: int | None = None,
+    gradient_faults: bool = False,
 ) -> Summary:
     """Summarise draws ``(chains, draws, d)`` named ``names`` into a :class:`Summary`.
 
@@ -331,6 +332,8 @@ def summarize(
         When it is None and ``cholesky`` (L with L Lᵀ = H) is given, it is measured
         from the draws with :func:`fisherwalk.results.diagnostics.whitened_jump`.
     faults : (chains,) counts of proposals rejected for a NaN or +inf log density.
+    gradient_faults : the faults of a gradient sampler, which also count non-finite
+        gradients (the warning names both).
     header_notes : extra lines for the header (e.g. the model and the seed).
     proposal_shape : the walker's (d, d) shape S; the proposal's correlations come from
         S Sᵀ and feed the correlation warning (none without it).
@@ -434,7 +437,7 @@ def summarize(
     warnings += alerts.separated_chains(names, used, per_chain["chain_means"],
                                         per_chain["chain_sds"], per_chain["chain_mcse"],
                                         frozen)
-    warnings += alerts.fault_warnings(faults)
+    warnings += alerts.fault_warnings(faults, gradient=gradient_faults)
     pooled = None if acceptance is None else float(acceptance.mean())
     acceptance_mcse = None if steps is None else _acceptance_error(steps)
     if pooled is not None and acceptance_mcse is not None and target_acceptance is not None:

@@ -177,8 +177,8 @@ def _acceptance_lines(s) -> list[str]:
             lines.append(("predicted", f"{gaussian:.3f} (the Gaussian picture{at})"))
     if s.acceptance_band is not None:
         low, high = s.acceptance_band
-        lines.append(("tolerated", f"{low:.3f} to {high:.3f} (where the theory keeps "
-                      f"{alerts.BAND_KEEP:.0%} of the best jump; no warning inside it)"))
+        lines.append(("tolerated", f"{low:.3f} to {high:.3f} (the theory's tolerance: an "
+                      "acceptance that costs little efficiency; no warning inside it)"))
     return [f"  {title:<11} {text}" for title, text in lines]
 
 

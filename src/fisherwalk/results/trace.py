@@ -15,6 +15,7 @@ import jax
 import numpy as np
 
 from ..base.pytrees import parameter_names, ravel_batch
+from ..models.space import space_note
 from .alerts import divergence_warning
 from .coverage import mode_caveats
 from .diagnostics import whitened_jump
@@ -54,19 +55,35 @@ class Trace(NamedTuple):
     predictions: Any = None  # walk(predict=...) pytree, leaves with leading (chains, draws)
     predictions_order: tuple[int, ...] = ()  # prediction columns in written order
     energy: np.ndarray | None = None  # (chains, draws) Hamiltonian energy (HMC, NUTS)
+    failures: tuple = ()  # pointwise/derived evaluations that failed (run.derive.EvaluationFailure)
+    # The model's own space (fisherwalk.models.space.Space) when the log density came from
+    # model_problem / constrained_problem: `draws` then holds every site's value in the
+    # model's order (deterministic sites included) while `flat` stays on the unconstrained
+    # space the sampler moved on; the summary, plots and to_arviz() show the sites.
+    space: Any = None
 
     @property
     def names(self) -> tuple[str, ...]:
         """Parameter names in ravelled order (the order of ``flat``)."""
         return self.facts.names
 
+    @property
+    def unconstrained(self) -> Any:
+        """The draws on the sampler's space in the position's pytree (the same as
+        ``draws`` unless the model has a space of its own)."""
+        return self.walker.unravel_many(self.flat) if self.space is not None else self.draws
+
     def columns(self) -> tuple[np.ndarray, tuple[str, ...]]:
         """Every summarised column in written order, ``(chains, draws, d + k)``, and the
-        names: the parameters, then the derived quantities (``walk(derived=...)``), then
-        the predictions (``walk(predict=...)``), each in the order the user wrote them."""
-        dim = self.flat.shape[-1]
-        order = in_written_order(self.facts.order, dim)
-        parts, names = [self.flat[..., order]], [self.names[j] for j in order]
+        names: the parameters (with a model space, the model's sites, constrained, in the
+        model's order), then the derived quantities (``walk(derived=...)``), then the
+        predictions (``walk(predict=...)``), each in the order the user wrote them."""
+        if self.space is not None and self.draws is not None:
+            parts = [self.space.columns(self.draws).astype(self.flat.dtype)]
+            names = list(self.space.names)
+        else:
+            order = in_written_order(self.facts.order, self.flat.shape[-1])
+            parts, names = [self.flat[..., order]], [self.names[j] for j in order]
         for tree, written, bare in ((self.derived, self.derived_order, "derived"),
                                     (self.predictions, self.predictions_order, "predicted")):
             if tree is None:
@@ -79,12 +96,13 @@ class Trace(NamedTuple):
         values = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=-1)
         return values, tuple(names)
 
-    def to_arviz(self):
+    def to_arviz(self, *, predictive: bool = True, prior_draws: int = 0):
         """The run as ArviZ ``InferenceData`` (:func:`fisherwalk.results.export.to_arviz`;
-        needs the optional extra ``arviz``)."""
+        needs the optional extra ``arviz``). For a NumPyro model, ``predictive`` fills
+        ``posterior_predictive`` and ``prior_draws`` > 0 adds that many prior draws."""
         from .export import to_arviz
 
-        return to_arviz(self)
+        return to_arviz(self, predictive=predictive, prior_draws=prior_draws)
 
     def summary(self, interval: float = 0.9, focus: Any = None):
         """The diagnostics table (:class:`fisherwalk.results.report.Summary`; print it).
@@ -112,11 +130,13 @@ class Trace(NamedTuple):
             header += (f"realised jump per step converted from draws kept every {self.thin} "
                        "steps (AR(1) picture: E|x(t+k) - x(t)|² = 2(1 - (1 - J/2)^k) per "
                        "whitened direction)",)
+        if self.space is not None:  # which space the figures are in
+            header += (space_note(self.space),)
         flat, names = self.columns()
-        dim = self.flat.shape[-1]
+        dim = self.flat.shape[-1]  # the sampler's coordinates
         order = in_written_order(facts.order, dim)
         keep = focus_indices(names, focus, where="Trace.summary(focus=...)")
-        params = [j for j in keep if j < dim]
+        params = [] if self.space is not None else [j for j in keep if j < dim]
         if focus is not None:
             header += (f"focus: {len(keep)} of {len(names)} columns shown "
                        f"({', '.join(map(repr, _focus_texts(focus)))})",)
@@ -132,7 +152,9 @@ class Trace(NamedTuple):
             predicted_jump=facts.predicted_jump,
             realised_jump=realised,
             faults=self.faults.sum(axis=1),
+            gradient_faults=self.gradients is not None,
             header_notes=header,
+            # the correlation check compares the draws with the proposal: sampler's space only
             proposal_shape=shape,
             seconds=self.seconds if self.seconds > 0 else None,
             sampler=facts.title,
@@ -146,7 +168,13 @@ class Trace(NamedTuple):
         text = divergence_warning(self.divergent)
         if text:
             summary = summary._replace(warnings=summary.warnings + (text,))
-        if modes:
+        for failure in self.failures:  # walk(pointwise=/derived=) failed after sampling
+            summary = summary._replace(warnings=summary.warnings + (
+                f"walk({failure.function}=...) failed after sampling; its values are not "
+                f"stored (trace.failures): {failure.message}",))
+        if modes and self.space is not None:  # rows are sites, not the sampler's coordinates
+            summary = summary._replace(warnings=summary.warnings + (modes,))
+        elif modes:
             shown = tuple(flags[int(order[j])] if j < dim else "" for j in keep)
             summary = summary._replace(warnings=summary.warnings + (modes,), flags=shown)
         return summary

@@ -16,9 +16,12 @@
     The kept draws, log densities, acceptance indicators, acceptance rates and faults
     of draws ``[start, stop)``, written once each.
 ``writer.lock``
-    Present while a run writes the directory (:mod:`fisherwalk.base.lock`): a second
-    writer is refused, naming the first. A lock left by a run that died on this host is
-    reported as stale and broken only when asked (``walk(..., checkpoint_reclaim=True)``).
+    The kernel's advisory lock of the run that writes the directory
+    (:mod:`fisherwalk.base.lock`): a second writer is refused, naming the first. The
+    kernel releases it when its owner ends, however it ends, so a killed run's
+    checkpoint continues with no flag. (A pid-file lock of an older fisherwalk whose
+    owner died is reported as stale and broken only when asked,
+    ``walk(..., checkpoint_reclaim=True)``.)
 
 Every file is written through :func:`fisherwalk.base.files.write_atomic` (an
 unpredictable temporary name created exclusively, never through a link, ``fsync``-ed
@@ -66,13 +69,26 @@ from ..base.files import check_folder, fsync_folder, read_bytes, write_atomic
 from ..base.jsonio import decode_array, dumps, encode_array, read_json, write_json_atomic
 from ..base.keys import key_data
 from ..base.lock import LOCK_FILE, Lock, acquire_lock
+from ..base.meshes import failed_processes
 from ..base.pytrees import name_difference
 from ..errors import CheckpointError, FisherwalkWarning, explain
 from .engine import ChainState
+from .segments import (
+    ARRAYS,
+    changed_field,
+    digest,
+    segment_bytes,
+    segment_data,
+    segment_layout,
+    segment_text,
+    state_bytes,
+    whitened_digests,
+)
 from .tuningfile import MAX_RECORD_BYTES, tuning_record
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
-           "decode_state", "damaged", "whitened_state", "MAX_CHAINS"]
+           "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "open_store",
+           "check_start_whitened"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
@@ -80,12 +96,10 @@ DEFAULT_EVERY = 10.0  # seconds between saves
 RUN_FILE = "run.json"
 STATE_FILE = "state.json"
 MAX_CHAINS = 1_000_000
-_MAX_STATE_BYTES = 2**31
 _SEGMENT = "segment-{:06d}.npz"
 _SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
 _TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
-_ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")
+
 
 
 # ----------------------------------------------------------------------------- files
@@ -146,19 +160,29 @@ def decode_state(content: Any, file: Path, dtype, chains: int, dim: int
     return position, logdensity
 
 
-def _digest(array: Any) -> str:
-    a = np.ascontiguousarray(np.asarray(array))
-    h = hashlib.sha256()
-    h.update(a.dtype.str.encode())
-    h.update(repr(a.shape).encode())
-    h.update(a.tobytes())
-    return h.hexdigest()
-
-
-def _segment_bytes(chains: int, draws: int, dim: int, itemsize: int) -> int:
-    """An upper bound on the size of a segment file of ``draws`` draws (uncompressed
-    .npz: the arrays, their headers and the zip directory)."""
-    return chains * draws * (dim * itemsize + 3 * itemsize + 4) + 64 * 1024
+def open_store(path, walker, rng_key, draws: int, thin: int, chunk: int, *,
+                every: float = DEFAULT_EVERY, reclaim: bool = False) -> Store:
+    """:class:`Store`, opened on every process of a ``jax.distributed`` run together: each
+    process reports whether it opened its checkpoint (one tiny all-gather,
+    :func:`fisherwalk.base.meshes.failed_processes`), so that when one is refused (its
+    lock held by another process given the same folder, a damaged file, ...) it ends with
+    its own error and the others end too, naming it, instead of waiting for it in the
+    sampling's collectives until killed. With one process, just :class:`Store`."""
+    try:
+        store = Store(path, walker, rng_key, draws, thin, chunk, every=every, reclaim=reclaim)
+    except Exception:
+        failed_processes(False)  # tell the others, then end with this process's error
+        raise
+    failed = failed_processes(True)
+    if failed:
+        store.close()
+        raise CheckpointError(explain(
+            f"Process(es) {', '.join(map(str, failed))} of this jax.distributed run could "
+            "not open their checkpoint; this process stops too, instead of waiting for "
+            "them.", f"walk(checkpoint={os.fspath(path)!r}), process {jax.process_index()}",
+            "see the error of the process(es) named; give each process its own checkpoint "
+            "folder, e.g. checkpoint=f\"run.ckpt/{jax.process_index()}\"."))
+    return store
 
 
 # ----------------------------------------------------------------------------- identity
@@ -182,11 +206,23 @@ def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
         "tuning": {name: value,
                    "target_acceptance": float(tuning.target_acceptance),
                    "shape_kind": str(tuning.shape_kind)},
-        "digests": {"factor": _digest(np.asarray(tuning.shape) * value),
-                    "mode": _digest(walker.report.laplace.mode_flat),
-                    "states": _digest(positions) + _digest(logdensity),
-                    "record": _record_digest(tuning_record(walker))},
+        "digests": {"factor": digest(np.asarray(tuning.shape) * value),
+                    "mode": digest(walker.report.laplace.mode_flat),
+                    "states": digest(positions) + digest(logdensity),
+                    "record": _record_digest(tuning_record(walker)),
+                    **({"whitened": whitened_digests(walker.state)}
+                       if walker.family.stores_state else {})},
     }
+
+
+def _legacy_fingerprint(identity: dict) -> str | None:
+    """The fingerprint of ``identity`` as a fisherwalk before the whitened digests wrote
+    it (None when there is nothing to drop)."""
+    digests = identity.get("digests") or {}
+    if "whitened" not in digests:
+        return None
+    return _fingerprint({**identity, "digests": {k: v for k, v in digests.items()
+                                                 if k != "whitened"}})
 
 
 def _record_digest(record: dict) -> str:
@@ -284,6 +320,7 @@ class Store:
         self._segments = 0
         self._digests: list[str] = []
         self._last = time.monotonic()
+        self._saved_whitened: str | None = None
         self.lock: Lock | None = None
         # a family whose chain state holds more than the kept draw (a gradient family's
         # whitened position, log density and gradient) has it saved whole, exactly
@@ -337,6 +374,12 @@ class Store:
         run_file = p / RUN_FILE
         if RUN_FILE in names:
             run = read_checkpoint_json(run_file, max_bytes=2 * MAX_RECORD_BYTES)
+            if run["fingerprint"] == _legacy_fingerprint(self.identity):
+                # written before the whitened starting states were digested: this walker's
+                # own state is used, so nothing in run.json's start reaches the chains
+                self.identity = {**self.identity, "digests": {
+                    k: v for k, v in self.identity["digests"].items() if k != "whitened"}}
+                self.fingerprint = run["fingerprint"]
             if run["fingerprint"] != self.fingerprint:
                 there = run.get("identity") if isinstance(run.get("identity"), dict) else {}
                 diffs = _differences(there, self.identity) or ["its fingerprint differs"]
@@ -382,7 +425,8 @@ class Store:
             if any(_SEGMENT_RE.match(f) for f in os.listdir(self.path)):
                 raise damaged(file, "it is missing while segment files exist")
             return None  # the process stopped before its first save
-        state = read_checkpoint_json(file, max_bytes=_MAX_STATE_BYTES)
+        state = read_checkpoint_json(file, max_bytes=state_bytes(chains, dim, self.draws,
+                                                                 self.chunk))
         if state["fingerprint"] != self.fingerprint:
             raise damaged(file, "it was written for another run than run.json")
         done, digests = state.get("done"), state.get("digests")
@@ -407,7 +451,7 @@ class Store:
     def _load_segment(self, index: int, start: int, digest: str, collector) -> int:
         file = self.path / _SEGMENT.format(index)
         chains, draws, dim = collector.flat.shape
-        limit = _segment_bytes(chains, draws - start, dim, collector.flat.itemsize)
+        limit = segment_bytes(segment_layout(collector, start, draws))
         if not file.exists():
             raise damaged(file, "the segment file is missing")
         try:
@@ -421,7 +465,10 @@ class Store:
         try:
             with np.load(io.BytesIO(data), allow_pickle=False) as content:
                 arrays = {name: content[name]
-                          for name in (*_ARRAYS, "start", "stop", "fingerprint")}
+                          for name in (*ARRAYS, "start", "stop", "fingerprint")}
+                # "" in segments written before the whitened state was digested
+                self._saved_whitened = segment_text(content["whitened"]) \
+                    if "whitened" in content.files else None
         except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
             raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
         if str(arrays["fingerprint"]) != self.fingerprint:
@@ -429,7 +476,7 @@ class Store:
         first, stop = int(arrays["start"]), int(arrays["stop"])
         if first != start or not start < stop <= self.draws:
             raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
-        for name in _ARRAYS:
+        for name in ARRAYS:
             target = getattr(collector, name)
             value = arrays[name]
             expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
@@ -449,8 +496,8 @@ class Store:
             return state
         done, digests = saved["done"], saved["digests"]
         stop = 0
-        for index, digest in enumerate(digests):
-            stop = self._load_segment(index, stop, digest, collector)
+        for index, recorded in enumerate(digests):
+            stop = self._load_segment(index, stop, recorded, collector)
         state_file = self.path / STATE_FILE
         if stop != done:
             raise damaged(state_file, f"it counts {done} draws, the segments hold {stop}")
@@ -470,8 +517,16 @@ class Store:
                           jnp.asarray(collector.logdensity[:, done - 1]))
 
     def _whitened(self, saved: dict, state, chains: int, dim: int):
-        return whitened_state(saved.get("whitened"), state, chains, dim, str(self._dtype),
-                              self.path / STATE_FILE)
+        file = self.path / STATE_FILE
+        restored = whitened_state(saved.get("whitened"), state, chains, dim,
+                                  str(self._dtype), file)
+        if self._saved_whitened is not None:  # the last segment records what was saved with it
+            field = changed_field(self._saved_whitened, restored, "whitened.")
+            if field is not None:
+                raise damaged(file, f"'{field}' is not the gradient sampler's state saved "
+                                    "with the last segment (its SHA-256 differs): the file "
+                                    "was edited")
+        return restored
 
     def _tidy(self) -> None:
         """Remove temporary files and segments no state file counts (a process died
@@ -498,12 +553,8 @@ class Store:
         if not force and done < self.draws and now - self._last < self.every:
             return
         start, index = self._done, self._segments
-        arrays = {name: getattr(collector, name)[:, start:done] for name in _ARRAYS}
-        arrays.update(start=np.int64(start), stop=np.int64(done),
-                      fingerprint=np.array(self.fingerprint))
-        buffer = io.BytesIO()
-        np.savez(buffer, **arrays)
-        data = buffer.getvalue()
+        data = segment_data(collector, start, done, self.fingerprint,
+                            whitened_digests(state if self._whole_state else None))
         write_atomic(self.path / _SEGMENT.format(index), lambda handle: handle.write(data),
                      error=CheckpointError, where=self._where())
         digests = [*self._digests, hashlib.sha256(data).hexdigest()]
@@ -522,6 +573,20 @@ class Store:
             else {f: encode_array(getattr(state, f)) for f in state._fields},
         }, indent=None, error=CheckpointError, where=self._where())
         self._done, self._segments, self._digests, self._last = done, index + 1, digests, now
+
+
+def check_start_whitened(run: dict, state, run_file: Path) -> None:
+    """Refuse a run file whose ``start.whitened`` fields (decoded into ``state``) are not
+    the ones digested in its identity when the run began, naming the field."""
+    identity = run.get("identity") if isinstance(run.get("identity"), dict) else {}
+    recorded = (identity.get("digests") or {}).get("whitened")
+    if recorded is None:
+        return  # written before the digests: the fingerprint check of walk() applies
+    field = changed_field(str(recorded), state, "start.whitened.")
+    if field is not None:
+        raise damaged(run_file, f"'{field}' is not the chains' starting state the run began "
+                                "with (its SHA-256 differs from identity.digests.whitened): "
+                                "the file was edited")
 
 
 def whitened_state(content, state, chains: int, dim: int, dtype: str, state_file: Path):

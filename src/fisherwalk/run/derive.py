@@ -21,26 +21,46 @@ function compiles once.
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Callable
-from typing import Any
+from typing import Any, NamedTuple
 
 import jax
 import numpy as np
 
 from ..base.keys import as_key
 from ..base.pytrees import written_order
-from ..errors import InputError, ModelError, explain
+from ..errors import FisherwalkWarning, InputError, ModelError, explain
 from ..results.export import leaf_variables
 from ..results.trace import derived_names
 
 __all__ = ["check_functions", "evaluate_draws", "evaluate_pointwise", "evaluate_derived",
            "evaluate_predictions", "prediction_keys", "attach", "CHUNK_VALUES",
-           "PREDICT_STREAM"]
+           "PREDICT_STREAM", "EvaluationFailure", "NonFiniteValues"]
 
 PREDICT_STREAM = 0x5052  # folded into the run's key before the draws' indices: predictions
 _KEY_SHAPE = (2,)  # key data of JAX's default threefry key
 
 CHUNK_VALUES = 1 << 22  # output values per chunk (32 MiB in float64): bounds the memory
+
+
+class EvaluationFailure(NamedTuple):
+    """A function of the draws that failed after sampling (``trace.failures``); the draws
+    are kept, the function's values are not stored."""
+
+    function: str  # "pointwise" or "derived"
+    draws: tuple  # ((chain, draw), ...) with non-finite values (at most 20); () if it raised
+    count: int  # kept draws with a non-finite value (0 when the function raised)
+    message: str  # what happened, where, what to do
+
+
+class NonFiniteValues(ModelError):
+    """A function of the draws returned non-finite values; ``draws`` holds the
+    (chain, draw) pairs (the first 20) and ``count`` how many."""
+
+    def __init__(self, message: str, draws: tuple, count: int):
+        super().__init__(message)
+        self.draws, self.count = draws, count
 
 
 def _chunk_size(per_draw: int, total: int) -> int:
@@ -85,18 +105,27 @@ def _shapes(fn: Callable, dim: int, dtype, unravel: Callable, where: str, *,
 
 
 def check_functions(walker, *, pointwise: Callable | None, derived: Callable | None,
-                    predict: Callable | None = None) -> None:
+                    predict: Callable | None = None) -> tuple[int, int]:
     """Before sampling: each given function must accept a position of the walker's model
     (``predict`` also a key) and return numeric arrays (the pointwise log likelihood a
-    vector); traced, not run."""
+    vector); traced, not run. Returns the values per draw stored (pointwise, derived and
+    predictions together), for the memory check."""
     dim, dtype = walker.dim, np.asarray(walker.state.position).dtype
+    counts = [0, 0]
     if pointwise is not None:
         shapes = _shapes(pointwise, dim, dtype, walker.unravel, "walk(pointwise=...)")
         _check_vector(shapes)
+        counts[0] = math.prod(shapes.shape)
     if derived is not None:
-        _shapes(derived, dim, dtype, walker.unravel, "walk(derived=...)")
+        shapes = _shapes(derived, dim, dtype, walker.unravel, "walk(derived=...)")
+        counts[1] = sum(math.prod(leaf.shape) for leaf in jax.tree_util.tree_leaves(shapes))
+        # the names clash check on zeros of the output's shapes (one draw of one chain)
+        _check_names(jax.tree.map(lambda leaf: np.zeros((1, 1, *leaf.shape)), shapes),
+                     walker.unravel(np.zeros(dim, dtype)), tuple(walker.names))
     if predict is not None:
-        _shapes(predict, dim, dtype, walker.unravel, "walk(predict=...)", keyed=True)
+        shapes = _shapes(predict, dim, dtype, walker.unravel, "walk(predict=...)", keyed=True)
+        counts[1] += sum(math.prod(leaf.shape) for leaf in jax.tree_util.tree_leaves(shapes))
+    return counts[0], counts[1]
 
 
 def _check_vector(shapes) -> None:
@@ -154,11 +183,12 @@ def evaluate_draws(fn: Callable, flat: np.ndarray, unravel: Callable, *, where: 
         bad = np.flatnonzero(~np.isfinite(array.reshape(total, -1)).all(axis=1))
         if bad.size:
             c, s = divmod(int(bad[0]), count)
-            raise ModelError(explain(
+            raise NonFiniteValues(explain(
                 f"The function returned a non-finite value (leaf {index}) at {bad.size} "
                 f"draw(s), the first at chain {c}, draw {s}.", where,
                 "guard the function where the parameters make it undefined (e.g. a log of "
-                "a negative number), or transform the parameters."))
+                "a negative number), or transform the parameters."),
+                tuple(divmod(int(b), count) for b in bad[:20]), int(bad.size))
     leaves_out = [array.reshape(chains, count, *array.shape[1:]) for array in out]
     return jax.tree_util.tree_unflatten(treedef, leaves_out)
 
@@ -176,7 +206,12 @@ def evaluate_derived(fn: Callable, flat: np.ndarray, unravel: Callable,
     names must differ from the parameters' ``names``, and their leaves' names from the
     position's leaves (ArviZ keeps both as variables of one posterior)."""
     values = evaluate_draws(fn, flat, unravel, where="walk(derived=...)", written=written)
-    leaves = set(leaf_variables(unravel(np.asarray(flat)[0, 0]), bare="x"))
+    _check_names(values, unravel(np.asarray(flat)[0, 0]), names)
+    return values
+
+
+def _check_names(values, position, names: tuple[str, ...]) -> None:
+    leaves = set(leaf_variables(position, bare="x"))
     clash = sorted((set(derived_names(values)) & set(names))
                    | (set(leaf_variables(values, bare="derived")) & leaves))
     if clash:
@@ -184,7 +219,6 @@ def evaluate_derived(fn: Callable, flat: np.ndarray, unravel: Callable,
             f"Derived quantities {', '.join(clash[:6])} have the names of parameters.",
             "walk(derived=...)", "name the derived quantities differently, e.g. "
             "{'k': jnp.exp(p['log_k'])}."))
-    return values
 
 
 def prediction_keys(rng_key, chains: int, draws: int) -> np.ndarray:
@@ -213,23 +247,55 @@ def evaluate_predictions(fn: Callable, flat: np.ndarray, unravel: Callable, rng_
 def attach(trace, *, pointwise: Callable | None = None, derived: Callable | None = None,
            predict: Callable | None = None):
     """The trace with its pointwise log likelihood, derived quantities and/or predictions
-    evaluated on its kept draws (the other fields unchanged)."""
+    evaluated on its kept draws (the other fields unchanged).
+
+    A function that fails (non-finite values at some draws, or an exception) does not
+    lose the draws: its values are not stored, a warning says what happened, and
+    ``trace.failures`` holds an :class:`EvaluationFailure` naming the function and the
+    draws."""
     if trace.flat.shape[1] == 0:
         return trace
     unravel = trace.walker.unravel
-    changes: dict[str, Any] = {}
-    if pointwise is not None:
-        changes["pointwise"] = evaluate_pointwise(pointwise, trace.flat, unravel)
-    if derived is not None:
-        written: list[int] = []
-        changes["derived"] = evaluate_derived(derived, trace.flat, unravel, trace.names,
-                                              written)
-        changes["derived_order"] = tuple(written)
-    if predict is not None:
-        written = []
+    changes, failures = {}, list(trace.failures)
+    orders: dict[str, list[int]] = {"derived": [], "predictions": []}
+
+    def predictions(fn):
         key = jax.random.wrap_key_data(np.asarray(trace.rng_key, dtype=np.uint32))
-        changes["predictions"] = evaluate_predictions(predict, trace.flat, unravel, key,
-                                                      written)
-        changes["predictions_order"] = tuple(written)
-    return trace._replace(**changes)
+        return evaluate_predictions(fn, trace.flat, unravel, key, orders["predictions"])
+
+    jobs = [("pointwise", pointwise, lambda fn: evaluate_pointwise(fn, trace.flat, unravel)),
+            ("derived", derived,
+             lambda fn: evaluate_derived(fn, trace.flat, unravel, trace.names,
+                                         orders["derived"])),
+            ("predictions", predict, predictions)]
+    for name, fn, evaluate in jobs:
+        if fn is None:
+            continue
+        argument = "predict" if name == "predictions" else name
+        try:
+            changes[name] = evaluate(fn)
+        except NonFiniteValues as err:
+            failures.append(EvaluationFailure(argument, err.draws, err.count, str(err)))
+        except Exception as err:  # noqa: BLE001 - the user's function: keep the draws
+            message = str(err) if isinstance(err, InputError | ModelError) else explain(
+                f"The function raised {type(err).__name__}: {err}", f"walk({argument}=...)",
+                "fix the function; the draws are kept in the returned Trace (call "
+                f"fisherwalk.run.derive.attach(trace, {argument}=fn) to evaluate it again).")
+            failures.append(EvaluationFailure(argument, (), 0, message))
+        else:
+            if name in orders:
+                changes[f"{name}_order"] = tuple(orders[name])
+            continue
+        warnings.warn(f"walk({argument}=...) failed after sampling; the draws are kept and "
+                      f"trace.{name} is not set (trace.failures says where).\n"
+                      f"{failures[-1].message}", FisherwalkWarning, stacklevel=3)
+    space = trace.space
+    if space is not None:  # a model's own space (fisherwalk.models): its sites' values
+        where = f"the map to the model's sites ({space.language})"
+        changes["draws"] = space.ordered(evaluate_draws(space.constrain, trace.flat, unravel,
+                                                        where=where))
+        if pointwise is None and space.pointwise is not None:  # the observed sites'
+            changes["pointwise"] = evaluate_draws(space.pointwise, trace.flat, unravel,
+                                                  where="the observed sites' log likelihood")
+    return trace._replace(**changes, failures=tuple(failures))
 

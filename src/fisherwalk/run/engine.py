@@ -144,14 +144,16 @@ def _compiled(logdensity_flat: Callable) -> tuple[Callable, Callable]:
     return jax.jit(advance), jax.jit(advance_part)
 
 
-def _pieces(total: int, size: int, *, shortest: int = 1) -> list[tuple[int, int]]:
+def _pieces(total: int, size: int, *, shortest: int = 1) -> Iterator[tuple[int, int]]:
     """(offset, length) pieces of ``range(total)``, each at most ``size`` long, except
-    that a last piece shorter than ``shortest`` joins the one before it."""
-    pieces = [(k, min(size, total - k)) for k in range(0, total, size)]
-    if len(pieces) > 1 and pieces[-1][1] < shortest:
-        (offset, length), (_, rest) = pieces[-2], pieces.pop()
-        pieces[-1] = (offset, length + rest)
-    return pieces
+    that a last piece shorter than ``shortest`` joins the one before it. Made one at a
+    time: a long thinning has many pieces, never held in a list."""
+    count = -(-total // size)
+    merge = count > 1 and total - (count - 1) * size < shortest
+    kept = count - 1 if merge else count
+    for i in range(kept):
+        offset = i * size
+        yield offset, (total - offset if i == kept - 1 else min(size, total - offset))
 
 
 def make_engine(logdensity_flat: Callable, chains: int, devices=None, *,

@@ -5,7 +5,11 @@ The kept draws dominate: ``walk`` holds every kept position (chains x draws x d)
 numbers per kept draw and chain, the Trace presents the positions as the user's pytree
 (one more copy at most), and ``Trace.summary()`` works on float64 copies of them. The
 random numbers and the chunk outputs of the engine are bounded
-(:data:`fisherwalk.run.engine.NOISE_BUDGET`), whatever ``thin`` is.
+(:data:`fisherwalk.run.engine.NOISE_BUDGET`), whatever ``thin`` is, but a call's working
+arrays (Philox words, uniforms, normals, their casts and the device's copies) hold about
+:data:`NOISE_COPIES` float64 copies of one block. ``pointwise`` and ``derived`` store
+their values at every kept draw (float64), and the derived ones are summarised with the
+parameters. Steps per chain are capped at :data:`MAX_STEPS`.
 
 What the machine has is the least of: the kernel's estimate of memory available to new
 work (``MemAvailable`` in ``/proc/meminfo``, or free physical pages from ``os.sysconf``),
@@ -24,22 +28,39 @@ import numpy as np
 from ..errors import FisherwalkError, InputError, explain
 from .engine import DEFAULT_CHUNK, NOISE_BUDGET
 
-__all__ = ["walk_bytes", "available_bytes", "check_walk_memory", "SUMMARY_COPIES"]
+__all__ = ["walk_bytes", "available_bytes", "check_walk_memory", "check_steps",
+           "check_start_memory", "SUMMARY_COPIES", "NOISE_COPIES", "MAX_STEPS"]
 
 SUMMARY_COPIES = 3  # float64 copies of the positions Trace.summary() may hold at once
+# Working float64 copies of one block of random numbers in an engine call: measured, not
+# published: walk(draws=10, thin=10**5) at d = 2 and 4 chains grew the peak resident
+# memory by 0.68 GiB over thin=1 with one block of 2**22 numbers (32 MiB), about 20 copies
+NOISE_COPIES = 20
+# Steps per chain a walk may take (draws x thin): 2**50 is beyond any run's reach (13
+# days at 10**9 steps a second), and refusing it keeps a mistyped thin from planning a
+# loop of billions of pieces (rule of thumb, no published source)
+MAX_STEPS = 2**50
 
 
 def walk_bytes(draws: int, chains: int, dim: int, *, itemsize: int = 8,
-               chunk: int = DEFAULT_CHUNK) -> dict[str, int]:
+               chunk: int = DEFAULT_CHUNK, thin: int = 1, pointwise: int = 0,
+               derived: int = 0) -> dict[str, int]:
     """Bytes a walk of ``draws`` kept draws needs, by part: ``draws`` (kept positions, log
-    densities, acceptance, faults, and the Trace's pytree view), ``engine`` (random
-    numbers of one call and one chunk of outputs) and ``summary`` (float64 copies
-    :func:`Trace.summary` works on)."""
+    densities, acceptance, the three int32 series, and the Trace's pytree view),
+    ``engine`` (the working arrays of one call's random numbers, :data:`NOISE_COPIES`
+    copies of at most one block, and one chunk of outputs), ``summary`` (float64 copies
+    :func:`Trace.summary` works on) and ``functions`` (``pointwise`` and ``derived``
+    values per draw, float64, with one chunk of work; derived values are summarised)."""
     positions = chains * draws * dim * itemsize
-    per_draw = chains * draws * (3 * itemsize + 4)
-    engine = 2 * NOISE_BUDGET * 8 + 2 * min(chunk, draws) * chains * (dim + 4) * itemsize
+    per_draw = chains * draws * (3 * itemsize + 12)
+    block = min(NOISE_BUDGET, min(chunk, draws) * thin * chains * (dim + 1))
+    engine = NOISE_COPIES * block * 8 + 2 * min(chunk, draws) * chains * (dim + 4) * itemsize
+    stored = chains * draws * (pointwise + derived) * 8
+    functions = stored + (SUMMARY_COPIES * chains * draws * derived * 8
+                          + 2 * min(chains * draws * (pointwise + derived), 1 << 22) * 8
+                          if pointwise + derived else 0)
     return {"draws": 2 * positions + per_draw, "engine": engine,
-            "summary": SUMMARY_COPIES * chains * draws * dim * 8}
+            "summary": SUMMARY_COPIES * chains * draws * dim * 8, "functions": functions}
 
 
 def _meminfo_available() -> int | None:
@@ -88,9 +109,37 @@ def _size(n: float) -> str:
     return f"{n / 2**20:.0f} MiB" if n < 2**30 else f"{n / 2**30:.1f} GiB"
 
 
+def check_steps(draws: int, thin: int, *, where: str = "walk(thin=...)",
+                error: type[FisherwalkError] = InputError) -> None:
+    """Refuse ``draws x thin`` steps per chain beyond :data:`MAX_STEPS`, before anything
+    is planned or allocated."""
+    if draws * thin > MAX_STEPS:
+        raise error(explain(
+            f"draws={draws} x thin={thin} = {draws * thin:.3g} steps per chain, more than "
+            f"the {MAX_STEPS:.3g} a walk may take.", where,
+            "check thin (steps per kept draw; e.g. 10 or 100); nothing was sampled."))
+
+
+def check_start_memory(chains: int, dim: int, *, dtype=np.float64,
+                       where: str = "start(chains=...)",
+                       error: type[FisherwalkError] = InputError) -> int:
+    """Refuse a number of chains whose states (positions, log densities, gradients and
+    the start's draws, a few copies) will not fit in memory, before allocating them."""
+    need = 8 * chains * (dim + 2) * np.dtype(dtype).itemsize
+    have = available_bytes()
+    if have is not None and need > have:
+        raise error(explain(
+            f"{chains} chains x {dim} parameters need about {_size(need)} for their states "
+            f"alone; this process can allocate about {_size(have)}.", where,
+            f"use fewer chains (at most about {max(int(chains * have / need), 1)}); nothing "
+            "was allocated."))
+    return need
+
+
 def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
                       where: str = "walk(draws=...)", todo: str | None = None,
-                      error: type[FisherwalkError] = InputError) -> int:
+                      error: type[FisherwalkError] = InputError, thin: int = 1,
+                      pointwise: int = 0, derived: int = 0) -> int:
     """Refuse a walk whose kept draws and summary will not fit in the memory this
     process can still allocate; returns the estimated bytes.
 
@@ -100,7 +149,8 @@ def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
         With the estimate by part, what is available, and what to do (``todo``, where
         ``{draws}`` stands for the draws that would fit, replaces the advice).
     """
-    parts = walk_bytes(draws, chains, dim, itemsize=np.dtype(dtype).itemsize)
+    parts = walk_bytes(draws, chains, dim, itemsize=np.dtype(dtype).itemsize, thin=thin,
+                       pointwise=pointwise, derived=derived)
     need = sum(parts.values())
     have = available_bytes()
     if have is not None and need > have:
@@ -113,7 +163,10 @@ def check_walk_memory(draws: int, chains: int, dim: int, *, dtype=np.float64,
         raise error(explain(
             f"{draws} draws x {chains} chains x {dim} parameters need about {_size(need)} "
             f"(kept draws {_size(parts['draws'])}, summary {_size(parts['summary'])}, "
-            f"sampling {_size(parts['engine'])}); this process can allocate about "
+            f"sampling {_size(parts['engine'])}"
+            + (f", pointwise and derived values {_size(parts['functions'])}"
+               if parts["functions"] else "")
+            + f"); this process can allocate about "
             f"{_size(have)}.", where,
             advice.format(draws=fit_draws)))
     return need

@@ -119,8 +119,9 @@ def next_total(done: int, min_ess: float, max_rhat: float, chunk: int, ess_limit
 
 
 def _whole_chunks(draws: float, chunk: int, max_draws: int) -> int:
-    top = max(chunk, (max_draws // chunk) * chunk)
-    return int(min(max(chunk, math.ceil(draws / chunk) * chunk), top))
+    """Whole chunks of draws, at most ``max_draws`` (the last round may end inside a
+    chunk: capping below ``max_draws`` would leave a round with no new draw to take)."""
+    return int(min(max(chunk, math.ceil(draws / chunk) * chunk), max_draws))
 
 
 def stalled(previous: tuple[int, float] | None, current: tuple[int, float]) -> bool:

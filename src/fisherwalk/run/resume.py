@@ -21,12 +21,14 @@ from .checkpoint import (
     MAX_CHAINS,
     RUN_FILE,
     STATE_FILE,
+    check_start_whitened,
     damaged,
     decode_state,
     read_checkpoint_json,
+    state_bytes,
     whitened_state,
 )
-from .memory import check_walk_memory
+from .memory import check_steps, check_walk_memory
 from .sampling import walk
 from .tuningfile import MAX_DIM, MAX_RECORD_BYTES, walker_from_record
 
@@ -59,8 +61,9 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     checkpoint_every
         Seconds between saves (0: after every chunk).
     checkpoint_reclaim
-        Break the directory's lock when it is stale (left by a run on this host that no
-        longer runs, e.g. killed); a lock of a running process is never broken.
+        Break a stale pid-file lock left by an older fisherwalk; not needed after a crash
+        of this version (the kernel released its lock). A lock of a running process is
+        never broken.
     pointwise, derived, predict
         As in :func:`fisherwalk.walk`; evaluated on all the kept draws at the end (they
         are not stored in the checkpoint; predictions use each draw's own key, so they
@@ -81,7 +84,8 @@ def resume(path, logdensity_fn: Callable, *, position: Any = None, progress: boo
     where = f"resume({os.fspath(directory)!r})"
     walker, key, draws, thin, chunk, (positions0, logdensity0) = rebuild_walker(
         directory, logdensity_fn, position=position, where=where)
-    _check_logdensity(directory, walker, positions0, logdensity0, where)
+    _check_logdensity(directory, walker, positions0, logdensity0, where,
+                      state_bytes(walker.chains, walker.dim, draws, chunk))
     return walk(walker, key, draws, thin, chunk=chunk, progress=progress, checkpoint=directory,
                 checkpoint_every=checkpoint_every, checkpoint_reclaim=checkpoint_reclaim,
                 pointwise=pointwise, derived=derived, predict=predict)
@@ -115,7 +119,9 @@ def rebuild_walker(directory: Path, logdensity_fn: Callable, *, position: Any = 
     dtype = np.dtype(identity["dtype"])
     positions0, logdensity0 = decode_state(start, run_file, dtype, chains, dim)
     key = _key(identity.get("key"), run_file)
-    check_walk_memory(draws, chains, dim, dtype=dtype, where=where, error=CheckpointError)
+    check_steps(draws, thin, where=where, error=CheckpointError)
+    check_walk_memory(draws, chains, dim, dtype=dtype, where=where, error=CheckpointError,
+                      thin=thin)
     if dtype == np.float64 and not x64_enabled():
         raise CheckpointError(explain(
             "The checkpoint was written in float64 and JAX now computes in float32.", where,
@@ -133,6 +139,7 @@ def rebuild_walker(directory: Path, logdensity_fn: Callable, *, position: Any = 
     if walker.family.stores_state:  # the chains' exact start (a refit would round it)
         walker = walker._replace(state=whitened_state(
             start.get("whitened"), walker.state, chains, dim, str(dtype), run_file))
+        check_start_whitened(run, walker.state, run_file)
     return walker, key, draws, thin, chunk, (positions0, logdensity0)
 
 
@@ -150,12 +157,13 @@ def _key(content: Any, run_file: Path) -> jax.Array:
         raise damaged(run_file, f"its random key is malformed ({err})") from err
 
 
-def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str) -> None:
+def _check_logdensity(directory: Path, walker, positions0, logdensity0, where: str,
+                      max_state_bytes: int) -> None:
     """The user's log density must reproduce the saved one at the saved chain states."""
     positions, stored = positions0, logdensity0
     state_file = directory / STATE_FILE
     if state_file.exists():
-        saved = read_checkpoint_json(state_file, max_bytes=2**31)
+        saved = read_checkpoint_json(state_file, max_bytes=max_state_bytes)
         if saved.get("done"):
             positions, stored = decode_state(saved, state_file, positions0.dtype,
                                              *positions0.shape)

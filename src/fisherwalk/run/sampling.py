@@ -18,11 +18,12 @@ import numpy as np
 from ..base.checks import positive_number, whole_number
 from ..base.keys import as_key, key_data
 from ..errors import FisherwalkWarning, InputError, explain
+from ..models.space import space_of
 from ..results.trace import Trace
 from . import derive, plan
-from .checkpoint import Store
+from .checkpoint import open_store
 from .engine import DEFAULT_CHUNK, Chunk
-from .memory import check_walk_memory
+from .memory import check_steps, check_walk_memory
 from .progress import progress_bar
 from .runfacts import run_facts
 from .walker import Walker, continuable_state
@@ -128,10 +129,10 @@ def walk(
         Seconds between checkpoint saves (0: after every chunk); the end of the run and
         Ctrl-C always save.
     checkpoint_reclaim
-        Break the checkpoint directory's lock when it is stale: left by a run on this
-        host that no longer runs (killed, or the machine restarted). A lock held by a
-        running process is never broken; by default a stale lock is refused with a
-        message naming its owner.
+        Break a stale pid-file lock left by an older fisherwalk (its owner on this host
+        no longer runs). The lock of this version is the kernel's: it goes when its
+        process ends, however it ends, so a killed run continues with no flag; a lock
+        held by a running process is never broken.
     pointwise
         ``pointwise(position) -> (n_obs,)``, the log likelihood of each observation;
         evaluated after sampling at the kept draws (in chunks, :mod:`fisherwalk.run.derive`)
@@ -173,7 +174,8 @@ def walk(
     chunk = whole_number(chunk, "chunk", "walk(chunk=...)")
     key = as_key(rng_key, where="walk(rng_key=...)")
     state = continuable_state(walker, "walk()")
-    derive.check_functions(walker, pointwise=pointwise, derived=derived, predict=predict)
+    per_draw = derive.check_functions(walker, pointwise=pointwise, derived=derived,
+                                      predict=predict)
     chains, dim = state.position.shape
     if planned:
         ess_limit = positive_number(ess_limit, "ess_limit", "walk(ess_limit=...)")
@@ -195,7 +197,9 @@ def walk(
     else:
         total = whole_number(draws, "draws", "walk(draws=...)")
     dtype = np.asarray(state.logdensity).dtype
-    check_walk_memory(total, chains, dim, dtype=dtype)
+    check_steps(max_draws if planned else total, thin)
+    check_walk_memory(total, chains, dim, dtype=dtype, thin=thin,
+                      pointwise=per_draw[0], derived=per_draw[1])
     collector = _Collector(chains, total, dim, dtype)
     family, engine = walker.family, walker.model.engine
 
@@ -203,8 +207,8 @@ def walk(
         return family.chunks(engine, walker.tuning, key, state, total, chunk, thin, done)
     store = None
     if checkpoint is not None:
-        store = Store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
-                      reclaim=checkpoint_reclaim)
+        store = open_store(checkpoint, walker, key, total, thin, chunk, every=checkpoint_every,
+                           reclaim=checkpoint_reclaim)  # all processes open it, or none
     try:
         if store is not None:
             state = store.restore(collector, state)
@@ -262,6 +266,9 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
             previous = (collector.done, max_rhat)
             total = plan.next_total(collector.done, min_ess, max_rhat, chunk, ess_limit,
                                     rhat_limit, max_draws)
+            if total <= collector.done:  # no new draw to take: never an empty round
+                stopped = "draws budget"
+                break
             collector.grow(total)
             if bar is not None:
                 bar.total = total
@@ -324,4 +331,5 @@ def _trace(walker, collector, state, thin, key, seconds, *, complete, length=Non
                  divergent=collector.divergent if gradient else None,
                  gradients=collector.gradients if gradient else None,
                  energy=collector.energy if collector.has_energy else None,
-                 facts=run_facts(final))
+                 facts=run_facts(final),
+                 space=space_of(walker.logdensity_fn))  # a model's own space, or None

@@ -23,6 +23,7 @@ from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
+from .memory import check_start_memory
 from .progress import progress_bar
 from .samplers import registry
 from .samplers.auto import choose_sampler
@@ -285,6 +286,7 @@ def start(
     key = as_key(rng_key, where="start(rng_key=...)")
     dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
         int(np.size(leaf)) for leaf in jax.tree.leaves(position))
+    check_start_memory(chains, dim)  # before the fit: chains=10**10 is refused, not tried
     large = [_large_dim_note(dim)] if dim >= LARGE_DIM else []
     for message in large:  # before the fit, which is itself slow at this dimension
         warn_user(message, FisherwalkWarning)

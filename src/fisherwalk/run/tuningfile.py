@@ -405,17 +405,27 @@ def check_tuning(saved: SavedTuning, names: tuple[str, ...], *,
 # ----------------------------------------------------------------------------- rebuilding
 
 
-def _template(structure: Any, dtype: np.dtype) -> Any:
+def _template(structure: Any, dtype: np.dtype, room: list[int]) -> Any:
+    """The position pytree ``structure`` describes, of zeros. ``room`` ([values left]) is
+    the record's parameter count: the leaves' declared sizes are counted against it
+    before each leaf is allocated, so a structure edited to declare a huge leaf is
+    refused (ValueError) without allocating it."""
     (kind, body), = structure.items()
     if kind == "dict":
-        return {key: _template(value, dtype) for key, value in body.items()}
+        return {key: _template(value, dtype, room) for key, value in body.items()}
     if kind in ("list", "tuple"):
-        items = [_template(value, dtype) for value in body]
+        items = [_template(value, dtype, room) for value in body]
         return items if kind == "list" else tuple(items)
     if kind == "none":
         return None
     if kind == "array":
-        return jnp.zeros(tuple(body["shape"]), dtype=np.dtype(body["dtype"]))
+        shape = tuple(body["shape"])
+        if not all(isinstance(n, int) and not isinstance(n, bool) and n >= 0 for n in shape):
+            raise ValueError("shape")
+        room[0] -= math.prod(shape)
+        if room[0] < 0 or len(shape) > 32:
+            raise ValueError("the leaves declare more values than the record's parameters")
+        return jnp.zeros(shape, dtype=np.dtype(body["dtype"]))
     raise ValueError(kind)
 
 
@@ -430,9 +440,10 @@ def _unravel_for(record: dict, position: Any) -> Callable:
                 "JSON cannot name, such as a NamedTuple).", where,
                 "pass position=<a position of the model> so the structure can be rebuilt."))
         try:
-            position = _template(structure, np.dtype(record["dtype"]))
+            position = _template(structure, np.dtype(record["dtype"]), [len(names)])
         except (AttributeError, KeyError, TypeError, ValueError) as err:
-            raise _bad("Field 'structure' is malformed.", where) from err
+            raise _bad("Field 'structure' is malformed (or declares more values than the "
+                       f"record's {len(names)} parameters).", where) from err
     flat = pytrees.flatten_position(jax.tree.map(jnp.zeros_like, position), where=where)
     if flat.names != names:
         raise InputError(explain(

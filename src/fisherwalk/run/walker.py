@@ -166,7 +166,9 @@ def flat_logdensity(model: Model) -> Callable:
 
     def build():
         def flat(vector):
-            return fn(unravel(vector))
+            # cast at the edge: a float32 value with x64 on would give BlackJAX's states
+            # and the gradient families' custom JVP two dtypes
+            return jnp.asarray(fn(unravel(vector)), dtype=vector.dtype)
 
         return flat
 
