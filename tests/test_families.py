@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 import fisherwalk as fw
-from fisherwalk.cli.command import build_parser
+from fisherwalk.cli.parser import build_parser
 from fisherwalk.results.diagnostics import mcse_mean
 from fisherwalk.run import handoff, tuningfile
 from fisherwalk.run.devices import chain_devices, spread_chains

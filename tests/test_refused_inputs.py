@@ -25,7 +25,7 @@ import pytest
 import fisherwalk
 from fisherwalk.base.checks import parse_whole_number
 from fisherwalk.base.files import check_output_folder
-from fisherwalk.cli.command import MAX_SEED
+from fisherwalk.cli.parser import MAX_SEED
 from fisherwalk.results import diagnostics
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "refused-inputs.md"

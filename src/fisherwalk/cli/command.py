@@ -10,7 +10,9 @@ Subcommands
 ``resume`` finish a ``run --checkpoint`` that was interrupted (:mod:`fisherwalk.cli.resumable`).
 
 The command is an application, so it switches JAX to float64 for itself (the library
-never changes JAX's configuration). :func:`workflow` runs the steps (start, refine,
+never changes JAX's configuration). Its parser is :mod:`fisherwalk.cli.parser`, its
+account of each step :mod:`fisherwalk.cli.narration`, its checks before any work
+:mod:`fisherwalk.cli.preflight`. :func:`workflow` runs the steps (start, refine,
 walk, summary) and tells the user what each found; :func:`fisherwalk.cli.runrecord.write_outputs`
 writes ``draws.npz`` (plain arrays, no pickle), the plots and ``record.json``;
 :func:`fisherwalk.cli.modelfile.load_model` imports and checks a model file.
@@ -18,7 +20,6 @@ writes ``draws.npz`` (plain arrays, no pickle), the plots and ``record.json``;
 
 from __future__ import annotations
 
-import argparse
 import math
 import sys
 import textwrap
@@ -28,54 +29,34 @@ from pathlib import Path
 
 import numpy as np
 
-from ..base.checks import parse_whole_number
-from ..base.files import check_output_folder
 from ..base.jsonio import dumps
 from ..base.lock import acquire_lock
 from ..errors import FisherwalkError, InputError, ModelFileError, explain
-from ..run.memory import check_walk_memory
-from ..run.plan import MAX_DRAWS
 from ..run.samplers import registry
 from . import compilecache, outputs, resumable
 from .modelfile import load_model
+from .narration import (
+    Say,
+    draws_words,
+    say_files,
+    say_fit,
+    say_sampling,
+    say_warmup,
+)
+from .parser import DEFAULT_WARMUP, build_parser
+from .preflight import check_before_work, check_numbers
 from .runrecord import RunResult, build_record, run_keys, sha256_file, write_outputs
+from .scenarios import truth_table
 
 __all__ = ["main", "workflow", "RunResult"]
 
-DEFAULT_CHAINS = 4
-# Without --draws the run length is planned (walk(draws=None)): rounds until every
-# parameter has bulk and tail ESS >= 400 and R-hat < 1.01, sized from the theory's
-# predicted ESS per step (fisherwalk.run.plan).
-DEFAULT_DRAWS = None
-DEFAULT_WARMUP = 400
-DEFAULT_SEED = 0
 MIN_KEPT = 4  # draws per chain an interrupted run needs for its outputs to be written
-
-_TRUST = ("'run' executes the Python code in MODEL_FILE with your own rights (the file\n"
-          "is imported like any module): run only model files you trust.")
-
 
 # --------------------------------------------------------------------------------- workflow
 
 
-class _Say:
-    """Narration on stdout (unless quiet) and a 'working on it' line on stderr."""
-
-    def __init__(self, quiet: bool):
-        self.quiet = quiet
-        self.tty = sys.stderr.isatty()
-
-    def __call__(self, text: str = "") -> None:
-        if not self.quiet:
-            print(text, flush=True)
-
-    def busy(self, text: str) -> None:
-        if not self.quiet and self.tty:
-            print(f"  ... {text}", file=sys.stderr, flush=True)
-
-
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
-             warmup: int = DEFAULT_WARMUP, fisher=None, say: _Say | None = None,
+             warmup: int = DEFAULT_WARMUP, fisher=None, say: Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
              checkpoint=None, labels=None, sampler: str = "rwm", predict=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
@@ -90,7 +71,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
     """
     import fisherwalk
 
-    say = say or _Say(quiet=True)
+    say = say or Say(quiet=True)
     progress = None if not say.quiet else False
     (k_start, k_warm, k_walk), keys = run_keys(seed)
     seconds: dict[str, float] = {}
@@ -101,12 +82,12 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
                               restarts=restarts, progress=progress, sampler=sampler)
     seconds["start"] = time.perf_counter() - t
 
-    _say_fit(say, walker, seconds["start"])
+    say_fit(say, walker, seconds["start"])
 
     t = time.perf_counter()
     walker = fisherwalk.refine(walker, k_warm, warmup, progress=progress)
     seconds["warmup"] = time.perf_counter() - t
-    _say_warmup(say, walker, seconds["warmup"], chains)
+    say_warmup(say, walker, seconds["warmup"], chains)
 
     t = time.perf_counter()
     trace = fisherwalk.walk(walker, k_walk, draws, thin, progress=progress,
@@ -120,7 +101,7 @@ def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
     trace = labelled(trace, labels)
     summary = trace.summary()  # every row: the record and summary.csv keep them all
     seconds["diagnostics"] = time.perf_counter() - t
-    _say_sampling(say, trace, summary, seconds["sampling"])
+    say_sampling(say, trace, summary, seconds["sampling"])
     return RunResult(trace, summary, seconds, keys)
 
 
@@ -138,143 +119,7 @@ def labelled(trace, labels):
     return trace._replace(walker=walker, facts=trace.facts._replace(names=names))
 
 
-def _say_fit(say: _Say, walker, seconds: float) -> None:
-    fit, tuning = walker.report.laplace, walker.tuning
-    cond = np.linalg.cond(np.asarray(fit.fisher))
-    source = "autodiff Hessian" if fit.fisher_source == "hessian" else "from the model"
-    say(_step("[1/4] Laplace fit (compilation included)", seconds))
-    say(f"      mode after {fit.iterations} iterations, largest |gradient| {fit.gradient_norm:.1e}")
-    say(f"      Fisher information H: {source}, condition number {cond:.3g}")
-    check = getattr(walker.report, "check", None)
-    if check is not None and hasattr(check, "khat"):
-        verdict = "holds" if check.khat <= check.threshold else "is doubtful"
-        say(f"      Laplace check: PSIS k̂ {check.khat:.2f} (limit {check.threshold:.2f}): "
-            f"the Gaussian picture {verdict}")
-    say(f"[2/4] tuning from the theory, d = {tuning.dim}")
-    if tuning.scale is not None:  # a family tuned by its scale l (the random walk)
-        say(f"      scale l = {tuning.scale:.3f}, step (l/√d)·S z with l/√d = "
-            f"{tuning.scale / math.sqrt(tuning.dim):.3f}, S Sᵀ = H⁻¹ ({tuning.shape_kind})")
-    else:
-        name, value = tuning.parameter
-        say(f"      sampler {tuning.sampler} (BlackJAX) on the posterior whitened by "
-            f"S Sᵀ = H⁻¹ ({tuning.shape_kind}); {name.replace('_', ' ')} {value:.4g}")
-    say(f"      target acceptance {tuning.target_acceptance:.3f}")
-    say(f"      predicted jump {tuning.predicted_jump:.3f} per step (squared, in sd of "
-        "N(mode, H⁻¹))")
-    for note in walker.report.notes:
-        say(_wrap(f"note: {note}"))
-
-
-def _say_warmup(say: _Say, walker, seconds: float, chains: int) -> None:
-    warm = walker.report.warmup
-    say(_step(f"[3/4] warm-up, {warm.steps} steps x {chains} chains", seconds))
-    ratio = warm.tuned_final / warm.tuned_start
-    say(f"      {warm.tuned.replace('_', ' ')} {warm.tuned_start:.4g} -> "
-        f"{warm.tuned_final:.4g} (x{ratio:.2f})")
-    say(f"      acceptance {warm.acceptance_final:.3f}, aimed at {warm.target_acceptance:.3f}")
-    low, high = warm.spectrum_bounds
-    spec = np.asarray(warm.covariance_spectrum)
-    say(f"      warm-up covariance against H⁻¹: eigenvalues {spec.min():.2f} to {spec.max():.2f}")
-    say(f"      (Monte Carlo error allows {low:.2f} to {high:.2f} with "
-        f"{warm.effective_draws:.0f} effective draws)")
-    if warm.reshaped:
-        say(_wrap("      proposal shape re-estimated because: " + "; ".join(warm.reasons)
-                  if warm.reasons else "      proposal shape re-estimated (asked for)"))
-    else:
-        say("      proposal shape kept: every check agreed with the Gaussian picture")
-
-
-def _say_sampling(say: _Say, trace, summary, seconds: float) -> None:
-    chains, draws = trace.flat.shape[:2]
-    say(_step(f"[4/4] sampling, {draws} draws x {chains} chains", seconds))
-    if trace.length is not None:
-        say(_wrap(f"      {trace.length.line()}"))
-    per_chain = " ".join(f"{a:.3f}" for a in np.mean(trace.accepted, axis=1))
-    say(f"      acceptance realised {summary.acceptance_pooled:.3f} (chains: {per_chain})")
-    say(f"      acceptance aimed at {summary.target_acceptance:.3f}")
-    if summary.realised_jump is not None:
-        say(f"      jump per step: predicted {summary.predicted_jump:.3f}, realised "
-            f"{summary.realised_jump:.3f}")
-
-
-def _draws_words(draws) -> str:
-    return "draws planned (ESS >= 400, R-hat < 1.01)" if draws is None else f"{draws} draws"
-
-
-def _step(title: str, seconds: float) -> str:
-    return f"{title:<44}{seconds:6.1f} s"
-
-
-def _wrap(text: str) -> str:
-    return textwrap.fill(text, width=96, subsequent_indent="        ")
-
-
 # ---------------------------------------------------------------------------- subcommands
-
-
-MAX_SEED = 2**32 - 1  # jax.random.key takes the seed as an unsigned 32-bit number here
-MAX_CHAINS = 10_000
-MIN_DRAWS = 4  # R-hat and ESS need 4 draws per chain
-_NUMBERS = {"chains": (1, MAX_CHAINS), "draws": (MIN_DRAWS, None), "warmup": (1, None),
-            "seed": (0, MAX_SEED), "thin": (1, None), "restarts": (0, None)}
-
-
-def _check_numbers(args) -> None:
-    """Every numeric option as a whole number in its range (argparse keeps them as text,
-    so that '1e23' and '2.0' get the package's message, exit 2, before any work)."""
-    for name, (low, high) in _NUMBERS.items():
-        if getattr(args, name, None) is not None:  # None: --draws left to the plan
-            text = getattr(args, name)
-            text = str(text) if isinstance(text, int) else text  # a default
-            setattr(args, name, parse_whole_number(text, f"--{name}",
-                                                   f"option --{name}", minimum=low,
-                                                   maximum=high))
-    if hasattr(args, "dims"):
-        args.dims = [parse_whole_number(text, "DIM", "fisherwalk scale DIM", minimum=1)
-                     for text in args.dims]
-
-
-def _output_bytes(chains: int, draws: int, dim: int) -> int:
-    """About how many bytes the outputs take: draws.npz (draws, log density, acceptance
-    in float64), record.json (five d x d matrices at ~25 characters a number) and the
-    four figures (a few hundred kB each)."""
-    return chains * draws * (dim + 2) * 8 + 125 * dim * dim + 4 * 2**20
-
-
-def _values_per_draw(fn, position) -> int:
-    """How many numbers ``fn(position)`` returns (traced, not run); 0 when it cannot be
-    traced here (walk() then reports the function's problem)."""
-    if fn is None:
-        return 0
-    import jax
-
-    try:
-        shapes = jax.eval_shape(fn, position)
-    except Exception:  # noqa: BLE001 - reported by walk() with its own message
-        return 0
-    return sum(math.prod(leaf.shape) for leaf in jax.tree_util.tree_leaves(shapes))
-
-
-def _check_before_work(args, dim: int, model=None) -> Path:
-    """The output folder (a writable folder with room for the outputs) and the memory
-    the run needs (with the model's pointwise and derived values), checked before the
-    fit."""
-    draws = MAX_DRAWS if args.draws is None else args.draws  # a planned run: its budget
-    pointwise = derived = 0
-    if model is not None:
-        if getattr(args, "pointwise", False):
-            pointwise = _values_per_draw(model.pointwise, model.initial_position)
-        derived = _values_per_draw(model.derived, model.initial_position)
-    check_walk_memory(draws, args.chains, dim, where="options --draws and --chains",
-                      todo="pass --draws {draws} or fewer (or fewer --chains); nothing was "
-                           "fitted or sampled.", thin=args.thin, pointwise=pointwise,
-                      derived=derived)
-    out = check_output_folder(args.out, _output_bytes(args.chains, draws, dim))
-    checkpoint = bool(getattr(args, "checkpoint", False))
-    outputs.check_output_names(out, outputs.output_names(args.command, checkpoint=checkpoint))
-    if args.command == "demo":
-        outputs.check_demo_folder(out)
-    return out
 
 
 def _options(args) -> dict:
@@ -296,26 +141,20 @@ def _options(args) -> dict:
     }
 
 
-def _say_files(say: _Say, out: Path, files: dict[str, Path]) -> None:
-    say(f"files in {out}/")
-    for name, path in files.items():
-        say(f"  {path.name:<22} {name}")
-
-
 def _demo(args, argv) -> int:
     from . import scenarios
 
-    say = _Say(args.quiet)
+    say = Say(args.quiet)
     began = time.perf_counter()
     scene = scenarios.scenario(args.scenario)
-    out = _check_before_work(args, scene.X.shape[1])
+    out = check_before_work(args, scene.X.shape[1])
     data_path = scene.to_csv(out / "data.csv")
     n, p = scene.X.shape
     say(f"fisherwalk demo: the '{scene.name}' scenario (invented data, seed {scene.seed})")
     say("=" * 72)
     say(textwrap.indent(scene.story, "  "))
     say(f"\n  {n:,} records, {p} coefficients ({scene.family}); data in {data_path}")
-    say(f"  {args.chains} chains x {_draws_words(args.draws)} after {args.warmup} warm-up steps, "
+    say(f"  {args.chains} chains x {draws_words(args.draws)} after {args.warmup} warm-up steps, "
         f"seed {args.seed}\n")
     result = workflow(scene.logdensity, scene.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup, say=say,
@@ -323,7 +162,7 @@ def _demo(args, argv) -> int:
                       sampler=args.sampler)
     print()
     print(str(result.summary))
-    truth = _truth_table(scene, result.summary)
+    truth = truth_table(scene, result.summary)
     print()
     print(truth["text"])
     extra = {"scenario": {"name": scene.name, "records": n, "family": scene.family,
@@ -336,39 +175,9 @@ def _demo(args, argv) -> int:
     record = build_record("demo", argv, _options(args), result, extra)
     files = {"data": data_path, **write_outputs(out, result, record)}
     say(f"\nplots and record written in {time.perf_counter() - t:.1f} s")
-    _say_files(say, out, files)
+    say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
     return _interrupted(args, result, out)
-
-
-def _truth_table(scene, summary) -> dict:
-    rows, lines = [], []
-    lines.append("Against the truth (the data were simulated from these coefficients):")
-    lines.append(f"  {'parameter':<26}{'true':>8}{'mean':>9}{'sd':>8}{'(mean-true)/sd':>16}")
-    for j, (name, label) in enumerate(zip(summary.names, scene.names, strict=True)):
-        mean, sd, true = float(summary.mean[j]), float(summary.sd[j]), float(scene.true_beta[j])
-        z = (mean - true) / sd
-        rows.append({"name": name, "label": label, "true": true, "mean": mean, "sd": sd,
-                     "z": z})
-        shown = name if name == label else f"{name} {label}"
-        lines.append(f"  {shown:<26}{true:>8.3f}{mean:>9.3f}{sd:>8.3f}{z:>+16.2f}")
-    worst = max(abs(r["z"]) for r in rows)
-    low, high = _max_z_range(len(rows))
-    lines.append(f"  largest |mean - true| / sd: {worst:.2f}. Each ratio is about a standard "
-                 "normal draw (one data set),")
-    lines.append(f"  so with {len(rows)} coefficients the largest falls between {low:.1f} and "
-                 f"{high:.1f} in 90% of data sets.")
-    return {"rows": rows, "text": "\n".join(lines)}
-
-
-def _max_z_range(count: int) -> tuple[float, float]:
-    """5% and 95% quantiles of max |Z_i| over ``count`` independent standard normals:
-    P(max <= x) = (2 Phi(x) - 1)^count. By Bernstein-von Mises the posterior mean sits
-    about N(truth, sd²) over repeated data sets (van der Vaart 1998, Asymptotic
-    Statistics, ch. 10)."""
-    from scipy.stats import norm
-
-    return tuple(float(norm.ppf((1.0 + q ** (1.0 / count)) / 2.0)) for q in (0.05, 0.95))
 
 
 def _scale(args) -> int:
@@ -390,7 +199,7 @@ def _scale(args) -> int:
 
 
 def _run(args, argv) -> int:
-    say = _Say(args.quiet)
+    say = Say(args.quiet)
     began = time.perf_counter()
     model = load_model(args.model_file, data=args.data)  # before anything is written
     if args.pointwise and model.pointwise is None:
@@ -403,7 +212,7 @@ def _run(args, argv) -> int:
             "--checkpoint needs a run of fixed length, and --draws was not given.",
             "option --checkpoint", "pass --draws N with --checkpoint (a planned run's length "
             "is not known in advance, so it cannot be resumed)."))
-    out = _check_before_work(args, model.dim, model)
+    out = check_before_work(args, model.dim, model)
     checkpoint = None
     if not args.checkpoint:
         return _run_in(args, argv, say, began, model, out, None)
@@ -421,7 +230,7 @@ def _run_in(args, argv, say, began, model, out: Path, checkpoint: Path | None) -
     data = f", {model.data.rows:,} rows of {model.data.path.name}" if model.data else ""
     say(f"fisherwalk run: {model.path} ({model.dim} parameters{data})")
     say("=" * 72)
-    say(f"  {args.chains} chains x {_draws_words(args.draws)} after {args.warmup} warm-up steps, "
+    say(f"  {args.chains} chains x {draws_words(args.draws)} after {args.warmup} warm-up steps, "
         f"seed {args.seed}\n")
     result = workflow(model.logdensity, model.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup,
@@ -442,7 +251,7 @@ def _run_in(args, argv, say, began, model, out: Path, checkpoint: Path | None) -
     record = build_record("run", argv, _options(args), result, extra)
     files = write_outputs(out, result, record, focus=focus)
     say()
-    _say_files(say, out, files)
+    say_files(say, out, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
     return _interrupted(args, result, out)
 
@@ -459,7 +268,7 @@ def _interrupted(args, result: RunResult, out: Path) -> int:
 
 
 def _resume(args, argv) -> int:
-    say = _Say(args.quiet)
+    say = Say(args.quiet)
     began = time.perf_counter()
     folder = Path(args.folder)
     resumable.read_plan(folder)  # refuses a folder without a run, creating nothing
@@ -505,7 +314,7 @@ def _resume_in(args, argv, say, began, folder: Path, plan: dict) -> int:
     record = build_record("resume", argv, plan["options"], result, extra)
     files = write_outputs(folder, result, record)
     say()
-    _say_files(say, folder, files)
+    say_files(say, folder, files)
     say(f"wall time {time.perf_counter() - began:.1f} s")
     return 0
 
@@ -536,168 +345,6 @@ def _cache_facts(args) -> dict:
     return facts
 
 
-# ---------------------------------------------------------------------------------- parser
-
-
-def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
-    sub.add_argument("--out", default=out_default, metavar="DIR",
-                     help=f"output folder, created if needed (default: {out_default})")
-    sub.add_argument("--chains", default=DEFAULT_CHAINS, metavar="N",
-                     help=f"number of chains (default {DEFAULT_CHAINS})")
-    sub.add_argument("--draws", default=DEFAULT_DRAWS, metavar="N",
-                     help="draws kept per chain after the warm-up, at least 4 (default: "
-                          "planned, until every ESS >= 400 and R-hat < 1.01, within a budget)")
-    sub.add_argument("--warmup", default=DEFAULT_WARMUP, metavar="N",
-                     help=f"warm-up steps per chain (default {DEFAULT_WARMUP})")
-    sub.add_argument("--seed", default=DEFAULT_SEED, metavar="S",
-                     help=f"seed of the JAX random key, 0 to {MAX_SEED} (default "
-                          f"{DEFAULT_SEED})")
-    sub.add_argument("--quiet", action="store_true",
-                     help="no progress bars and no step-by-step account; print the tables")
-    sub.add_argument("--thin", default=1, metavar="N",
-                     help="steps per kept draw (default 1: keep every step)")
-    sub.add_argument("--sampler", default="rwm",
-                     choices=registry.choices(),
-                     help="the sampler: random-walk Metropolis (default), BlackJAX's MALA, "
-                          "HMC or NUTS on the whitened posterior, or auto (the one predicted "
-                          "to reach ESS 400 first)")
-    sub.add_argument("--restarts", default=0, metavar="N",
-                     help="extra mode searches from dispersed points before the Laplace fit "
-                          "(default 0)")
-    _cache_option(sub)
-
-
-def _focus_option(sub: argparse.ArgumentParser) -> None:
-    sub.add_argument("--focus", nargs="+", default=None, metavar="NAME",
-                     help="the parameters the summary and the figures show: names "
-                          "(beta[3]), leaf names (beta) or patterns ('beta*'); default all "
-                          "(the figures: the worst-mixing ones and the group-level scales "
-                          "when there are many). summary.csv and draws.npz keep every "
-                          "parameter")
-
-
-def _cache_option(sub: argparse.ArgumentParser) -> None:
-    sub.add_argument("--no-compile-cache", dest="compile_cache_on", action="store_false",
-                     help="do not use JAX's persistent compilation cache (default: on, in "
-                          f"{compilecache.cache_folder()})")
-
-
-def build_parser() -> argparse.ArgumentParser:
-    """The argument parser of ``fisherwalk`` (exposed for documentation and tests)."""
-    fmt = argparse.RawDescriptionHelpFormatter
-    parser = argparse.ArgumentParser(
-        prog="fisherwalk", formatter_class=fmt,
-        description="Bayesian sampling tuned before its first step from the Laplace "
-                    "approximation\n(mode and observed Fisher information) of the posterior: "
-                    "random-walk Metropolis,\nMALA, HMC or NUTS (BlackJAX), a short warm-up, "
-                    "diagnostics, figures and a record.",
-        epilog="examples:\n  fisherwalk demo\n  fisherwalk scale 1 10 100\n"
-               "  fisherwalk run my_model.py --out results\n  fisherwalk show results --focus "
-               "'beta*'\n\n"
-               "'fisherwalk COMMAND --help' describes each command.")
-    subs = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
-
-    demo = subs.add_parser(
-        "demo", formatter_class=fmt, help="the whole workflow on an invented demo data set",
-        description="Fit, tune, warm up, sample and diagnose an invented regression, then "
-                    "compare the\nposterior with the coefficients the data were simulated "
-                    "from. Writes data.csv,\ndraws.npz, record.json and four PNG figures.",
-        epilog="examples:\n  fisherwalk demo\n  fisherwalk demo --scenario poisson --out culverts"
-               "\n  fisherwalk demo --chains 2 --draws 500 --seed 7 --quiet")
-    _common(demo, "fisherwalk-demo")
-    demo.add_argument("--scenario", choices=("logistic", "poisson"), default="logistic",
-                      help="logistic: seed-bank germination test, 20,000 records, 8 "
-                           "coefficients; poisson: culvert blockage counts, 6,000 records, "
-                           "6 coefficients (default logistic)")
-
-    scale = subs.add_parser(
-        "scale", formatter_class=fmt, help="optimal scale and acceptance for dimensions",
-        description="The scale l maximising the expected squared jump of random-walk "
-                    "Metropolis with\na proposal matched to the posterior's covariance, and "
-                    "the acceptance rate it implies,\nfor each dimension d (Gaussian limit, "
-                    "computed for finite d).",
-        epilog="examples:\n  fisherwalk scale 1 2 5 10 100\n  fisherwalk scale 4 --json")
-    scale.add_argument("dims", nargs="+", metavar="DIM",
-                       help="number of scalar parameters d")
-    scale.add_argument("--json", action="store_true",
-                       help="print a JSON list of {dim, scale, acceptance, jump_distance}")
-
-    run = subs.add_parser(
-        "run", formatter_class=fmt, help="the whole workflow on your model file",
-        description="Run the workflow on a Python model file that defines\n"
-                    "  logdensity(position) -> scalar   the log posterior, written in JAX\n"
-                    "  initial_position                 a pytree of floats to start from\n"
-                    "and optionally\n"
-                    "  fisher(mode) -> (d, d)           your Fisher information (else autodiff)\n"
-                    "  names                            one label per scalar parameter\n"
-                    "  pointwise(position) -> (n_obs,)  log likelihood per observation "
-                    "(--pointwise)\n"
-                    "  derived(position) -> pytree      quantities summarised with the "
-                    "parameters\n"
-                    "  predict(position, key) -> pytree predictions with their own randomness "
-                    "(a key per draw)\n"
-                    "With --data table.csv it defines instead\n"
-                    "  make(data) -> (logdensity, initial_position), or a dict of the names "
-                    "above,\n"
-                    "  data being {column name: float array}, and optionally\n"
-                    "  columns = (\"count\", \"hours\")   the columns it needs (checked "
-                    "first)\n\n"
-                    "Warning: " + _TRUST,
-        epilog="examples:\n  fisherwalk run model.py\n"
-               "  fisherwalk run model.py --out results --chains 6 --draws 4000 --seed 3\n"
-               "  fisherwalk run counts.py --data counts.csv --pointwise --checkpoint\n\n"
-               "A minimal model.py:\n"
-               "  import jax.numpy as jnp\n"
-               "  y = jnp.array([2.1, 1.7, 2.6, 2.2])\n"
-               "  def logdensity(p):\n"
-               "      return -0.5 * jnp.sum((y - p['mu']) ** 2) - 0.5 * p['mu'] ** 2 / 100\n"
-               "  initial_position = {'mu': jnp.asarray(0.0)}")
-    run.add_argument("model_file", metavar="MODEL_FILE", help="path of the model file (.py)")
-    _common(run, "fisherwalk-run")
-    run.add_argument("--data", metavar="CSV", default=None,
-                     help="a CSV table (header row of column names) handed to the model "
-                          "file's make(data) as {column: float array}")
-    run.add_argument("--pointwise", action="store_true",
-                     help="store the model file's pointwise(position) log likelihood at every "
-                          "kept draw (draws.npz 'pointwise'; for LOO with ArviZ)")
-    _focus_option(run)
-    run.add_argument("--checkpoint", action="store_true",
-                     help="keep the sampling's progress in OUT/checkpoint/ so that "
-                          "'fisherwalk resume OUT --model MODEL_FILE' can finish it")
-
-    again = subs.add_parser(
-        "resume", formatter_class=fmt, help="finish an interrupted 'run --checkpoint'",
-        description="Finish the sampling of a 'fisherwalk run ... --checkpoint' that was "
-                    "interrupted,\nwith the same draws an uninterrupted run gives, and write "
-                    "the usual files into DIR.\nThe model file must be the original one "
-                    "(its log density is checked).\n\nWarning: " + _TRUST,
-        epilog="example:\n  fisherwalk run model.py --data counts.csv --out results --checkpoint"
-               "\n  (interrupted)\n  fisherwalk resume results --model model.py")
-    again.add_argument("folder", metavar="DIR", help="the --out folder of the interrupted run")
-    again.add_argument("--model", required=True, metavar="MODEL_FILE",
-                       help="the model file of the run")
-    again.add_argument("--data", metavar="CSV", default=None,
-                       help="the data file (default: the path the run recorded)")
-    again.add_argument("--quiet", action="store_true", help="no progress bar")
-    _cache_option(again)
-
-    show = subs.add_parser(
-        "show", formatter_class=fmt, help="print the summary of a finished run and redraw "
-                                          "its figures",
-        description="Open a finished run without its model: the folder of 'fisherwalk run' "
-                    "or 'demo'\n(draws.npz and record.json), or a finished checkpoint "
-                    "folder. Print its summary\nand write its figures again.",
-        epilog="examples:\n  fisherwalk show results\n  fisherwalk show results --focus "
-               "'tau*' sigma --interval 0.8")
-    show.add_argument("folder", metavar="DIR", help="the run's folder")
-    _focus_option(show)
-    show.add_argument("--interval", default="0.9", metavar="P",
-                      help="probability of the central interval (default 0.9)")
-    show.add_argument("--figures", default=None, metavar="DIR",
-                      help="where to write the figures (default: DIR itself)")
-    return parser
-
-
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``fisherwalk`` command; returns the exit code.
 
@@ -715,7 +362,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command not in ("scale", "show"):
         args.compile_cache = compilecache.switch(args.compile_cache_on)
     try:
-        _check_numbers(args)
+        check_numbers(args)
         if args.command == "scale":
             return _scale(args)
         if args.command == "demo":

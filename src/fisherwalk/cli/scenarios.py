@@ -39,7 +39,8 @@ from ..base.checks import whole_number
 from ..base.files import write_text_atomic
 from ..errors import InputError, explain
 
-__all__ = ["Scenario", "logistic", "poisson", "SCENARIOS", "scenario"]
+__all__ = ["Scenario", "logistic", "poisson", "SCENARIOS", "scenario", "truth_table",
+           "max_z_range"]
 
 PRIOR_SD = 2.5  # sd of the Gaussian prior on each coefficient of a standardised predictor
 
@@ -286,3 +287,33 @@ def _check_n(n, where: str) -> int:
     return whole_number(n, "n", f"fisherwalk.cli.scenarios.{where}(n=...)", minimum=50,
                         todo="pass a whole number of at least 50 records (the default is "
                              "the demo's size).")
+
+
+def truth_table(scene, summary) -> dict:
+    rows, lines = [], []
+    lines.append("Against the truth (the data were simulated from these coefficients):")
+    lines.append(f"  {'parameter':<26}{'true':>8}{'mean':>9}{'sd':>8}{'(mean-true)/sd':>16}")
+    for j, (name, label) in enumerate(zip(summary.names, scene.names, strict=True)):
+        mean, sd, true = float(summary.mean[j]), float(summary.sd[j]), float(scene.true_beta[j])
+        z = (mean - true) / sd
+        rows.append({"name": name, "label": label, "true": true, "mean": mean, "sd": sd,
+                     "z": z})
+        shown = name if name == label else f"{name} {label}"
+        lines.append(f"  {shown:<26}{true:>8.3f}{mean:>9.3f}{sd:>8.3f}{z:>+16.2f}")
+    worst = max(abs(r["z"]) for r in rows)
+    low, high = max_z_range(len(rows))
+    lines.append(f"  largest |mean - true| / sd: {worst:.2f}. Each ratio is about a standard "
+                 "normal draw (one data set),")
+    lines.append(f"  so with {len(rows)} coefficients the largest falls between {low:.1f} and "
+                 f"{high:.1f} in 90% of data sets.")
+    return {"rows": rows, "text": "\n".join(lines)}
+
+
+def max_z_range(count: int) -> tuple[float, float]:
+    """5% and 95% quantiles of max |Z_i| over ``count`` independent standard normals:
+    P(max <= x) = (2 Phi(x) - 1)^count. By Bernstein-von Mises the posterior mean sits
+    about N(truth, sd²) over repeated data sets (van der Vaart 1998, Asymptotic
+    Statistics, ch. 10)."""
+    from scipy.stats import norm
+
+    return tuple(float(norm.ppf((1.0 + q ** (1.0 / count)) / 2.0)) for q in (0.05, 0.95))
