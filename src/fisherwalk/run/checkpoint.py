@@ -66,17 +66,27 @@ import numpy as np
 
 from ..base.checks import positive_number, whole_number
 from ..base.files import check_folder, fsync_folder, read_bytes, write_atomic
-from ..base.jsonio import decode_array, dumps, encode_array, read_json, write_json_atomic
-from ..base.keys import key_data
+from ..base.jsonio import encode_array, write_json_atomic
 from ..base.lock import LOCK_FILE, Lock, acquire_lock
 from ..base.meshes import failed_processes
-from ..base.pytrees import name_difference
 from ..errors import CheckpointError, FisherwalkWarning, explain
+from .checkpoint_files import (
+    FORMAT,
+    FORMAT_VERSION,
+    RUN_FILE,
+    STATE_FILE,
+    check_start_whitened,
+    damaged,
+    decode_state,
+    first_clause,
+    read_checkpoint_json,
+    whitened_state,
+)
+from .checkpoint_identity import differences, fingerprint_of, identity, legacy_fingerprint
 from .engine import ChainState
 from .segments import (
     ARRAYS,
     changed_field,
-    digest,
     segment_bytes,
     segment_data,
     segment_layout,
@@ -90,74 +100,12 @@ __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_
            "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "open_store",
            "check_start_whitened"]
 
-FORMAT = "fisherwalk-checkpoint"
-FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
 DEFAULT_EVERY = 10.0  # seconds between saves
-RUN_FILE = "run.json"
-STATE_FILE = "state.json"
 MAX_CHAINS = 1_000_000
 _SEGMENT = "segment-{:06d}.npz"
 _SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
 _TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
 
-
-
-# ----------------------------------------------------------------------------- files
-
-
-def damaged(file: Path, reason: str) -> CheckpointError:
-    directory = file.parent
-    return CheckpointError(
-        explain(
-            f"The checkpoint file {file} is damaged or incomplete: {reason}.",
-            f"checkpoint {directory}",
-            f"delete the directory {directory} to start the run afresh, or restore the file "
-            "from a copy; the run cannot be continued from it as it is.",
-        )
-    )
-
-
-def _reason(err: Exception) -> str:
-    """The first line of a package error's message, as a clause."""
-    first = str(err).splitlines()[0].rstrip(".")
-    return first[:1].lower() + first[1:]
-
-
-def read_checkpoint_json(file: Path, *, max_bytes: int) -> dict:
-    """A checkpoint's JSON file, size and depth bounded, format checked."""
-    try:
-        content = read_json(file, max_bytes=max_bytes, follow_symlinks=False,
-                            error=CheckpointError, where=f"checkpoint {file.parent}")
-    except CheckpointError as err:
-        raise damaged(file, _reason(err)) from err
-    if not isinstance(content, dict) or content.get("format") != FORMAT:
-        raise damaged(file, "it is not a fisherwalk checkpoint file")
-    if content.get("format_version") != FORMAT_VERSION:
-        raise damaged(file, f"format version {content.get('format_version')!r:.20}, this "
-                             f"fisherwalk reads {FORMAT_VERSION}")
-    if not isinstance(content.get("fingerprint"), str):
-        raise damaged(file, "it has no fingerprint")
-    return content
-
-
-def decode_state(content: Any, file: Path, dtype, chains: int, dim: int
-                 ) -> tuple[np.ndarray, np.ndarray]:
-    """The chains' (position, logdensity) stored in a checkpoint file, shapes checked
-    before allocating."""
-    if not isinstance(content, dict):
-        raise damaged(file, "the chains' state is missing")
-    where = f"checkpoint {file.parent}, file {file.name}"
-    name = np.dtype(dtype).name
-    try:
-        position = decode_array(content.get("position"), "position", where,
-                                max_size=chains * dim, shape=(chains, dim), dtype=name,
-                                error=CheckpointError)
-        logdensity = decode_array(content.get("logdensity"), "logdensity", where,
-                                  max_size=chains, shape=(chains,), dtype=name,
-                                  error=CheckpointError)
-    except CheckpointError as err:
-        raise damaged(file, f"the chains' state is malformed ({_reason(err)})") from err
-    return position, logdensity
 
 
 def open_store(path, walker, rng_key, draws: int, thin: int, chunk: int, *,
@@ -183,94 +131,6 @@ def open_store(path, walker, rng_key, draws: int, thin: int, chunk: int, *,
             "see the error of the process(es) named; give each process its own checkpoint "
             "folder, e.g. checkpoint=f\"run.ckpt/{jax.process_index()}\"."))
     return store
-
-
-# ----------------------------------------------------------------------------- identity
-
-
-def _identity(walker, key, draws: int, thin: int, chunk: int) -> dict:
-    positions = np.asarray(walker.flat_positions())
-    logdensity = np.asarray(walker.state.logdensity)
-    tuning = walker.tuning
-    name, value = tuning.parameter
-    return {
-        "draws": int(draws),
-        "thin": int(thin),
-        "chunk": int(chunk),
-        "chains": int(positions.shape[0]),
-        "dim": int(positions.shape[1]),
-        "names": list(walker.names),
-        "dtype": str(logdensity.dtype),
-        "key": {"impl": str(jax.random.key_impl(key)), "data": key_data(key).tolist()},
-        # the family's own parameter by its own name (the record digest names the family)
-        "tuning": {name: value,
-                   "target_acceptance": float(tuning.target_acceptance),
-                   "shape_kind": str(tuning.shape_kind)},
-        "digests": {"factor": digest(np.asarray(tuning.shape) * value),
-                    "mode": digest(walker.report.laplace.mode_flat),
-                    "states": digest(positions) + digest(logdensity),
-                    "record": _record_digest(tuning_record(walker)),
-                    **({"whitened": whitened_digests(walker.state)}
-                       if walker.family.stores_state else {})},
-    }
-
-
-def _legacy_fingerprint(identity: dict) -> str | None:
-    """The fingerprint of ``identity`` as a fisherwalk before the whitened digests wrote
-    it (None when there is nothing to drop)."""
-    digests = identity.get("digests") or {}
-    if "whitened" not in digests:
-        return None
-    return _fingerprint({**identity, "digests": {k: v for k, v in digests.items()
-                                                 if k != "whitened"}})
-
-
-def _record_digest(record: dict) -> str:
-    """SHA-256 of every field of a tuning record a resume uses (all but the notes and
-    the package version, which a rebuilt walker does not reproduce)."""
-    kept = {k: v for k, v in record.items() if k not in ("notes", "package_version")}
-    return hashlib.sha256(dumps(kept, sort_keys=True).encode("utf-8")).hexdigest()
-
-
-def _fingerprint(identity: dict) -> str:
-    return hashlib.sha256(dumps(identity, sort_keys=True).encode("utf-8")).hexdigest()
-
-
-def _differences(there: dict, here: dict) -> list[str]:
-    """What differs between a checkpoint's run and this one, in words."""
-    out = []
-    if there.get("dim") != here["dim"]:
-        out.append(f"dimension {there.get('dim')} in the checkpoint, {here['dim']} here")
-    elif there.get("names") != here["names"]:
-        out.append("other parameters: " + name_difference(
-            tuple(there.get("names") or ()), tuple(here["names"]),
-            there="the checkpoint", here="this walker"))
-    if there.get("dtype") != here["dtype"]:
-        out.append(f"float type {there.get('dtype')} in the checkpoint, {here['dtype']} here "
-                   "(set jax_enable_x64 as in the original run)")
-    for field in ("chains", "draws", "thin", "chunk"):
-        if there.get(field) != here[field]:
-            out.append(f"{field}={there.get(field)} in the checkpoint, {field}={here[field]} here")
-    if there.get("key") != here["key"]:
-        out.append("another random key")
-    digests = there.get("digests") or {}
-    if there.get("tuning") != here["tuning"] or digests.get("factor") != here["digests"]["factor"]:
-        old = there.get("tuning") or {}
-        if old.get("scale") == here["tuning"]["scale"]:
-            out.append("another proposal (the same scale; the shape, the whitening or the "
-                       "target acceptance differs: another walker, or an edited run.json)")
-        else:
-            out.append(f"another proposal (scale {old.get('scale')} in the checkpoint, "
-                       f"{here['tuning']['scale']} here)")
-    if digests.get("mode") != here["digests"]["mode"]:
-        out.append("another Laplace mode (another model or data set?)")
-    if (digests.get("record") != here["digests"]["record"] and not out
-            and digests.get("factor") == here["digests"]["factor"]):
-        out.append("another tuning record (whitening, Fisher information, Cholesky factor or "
-                   "another field differs from this walker's)")
-    if digests.get("states") != here["digests"]["states"]:
-        out.append("other starting states of the chains (another start() or refine() call)")
-    return out
 
 
 def _check_every(every: Any) -> float:
@@ -314,8 +174,8 @@ class Store:
         self.path = Path(path)
         self.every = _check_every(every)
         self.draws, self.chunk = int(draws), int(chunk)
-        self.identity = _identity(walker, rng_key, draws, thin, chunk)
-        self.fingerprint = _fingerprint(self.identity)
+        self.identity = identity(walker, rng_key, draws, thin, chunk)
+        self.fingerprint = fingerprint_of(self.identity)
         self._done = 0
         self._segments = 0
         self._digests: list[str] = []
@@ -374,7 +234,7 @@ class Store:
         run_file = p / RUN_FILE
         if RUN_FILE in names:
             run = read_checkpoint_json(run_file, max_bytes=2 * MAX_RECORD_BYTES)
-            if run["fingerprint"] == _legacy_fingerprint(self.identity):
+            if run["fingerprint"] == legacy_fingerprint(self.identity):
                 # written before the whitened starting states were digested: this walker's
                 # own state is used, so nothing in run.json's start reaches the chains
                 self.identity = {**self.identity, "digests": {
@@ -382,7 +242,7 @@ class Store:
                 self.fingerprint = run["fingerprint"]
             if run["fingerprint"] != self.fingerprint:
                 there = run.get("identity") if isinstance(run.get("identity"), dict) else {}
-                diffs = _differences(there, self.identity) or ["its fingerprint differs"]
+                diffs = differences(there, self.identity) or ["its fingerprint differs"]
                 same_model = not any(d.startswith(("dimension", "other param", "another Lap"))
                                      for d in diffs)
                 hint = ""
@@ -393,7 +253,7 @@ class Store:
                     f"The checkpoint {p} belongs to another run: {'; '.join(diffs)}.",
                     f"pass another checkpoint path for this run, or delete {p} if its draws "
                     f"are no longer needed (a checkpoint is never overwritten).{hint}")
-            if _fingerprint(run.get("identity")) != self.fingerprint:
+            if fingerprint_of(run.get("identity")) != self.fingerprint:
                 raise damaged(run_file, "its identity does not match its fingerprint")
             return
         others = [n for n in names if n != LOCK_FILE and not _TMP_RE.match(n)]
@@ -458,7 +318,7 @@ class Store:
             data = read_bytes(file, max_bytes=limit, follow_symlinks=False,
                               error=CheckpointError, where=f"checkpoint {self.path}")
         except CheckpointError as err:
-            raise damaged(file, _reason(err)) from err
+            raise damaged(file, first_clause(err)) from err
         if hashlib.sha256(data).hexdigest() != digest:
             raise damaged(file, "its SHA-256 digest is not the one state.json recorded when "
                                 "it was written (the file was changed or replaced)")
@@ -575,28 +435,3 @@ class Store:
         self._done, self._segments, self._digests, self._last = done, index + 1, digests, now
 
 
-def check_start_whitened(run: dict, state, run_file: Path) -> None:
-    """Refuse a run file whose ``start.whitened`` fields (decoded into ``state``) are not
-    the ones digested in its identity when the run began, naming the field."""
-    identity = run.get("identity") if isinstance(run.get("identity"), dict) else {}
-    recorded = (identity.get("digests") or {}).get("whitened")
-    if recorded is None:
-        return  # written before the digests: the fingerprint check of walk() applies
-    field = changed_field(str(recorded), state, "start.whitened.")
-    if field is not None:
-        raise damaged(run_file, f"'{field}' is not the chains' starting state the run began "
-                                "with (its SHA-256 differs from identity.digests.whitened): "
-                                "the file was edited")
-
-
-def whitened_state(content, state, chains: int, dim: int, dtype: str, state_file: Path):
-    """A gradient sampler's whitened chain state (of ``state``'s type) from a checkpoint
-    file's exact record of it."""
-    if not isinstance(content, dict) or set(content) != set(state._fields):
-        raise damaged(state_file, "it lacks the gradient sampler's whitened state")
-    shapes = {"position": (chains, dim), "logdensity": (chains,),
-              "logdensity_grad": (chains, dim)}
-    parts = [decode_array(content[f], f"whitened.{f}", f"checkpoint {state_file.parent}",
-                          max_size=chains * dim, shape=shapes[f], dtype=dtype,
-                          finite=True, error=CheckpointError) for f in state._fields]
-    return type(state)(*parts)
