@@ -70,6 +70,11 @@ def test_refine_runs_the_steps_asked(walkers, name):
     assert warm.steps in (400, 600) if name == registry.DEFAULT else warm.steps == 400
     assert warm.tuned == walker.family.parameter
     assert warm.tuned_start == getattr(walker.tuning, warm.tuned)
+    # without steps=, the family's own default length (400 random walk, 200 gradient)
+    default = fw.refine(walker, jax.random.key(4), progress=False).report.warmup
+    expected = walker.family.warmup_steps
+    assert (default.steps in (expected, expected * 3 // 2) if name == registry.DEFAULT
+            else default.steps == expected)
 
 
 @pytest.mark.slow

@@ -42,6 +42,7 @@ from .narration import (
     say_fit,
     say_sampling,
     say_warmup,
+    warmup_words,
 )
 from .parser import DEFAULT_WARMUP, build_parser
 from .preflight import check_before_work, check_numbers
@@ -56,7 +57,7 @@ MIN_KEPT = 4  # draws per chain an interrupted run needs for its outputs to be w
 
 
 def workflow(logdensity, position, *, seed: int, chains: int, draws: int | None,
-             warmup: int = DEFAULT_WARMUP, fisher=None, say: Say | None = None,
+             warmup: int | None = DEFAULT_WARMUP, fisher=None, say: Say | None = None,
              thin: int = 1, restarts: int = 0, pointwise=None, derived=None,
              checkpoint=None, labels=None, sampler: str = "rwm", predict=None) -> RunResult:
     """Laplace fit and tuning (start), warm-up (refine), sampling (walk), summary.
@@ -154,7 +155,7 @@ def _demo(args, argv) -> int:
     say("=" * 72)
     say(textwrap.indent(scene.story, "  "))
     say(f"\n  {n:,} records, {p} coefficients ({scene.family}); data in {data_path}")
-    say(f"  {args.chains} chains x {draws_words(args.draws)} after {args.warmup} warm-up steps, "
+    say(f"  {args.chains} chains x {draws_words(args.draws)} after {warmup_words(args.warmup)}, "
         f"seed {args.seed}\n")
     result = workflow(scene.logdensity, scene.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup, say=say,
@@ -230,7 +231,7 @@ def _run_in(args, argv, say, began, model, out: Path, checkpoint: Path | None) -
     data = f", {model.data.rows:,} rows of {model.data.path.name}" if model.data else ""
     say(f"fisherwalk run: {model.path} ({model.dim} parameters{data})")
     say("=" * 72)
-    say(f"  {args.chains} chains x {draws_words(args.draws)} after {args.warmup} warm-up steps, "
+    say(f"  {args.chains} chains x {draws_words(args.draws)} after {warmup_words(args.warmup)}, "
         f"seed {args.seed}\n")
     result = workflow(model.logdensity, model.initial_position, seed=args.seed,
                       chains=args.chains, draws=args.draws, warmup=args.warmup,

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 
 __all__ = ["Say", "say_fit", "say_warmup", "say_sampling", "say_files", "draws_words",
-           "step_line", "wrap"]
+           "warmup_words", "step_line", "wrap"]
 
 
 class Say:
@@ -91,6 +91,10 @@ def say_sampling(say: Say, trace, summary, seconds: float) -> None:
 
 def draws_words(draws) -> str:
     return "draws planned (ESS >= 400, R-hat < 1.01)" if draws is None else f"{draws} draws"
+
+
+def warmup_words(steps) -> str:
+    return "the sampler's default warm-up" if steps is None else f"{steps} warm-up steps"
 
 
 def step_line(title: str, seconds: float) -> str:

@@ -16,7 +16,8 @@ DEFAULT_CHAINS = 4
 # parameter has bulk and tail ESS >= 400 and R-hat < 1.01, sized from the theory's
 # predicted ESS per step (fisherwalk.run.plan).
 DEFAULT_DRAWS = None
-DEFAULT_WARMUP = 400
+# refine(steps=None): the sampler family's own warm-up (400 random walk, 200 gradient)
+DEFAULT_WARMUP = None
 DEFAULT_SEED = 0
 
 TRUST = ("'run' executes the Python code in MODEL_FILE with your own rights (the file\n"
@@ -33,7 +34,9 @@ def _common(sub: argparse.ArgumentParser, out_default: str) -> None:
                      help="draws kept per chain after the warm-up, at least 4 (default: "
                           "planned, until every ESS >= 400 and R-hat < 1.01, within a budget)")
     sub.add_argument("--warmup", default=DEFAULT_WARMUP, metavar="N",
-                     help=f"warm-up steps per chain (default {DEFAULT_WARMUP})")
+                     help="warm-up steps per chain, rounded up to a multiple of 200 "
+                          "(default: the sampler's own, 400 for the random walk, 200 for "
+                          "MALA, HMC and NUTS)")
     sub.add_argument("--seed", default=DEFAULT_SEED, metavar="S",
                      help=f"seed of the JAX random key, 0 to {MAX_SEED} (default "
                           f"{DEFAULT_SEED})")

@@ -154,7 +154,7 @@ def _reshaped(walker: Walker, cov: np.ndarray, n_eff: float):
 def refine(
     walker: Walker,
     rng_key: jax.Array,
-    steps: int = 400,
+    steps: int | None = None,
     *,
     reshape: bool | None = None,
     progress: bool | None = None,
@@ -178,8 +178,9 @@ def refine(
     steps
         Warm-up steps per chain, rounded up to a multiple of 200 (two phases of whole
         chunks) and run as asked, by every family (``report.warmup.steps`` says how many
-        ran; the random walk may add a third phase). The default, 400, is justified in
-        the module docstring.
+        ran; the random walk may add a third phase). Default (None): the family's own,
+        ``Family.warmup_steps``: 400 for the random walk (justified in the module
+        docstring), 200 for the gradient families (dual averaging from the theory step).
     reshape
         ``None`` (default): re-estimate the proposal shape only when a check fails;
         ``True``: always; ``False``: never (the parameter still adapts).
@@ -192,11 +193,13 @@ def refine(
         A new walker (nothing mutated): refined tuning, chains at their warm-up end,
         and ``report.warmup`` (:class:`WarmupReport`) saying what was done and why.
     """
+    state = continuable_state(walker, "refine()")
+    if steps is None:  # the family's own default length
+        steps = walker.family.warmup_steps
     steps = whole_number(steps, "steps", "refine(steps=...)")
     block = 2 * DEFAULT_CHUNK
     steps = int(math.ceil(steps / block) * block)
     key = as_key(rng_key, where="refine(rng_key=...)")
-    state = continuable_state(walker, "refine()")
     family, tuning0 = walker.family, walker.tuning
     fit, check = walker.report.laplace, walker.report.check
     khat, k_limit, outside = check.khat, check.threshold, check.outside_support

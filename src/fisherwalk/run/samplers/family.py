@@ -101,3 +101,4 @@ class Family(NamedTuple):
     blackjax_api: Any  # BlackJAX's own constructor of this sampler (e.g. blackjax.nuts)
     blackjax_takes_metric: bool = True  # whether that constructor takes the metric
     kernel: Callable | None = None  # a gradient family's one-chain step builder (run.gradient)
+    warmup_steps: int = 400  # refine()'s default length for this family (steps per chain)

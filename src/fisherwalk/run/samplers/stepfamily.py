@@ -31,6 +31,11 @@ from .family import Family, Phase, Settled
 
 __all__ = ["step_family", "ChunkView", "gradients_in_original"]
 
+# refine()'s default for the gradient families: two phases of one chunk each. Dual averaging
+# started at the theory's step settles within it (measured on the benchmark's logistic
+# targets; the random walk's Robbins-Monro needs its 400).
+GRADIENT_WARMUP_STEPS = 200
+
 
 class ChunkView(NamedTuple):
     """One call of a gradient engine, in the fields walk() collects (draw axis first)."""
@@ -180,7 +185,7 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
         settle=_settle, covariance_of_squares=True, blackjax=blackjax,
         blackjax_states=blackjax_states, blackjax_parameters=blackjax_parameters,
         blackjax_api=blackjax_api, blackjax_takes_metric=blackjax_takes_metric,
-        kernel=kernel)
+        kernel=kernel, warmup_steps=GRADIENT_WARMUP_STEPS)
 
 
 def hmc_like_states(kind):
