@@ -38,8 +38,8 @@ from .stepsize import GradientWarmup, warm_up
 from .walker import GradientTuning, Model
 
 __all__ = ["SAMPLER_CHOICES", "check_sampler", "gradient_tuning", "gradient_model",
-           "gradient_state", "warm_gradient", "gradient_chunks", "choose_sampler",
-           "SamplerChoice"]
+           "gradient_state", "warm_gradient", "dual_averaging_target", "gradient_chunks",
+           "choose_sampler", "SamplerChoice"]
 
 SAMPLER_CHOICES = ("rwm", "mala", "hmc", "nuts", "auto")
 ANSWER_ESS = 400.0  # bulk ESS per parameter that counts as an answer (Vehtari et al. 2021)
@@ -58,12 +58,18 @@ def check_sampler(sampler: Any) -> str:
 
 
 def gradient_tuning(sampler: str, shape, cholesky, shape_kind: str,
-                    step_size: float | None = None) -> GradientTuning:
-    """The tuning of a gradient sampler: the theory step for this d unless given."""
+                    step_size: float | None = None, aim: float | None = None) -> GradientTuning:
+    """The tuning of a gradient sampler: the theory step for this d unless given; ``aim``
+    the user's target acceptance (:func:`fisherwalk.run.aim.check_aim`)."""
     shape, cholesky = np.asarray(shape), np.asarray(cholesky)
     if step_size is None:
         step_size = optimal_gradient_step(sampler, shape.shape[0]).step_size
-    return GradientTuning(sampler, float(step_size), shape, cholesky, shape_kind)
+    return GradientTuning(sampler, float(step_size), shape, cholesky, shape_kind, aim)
+
+
+def dual_averaging_target(tuning: GradientTuning) -> float:
+    """What dual averaging aims for: the user's target acceptance, else the theory's."""
+    return float(tuning.aim) if tuning.aim is not None else float(tuning.choice.acceptance)
 
 
 def gradient_model(model: Model, tuning: GradientTuning, mode_flat, chains: int) -> Model:
@@ -71,7 +77,7 @@ def gradient_model(model: Model, tuning: GradientTuning, mode_flat, chains: int)
     flat_logdensity = _flat(model)
     engine = gradient.make_gradient_engine(
         tuning.sampler, flat_logdensity, np.asarray(mode_flat), tuning.precision_cholesky,
-        int(chains), target_acceptance=tuning.choice.acceptance)
+        int(chains), target_acceptance=dual_averaging_target(tuning))
     return model._replace(engine=engine)
 
 

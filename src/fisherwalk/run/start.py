@@ -18,11 +18,12 @@ import numpy as np
 
 from ..base.checks import spd_matrix, whole_number
 from ..base.keys import as_key, normals, stream
-from ..errors import FisherwalkWarning, InputError, explain, warn_user
+from ..errors import FisherwalkWarning, InputError, NoModeError, explain, warn_user
 from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
+from .aim import check_aim
 from .gradient_run import (
     check_sampler,
     choose_sampler,
@@ -31,6 +32,7 @@ from .gradient_run import (
     gradient_tuning,
     integration_time_words,
 )
+from .modeless import modeless_start
 from .progress import progress_bar
 from .tuningfile import SavedTuning, check_tuning
 from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
@@ -190,6 +192,7 @@ def start(
     scouts: int = SCOUTS,
     progress: bool | None = None,
     sampler: str = "rwm",
+    target_acceptance: float | None = None,
     **laplace_options,
 ) -> Walker:
     """Tune a sampler from the Laplace approximation of the posterior.
@@ -239,6 +242,11 @@ def start(
         15 for NUTS, whose step then starts dual averaging), or ``"auto"``: time one
         batched log density and one batched gradient here and pick the sampler predicted
         to reach bulk ESS 400 first (the report says why).
+    target_acceptance
+        HMC and NUTS (and "auto" when it picks them): the acceptance dual averaging aims
+        for, in (0, 1); default the Gaussian-limit optimum for HMC and 0.8 for NUTS.
+        Raise it (0.9, 0.95) when the summary reports divergent transitions; it is kept
+        in the tuning file and the run record.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 
@@ -272,6 +280,7 @@ def start(
                   "unseen. Use chains=4 (the default) unless you know why one chain "
                   "suffices.", FisherwalkWarning)
     sampler = check_sampler(sampler)
+    aim = check_aim(target_acceptance, sampler)
     key = as_key(rng_key, where="start(rng_key=...)")
     dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
         int(np.size(leaf)) for leaf in jax.tree.leaves(position))
@@ -281,8 +290,14 @@ def start(
     bar = progress_bar(2, progress, "start: Laplace fit (compiling, searching)", unit="phase")
     if fit is None:
         key_restarts = jax.random.fold_in(key, 1) if restarts or scouts else None
-        fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
-                      rng_key=key_restarts, scouts=scouts, **laplace_options)
+        try:
+            fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
+                          rng_key=key_restarts, scouts=scouts, **laplace_options)
+        except NoModeError as err:  # no mode: NUTS warmed up from draws (run.modeless)
+            if bar is not None:
+                bar.close()
+            return modeless_start(logdensity_fn, position, key, chains, err.runaway,
+                                  sampler=sampler, target_acceptance=aim)
     elif not isinstance(fit, LaplaceFit):
         raise InputError(explain(f"fit={type(fit).__name__} is not a LaplaceFit.",
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
@@ -316,8 +331,12 @@ def start(
         picked = choose_sampler(model, positions, len(fit.names))
         sampler = picked.sampler
         notes.append(picked.note)
+    if aim is not None and sampler not in ("hmc", "nuts"):
+        notes.append(f"target_acceptance={aim} was not used: sampler='auto' chose "
+                     f"{sampler!r}, which has no dual averaging.")
+        aim = None
     if sampler != "rwm":
-        tuning = gradient_tuning(sampler, shape_matrix, fit.cholesky, kind)
+        tuning = gradient_tuning(sampler, shape_matrix, fit.cholesky, kind, aim=aim)
         model = gradient_model(model, tuning, fit.mode_flat, chains)
         state = gradient_state(model, positions, fit.names)
         notes.append(f"Sampler {sampler!r}: BlackJAX's kernel on the whitened posterior "

@@ -207,6 +207,9 @@ def tuning_record(walker: Walker) -> dict:
             "factor": _plain_array(_factor(tuning), "factor"),
             "scale": _plain_number(tuning.scale, "scale"),
             "target_acceptance": _plain_number(tuning.target_acceptance, "target_acceptance"),
+            # the user's target_acceptance= for dual averaging (HMC, NUTS); null if none
+            "aim": (None if getattr(tuning, "aim", None) is None
+                    else _plain_number(tuning.aim, "aim")),
             "spectrum": _plain_array(tuning.spectrum, "spectrum"),
             "predicted_jump": _plain_number(tuning.predicted_jump, "predicted_jump"),
             "whitening": _plain_array(tuning.whitening, "whitening"),
@@ -353,8 +356,11 @@ def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
         tuning = Tuning(matrix(t["shape"]), float(t["scale"]), matrix(t["whitening"]),
                         str(t["shape_kind"]), str(t.get("criterion", "slowest")))
     else:
+        aim = t.get("aim")
+        if aim is not None:
+            aim = probability(aim, "tuning.aim", "tuning record")
         tuning = GradientTuning(str(t["sampler"]), float(t["scale"]), matrix(t["shape"]),
-                                matrix(t["whitening"]), str(t["shape_kind"]))
+                                matrix(t["whitening"]), str(t["shape_kind"]), aim)
     return SavedTuning(tuning, tuple(record["names"]), record)
 
 

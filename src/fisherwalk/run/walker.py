@@ -175,6 +175,7 @@ class GradientTuning(NamedTuple):
     shape: np.ndarray  # (d, d) S: S Sᵀ is the inverse mass matrix (the metric)
     whitening: np.ndarray  # (d, d) lower L, L Lᵀ = P, the precision the walker believes
     shape_kind: str  # "fisher", "diagonal", "identity", "user", "saved" or "warm-up"
+    aim: float | None = None  # the user's target_acceptance for dual averaging (HMC, NUTS)
 
     @property
     def dim(self) -> int:
@@ -221,7 +222,10 @@ class GradientTuning(NamedTuple):
     @property
     def target_acceptance(self) -> float:
         """The acceptance predicted at ``step_size`` on the Gaussian picture (NUTS: the
-        dual-averaging target, 0.8, which its circle model only roughly predicts)."""
+        dual-averaging target, 0.8, which its circle model only roughly predicts); the
+        user's ``target_acceptance`` when one was given."""
+        if self.aim is not None:
+            return float(self.aim)
         if self.sampler == "nuts":
             return NUTS_TARGET_ACCEPTANCE
         return float(step_acceptance(self.sampler, self.step_size, self.dim))

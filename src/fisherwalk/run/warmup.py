@@ -51,7 +51,7 @@ from ..base.keys import as_key, stream
 from ..results.diagnostics import ess_mean
 from . import engine
 from .engine import DEFAULT_CHUNK, ChainState, run_chunks
-from .gradient_run import gradient_model, gradient_state, warm_gradient
+from .gradient_run import dual_averaging_target, gradient_model, gradient_state, warm_gradient
 from .progress import progress_bar
 from .proposal import shape_from_cholesky
 from .start import tuning_for
@@ -113,7 +113,10 @@ def _run_phase(walker, noise_key, state, factor, steps, adapt_from, target, bar,
 
 
 def _khat_words(khat: float, limit: float) -> str:
-    """PSIS k̂ in words; -inf means the importance ratios were all equal."""
+    """PSIS k̂ in words; -inf means the importance ratios were all equal; NaN that there
+    was no Laplace approximation to check (no mode: :mod:`fisherwalk.run.modeless`)."""
+    if math.isnan(khat):
+        return "no PSIS k̂: the posterior has no mode, so no Laplace approximation"
     if khat == -math.inf:
         return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (at each "
                 "of them the log density equals the Laplace Gaussian's up to a constant; "
@@ -224,9 +227,9 @@ def _refine_gradient(walker: Walker, key, steps: int, reshape: bool | None) -> W
         notes.append("Every check agreed with the Gaussian picture: kept the metric H⁻¹.")
     warm2 = warm_gradient(model, tuning1, jax.random.fold_in(key, 2), state, half, names)
     final = tuning1._replace(step_size=warm2.step_size)
-    target = tuning0.choice.acceptance
+    target = dual_averaging_target(tuning0)
     notes.append(
-        f"Step size {tuning0.step_size:.4g} (theory) -> {warm1.step_size:.4g} -> "
+        f"Step size {tuning0.step_size:.4g} (start) -> {warm1.step_size:.4g} -> "
         f"{warm2.step_size:.4g} by dual averaging toward acceptance {target:.3f}; acceptance "
         f"in the second half {warm2.acceptance:.3f} (Monte Carlo error "
         f"{warm2.acceptance_mcse:.3f}); " + _khat_words(check.khat, check.threshold) + ".")
