@@ -15,6 +15,7 @@ import numpy as np
 from ..base.pytrees import parameter_names, ravel_batch
 from .coverage import mode_caveats
 from .diagnostics import whitened_jump
+from .divergences import divergence_warning
 from .report import summarize
 
 __all__ = ["Trace", "derived_names", "per_step_jump"]
@@ -111,12 +112,8 @@ class Trace(NamedTuple):
         modes, flags = mode_caveats(self.flat, self.names, getattr(fit, "modes_flat", ()),
                                     [h for _, h in fit.modes], getattr(fit, "modes_fisher", ()))
         if self.divergent is not None and self.divergent.sum():
-            count, total = int(self.divergent.sum()), self.divergent.size
-            text = (f"{count} of {total} transitions were divergent (the leapfrog energy error "
-                    "exceeded 1000): the sampler met curvature its step size cannot follow, "
-                    "and the draws near there may be biased. Where: the whole run. What to "
-                    "do: look for a funnel or a boundary in the posterior; reparametrise, or "
-                    "run refine() again (a smaller step) and compare.")
+            text = divergence_warning(self.flat, self.divergent, self.names,
+                                      getattr(self.walker.tuning, "aim", None))
             summary = summary._replace(warnings=summary.warnings + (text,))
         if modes:
             flags = tuple(flags) + ("",) * (len(names) - len(flags))
