@@ -113,8 +113,15 @@ def find_no_mode(s: Search, info: np.ndarray | None, compiled: Callable, x0, tol
     sign = 1.0 if drift > 0 else -1.0
     name = names[i]
     toward = "+∞" if sign > 0 else "−∞"
+    end_finite = bool(np.isfinite(s.x).all() and np.isfinite(s.logdensity))
+    flat_end = end_finite and bool(
+        np.max(np.abs(gradient)) <= float(tol) * max(1.0, abs(float(s.logdensity))))
+    head = ("The posterior has no usable mode: the search stopped where its curvature "
+            "spans too many orders of magnitude for a Laplace approximation (the neck of "
+            "a funnel, whose mass lies elsewhere)" if flat_end else
+            "The posterior has no mode")
     message = (
-        f"The posterior has no mode: the mode search drove {name} toward {toward} (from "
+        f"{head}: the mode search drove {name} toward {toward} (from "
         f"{x0[i]:.3g} at the start to {path[last, i]:.3g} after {int(budgets[last])} "
         f"iterations) while the log density kept rising ({values[mid]:.4g} -> "
         f"{values[last]:.4g}, about {rise / abs(drift):.2f} per unit of {name}), as in a "

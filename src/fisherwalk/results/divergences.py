@@ -84,7 +84,9 @@ def divergence_warning(flat: np.ndarray, divergent: np.ndarray, names: tuple[str
         name = names[site.index]
         where = (f"Where: at low values of {name} (the divergences' mean percentile of it "
                  f"is {site.percentile:.2f}), where the other parameters' spread shrinks "
-                 f"to {site.collapse:.2f} of its overall size: a funnel.")
+                 f"to {site.collapse:.2f} of its overall size: a funnel. The chains "
+                 f"could not follow it into the neck at this step size, so the low tail of "
+                 f"{name} is under-represented (its mean biased upward, its sd too small).")
         todo = (f"What to do: write the parameters that {name} scales in the non-centred "
                 f"form (θ_j = μ + τ z_j, z_j ~ N(0, 1)); if the data per group are strong "
                 f"keep the centred form and raise target_acceptance to {higher} "
