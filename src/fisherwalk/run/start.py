@@ -21,6 +21,7 @@ from ..base.keys import as_key, normals, stream
 from ..errors import FisherwalkWarning, InputError, NoModeError, explain, warn_user
 from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
+from ..fit.symmetry import probe_symmetry, symmetry_warning
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
 from .aim import check_aim
@@ -103,6 +104,19 @@ def tuning_for(shape, shape_kind: str, cholesky, *, criterion: str = "slowest") 
     shape, cholesky = np.asarray(shape), np.asarray(cholesky)
     draft = Tuning(shape, 1.0, cholesky, shape_kind, criterion)
     return draft._replace(scale=float(draft.choice.scale))
+
+
+def _padded(evaluate, rows: int):
+    """``evaluate`` on fewer points, padded to the ``rows`` it was compiled for (no new
+    compilation for a handful of probes)."""
+
+    def padded(points):
+        points = np.asarray(points)
+        m = points.shape[0]
+        full = np.concatenate([points, np.repeat(points[:1], max(rows - m, 0), axis=0)])
+        return np.asarray(evaluate(full))[:m]
+
+    return padded
 
 
 def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
@@ -323,6 +337,11 @@ def start(
         bar.set_description("start: Laplace draws, PSIS check")
     model = make_model(logdensity_fn, fit.mode, chains)
     positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
+    symmetric = probe_symmetry(_padded(model.evaluate, max(LAPLACE_DRAWS, chains)), fit.mode,
+                               fit.mode_flat, fit.logdensity, fit.cholesky)
+    if symmetric:  # label switching: said at start, kept in the report's notes
+        warn_user(symmetry_warning(symmetric), FisherwalkWarning)
+        state_notes.append(symmetry_warning(symmetric))
     notes.extend(state_notes)
     if len(fit.modes_flat) > 1:
         positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
