@@ -25,6 +25,7 @@ from ..fit.symmetry import probe_symmetry, symmetry_warning
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
 from .aim import check_aim
+from .evidence import weigh_evidence
 from .gradient_run import (
     check_sampler,
     choose_sampler,
@@ -35,6 +36,7 @@ from .gradient_run import (
 )
 from .modeless import modeless_start
 from .progress import progress_bar
+from .resample import resample_starts
 from .tuningfile import SavedTuning, check_tuning
 from .walker import LaplaceCheck, StartReport, Tuning, Walker, assemble, make_model
 
@@ -158,6 +160,13 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
             f"PSIS k̂ = {khat:.2f} exceeds {check.threshold:.2f}: the Laplace approximation "
             "misses the posterior's tails (refine() will check the shape and may re-estimate it)."
         )
+        if finite.sum() >= 2 * chains:  # better starts from the same draws (run/resample.py)
+            sd = np.sqrt(np.sum(fisher_shape**2, axis=1))
+            moved = resample_starts(draws[finite], (logp - logq)[finite], positions,
+                                    stream(key, 4), sd, fit.names)
+            positions = moved.positions.astype(positions.dtype)
+            logdens = logp[finite][moved.indices].astype(logdens.dtype)
+            notes.append(moved.note)
     return positions, logdens, check, notes
 
 
@@ -348,8 +357,9 @@ def start(
         notes.append(note)
     if sampler == "auto":
         picked = choose_sampler(model, positions, len(fit.names))
-        sampler = picked.sampler
-        notes.append(picked.note)
+        weighed = weigh_evidence(picked.seconds_per_answer, check.khat, check.threshold)
+        sampler = weighed.sampler
+        notes.extend(n for n in (picked.note, weighed.note) if n)
     if aim is not None and sampler not in ("hmc", "nuts"):
         notes.append(f"target_acceptance={aim} was not used: sampler='auto' chose "
                      f"{sampler!r}, which has no dual averaging.")

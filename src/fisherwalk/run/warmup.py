@@ -20,14 +20,17 @@ N(mode, H⁻¹). The warm-up checks that in three ways and repairs what it can:
    answer) and phase 2 runs at it, measuring the acceptance there; if that acceptance
    departs from the prediction beyond 3 Monte Carlo standard errors, a third phase of
    the same length adapts the scale after all.
-3. When a check fails beyond its Monte Carlo error, the proposal shape is re-estimated
-   from the warm-up draws, shrunk toward H⁻¹ (weight n_eff / (n_eff + d + 1) on the
-   draws: a choice, common practice, no published source), and the scale and target
-   acceptance are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the
-   spectrum of A = Sᵀ P S, P the precision the walker now believes). When a check fails,
-   phase 2 (the other half) adapts the scale again, and the final scale is the average of
-   the adapted log scale over the second half of phase 2 (Polyak & Juditsky 1992, SIAM J.
-   Control Optim. 30(4)).
+3. When a check fails beyond its Monte Carlo error, the proposal shape (or a gradient
+   sampler's metric) is learned from draws: BlackJAX's window adaptation, started from the
+   chains' positions and the Laplace metric, with windows that double so that early draws
+   are forgotten (:mod:`fisherwalk.run.metric_repair`); the scale and target acceptance
+   are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the spectrum
+   of A = Sᵀ P S, P the precision the walker now believes). When a check fails, phase 2
+   (the other half) adapts the scale again, and the final scale is the average of the
+   adapted log scale over the second half of phase 2 (Polyak & Juditsky 1992, SIAM J.
+   Control Optim. 30(4)). When "auto" chose the random walk or MALA and the covariance
+   check fails, the walker switches to NUTS with the learned metric
+   (:func:`fisherwalk.run.evidence.redecide`).
 
 Default length: 400 steps. Started near stationarity from N(mode, H⁻¹), the chains need
 no burn-in to travel; the warm-up only has to settle one scalar (a few dozen steps from a
@@ -49,11 +52,14 @@ from scipy.stats import chi2
 from ..base.checks import whole_number
 from ..base.keys import as_key, stream
 from ..results.diagnostics import ess_mean
+from ..theory.gradient import NUTS_TARGET_ACCEPTANCE
 from . import engine
+from .draws_warmup import metric_factors
 from .engine import DEFAULT_CHUNK, ChainState, run_chunks
+from .evidence import redecide
 from .gradient_run import dual_averaging_target, gradient_model, gradient_state, warm_gradient
+from .metric_repair import learn_metric, learned_words, nuts_from_learned, positions_of
 from .progress import progress_bar
-from .proposal import shape_from_cholesky
 from .start import tuning_for
 from .walker import Walker, continuable_state
 
@@ -159,29 +165,27 @@ def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = F
     return cov, spectrum, (float(low), float(high)), n_eff, p_value
 
 
-def _reshaped(walker: Walker, cov: np.ndarray, n_eff: float):
-    """A new shape S from the warm-up covariance, shrunk toward H⁻¹; with the lower
-    Cholesky factor of its precision and the weight on the draws."""
-    fit = walker.report.laplace
-    d = cov.shape[0]
-    fisher_shape = np.asarray(shape_from_cholesky(fit.cholesky))
-    laplace_cov = fisher_shape @ fisher_shape.T
-    weight = n_eff / (n_eff + d + 1.0)
-    blend = weight * cov + (1.0 - weight) * laplace_cov
-    blend = 0.5 * (blend + blend.T)
-    dtype = np.asarray(walker.tuning.shape).dtype
-    if walker.tuning.shape_kind == "diagonal":
-        shape = np.diag(np.sqrt(np.diag(blend)))
-    else:
-        shape = np.linalg.cholesky(blend)
-    precision_chol = np.linalg.cholesky(np.linalg.inv(blend))
-    return shape.astype(dtype), precision_chol.astype(dtype), weight
+def chosen_by_auto(walker: Walker) -> bool:
+    """Whether start(sampler="auto") made the walker's choice (its note says so)."""
+    return any(str(n).startswith("sampler='auto' chose") for n in walker.report.notes)
 
 
-def _reshaped_tuning(walker: Walker, cov: np.ndarray, n_eff: float):
-    """The random walk's tuning for the re-estimated shape, and the weight on the draws."""
-    shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
-    return tuning_for(shape, "warm-up", precision_chol), weight
+def _switched(walker: Walker, learned, switch: str, learned_note: str, measured) -> Walker:
+    """A NUTS walker with the learned metric, replacing a choice the warm-up refuted.
+
+    ``measured``: (steps, k̂, threshold, outside, start scale, phase-1 scale, phase-1
+    acceptance, spectrum, bounds, p-value, n_eff, reasons) of the phase already run."""
+    (steps, khat, k_limit, outside, scale0, scale1, acc1, spectrum, bounds, p_value,
+     n_eff, reasons) = measured
+    tuning, model, state = nuts_from_learned(walker, learned,
+                                             getattr(walker.tuning, "aim", None))
+    notes = (switch, learned_note)
+    warm = WarmupReport(
+        steps + learned.steps, khat, k_limit, outside, scale0, scale1, learned.step_size,
+        learned.target_acceptance, acc1, learned.acceptance, spectrum, bounds, p_value,
+        n_eff, True, reasons, tuning.spectrum, notes)
+    return walker._replace(state=state, tuning=tuning, model=model,
+                           report=walker.report._replace(warmup=warm))
 
 
 def _refine_gradient(walker: Walker, key, steps: int, reshape: bool | None) -> Walker:
@@ -210,17 +214,29 @@ def _refine_gradient(walker: Walker, key, steps: int, reshape: bool | None) -> W
         tuning0.shape_kind != "identity")
     model, state, notes = walker.model, warm1.state, []
     tuning1 = tuning0._replace(step_size=warm1.step_size)
-    if do_reshape:
-        shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
-        tuning1 = tuning1._replace(shape=shape, whitening=precision_chol,
+    if do_reshape:  # the metric learned from draws (run/metric_repair.py)
+        switch = redecide(tuning0.sampler, chosen_by_auto(walker), p_value < COVARIANCE_LEVEL,
+                          check.khat, check.threshold)
+        learned = learn_metric(
+            walker, positions_of(walker, warm1.state), jax.random.fold_in(key, 3),
+            step_size=warm1.step_size,
+            target_acceptance=(NUTS_TARGET_ACCEPTANCE if switch
+                               else dual_averaging_target(tuning0)))
+        if switch:
+            return _switched(walker, learned, switch, learned_words(
+                learned, "; ".join(reasons)), (half, check.khat, check.threshold,
+                                               check.outside_support, tuning0.step_size,
+                                               warm1.step_size, warm1.acceptance, spectrum,
+                                               bounds, p_value, n_eff, tuple(reasons)))
+        shape, precision_chol = metric_factors(learned.inverse_mass_matrix)
+        dtype = np.asarray(tuning0.shape).dtype
+        tuning1 = tuning1._replace(shape=shape.astype(dtype), step_size=learned.step_size,
+                                   whitening=precision_chol.astype(dtype),
                                    shape_kind="warm-up")
-        positions = fit.mode_flat + np.asarray(warm1.state.position) @ np.asarray(
-            walker.model.engine.whitening).T
         model = gradient_model(walker.model, tuning1, fit.mode_flat, walker.chains)
-        state = gradient_state(model, positions, names)
-        notes.append("Re-estimated the metric from the warm-up draws (weight "
-                     f"{weight:.2f} on the draws, the rest on H⁻¹) because "
-                     + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
+        state = gradient_state(model, learned.position.astype(dtype), names)
+        notes.append(learned_words(learned, "; ".join(reasons) if reasons
+                                   else "reshape=True was asked"))
     elif reasons:
         notes.append("Kept the metric H⁻¹ although " + "; ".join(reasons) + ".")
     else:
@@ -317,12 +333,27 @@ def refine(
         if tuning0.shape_kind == "identity":
             do_reshape = False
         notes = []
-        if do_reshape:
-            tuning1, weight = _reshaped_tuning(walker, cov, n_eff)
-            notes.append(
-                "Re-estimated the proposal shape from the warm-up draws (weight "
-                f"{weight:.2f} on the draws, the rest on H⁻¹) because "
-                + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
+        if do_reshape:  # the shape learned from draws (run/metric_repair.py)
+            learned = learn_metric(walker, np.asarray(state.position),
+                                   jax.random.fold_in(key, 3))
+            why = "; ".join(reasons) if reasons else "reshape=True was asked"
+            switch = redecide("rwm", chosen_by_auto(walker), p_value < COVARIANCE_LEVEL,
+                              khat, k_limit)
+            if switch:  # "auto" chose on a picture the warm-up refuted: NUTS instead
+                if bar is not None:
+                    bar.close()
+                return _switched(walker, learned, switch, learned_words(learned, why),
+                                 (half, khat, k_limit, outside, tuning0.scale,
+                                  tuning0.scale * math.exp(log_m1), acc1, spectrum, bounds,
+                                  p_value, n_eff, tuple(reasons)))
+            shape, precision_chol = metric_factors(learned.inverse_mass_matrix)
+            dtype = np.asarray(tuning0.shape).dtype
+            tuning1 = tuning_for(shape.astype(dtype), "warm-up", precision_chol.astype(dtype))
+            # phase 2 continues from the window warm-up's chains, which have travelled
+            # further into the tails than phase 1's: its scale then fits the whole posterior
+            state = ChainState(learned.position.astype(dtype),
+                               learned.logdensity.astype(dtype))
+            notes.append(learned_words(learned, why))
             log_m_start, rate = 0.0, ADAPTATION_RATE
         elif reasons:
             tuning1 = tuning0
