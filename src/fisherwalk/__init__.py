@@ -14,6 +14,7 @@ from .errors import (
     InputError,
     ModelError,
     ModelFileError,
+    NoModeError,
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
@@ -60,6 +61,7 @@ __all__ = [
     "InputError",
     "ModelError",
     "FitError",
+    "NoModeError",
     "SamplingError",
     "CheckpointError",
     "ModelFileError",

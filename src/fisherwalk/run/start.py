@@ -281,6 +281,18 @@ def start(
 
     Notes
     -----
+    No mode: when the mode search runs off along one parameter while the log density
+    keeps rising (a centred hierarchical model's log scale going to −∞, a funnel), start()
+    warns (naming that parameter, the non-centred form first) and returns a NUTS walker
+    warmed up from draws by BlackJAX's window adaptation from the best points the search
+    visited (:mod:`fisherwalk.run.modeless`); ``report.laplace.no_mode`` says so.
+
+    Evidence: with PSIS k̂ above its threshold the chain starts are resampled from the
+    Laplace draws by their Pareto-smoothed weights (:mod:`fisherwalk.run.resample`), and
+    "auto" discounts (k̂ > threshold) or drops (k̂ > 1) the random walk and MALA
+    (:mod:`fisherwalk.run.evidence`). A posterior symmetric under swapping labels is said
+    to be (:mod:`fisherwalk.fit.symmetry`).
+
     The scale l and the target acceptance maximise the expected squared jump of the
     Gaussian limit (Roberts, Gelman & Gilks 1997, Ann. Appl. Probab. 7(1); Gelman,
     Roberts & Gilks 1996, Bayesian Statistics 5), computed for this finite d.
