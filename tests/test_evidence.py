@@ -17,6 +17,7 @@ import warnings
 import jax
 import jax.numpy as jnp
 import numpy as np
+import pytest
 from scipy.special import digamma
 
 import fisherwalk
@@ -76,6 +77,7 @@ def test_high_khat_resamples_the_starts_toward_the_bulk():
     assert np.all(np.abs(starts.mean(axis=0) - exact) < abs(mode - exact))
 
 
+@pytest.mark.slow
 def test_auto_random_walk_refuted_by_the_warm_up_switches_to_nuts():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -107,6 +107,7 @@ def test_an_ordinary_model_and_an_improper_one_are_not_called_modeless():
     assert not isinstance(raised.value, NoModeError)
 
 
+@pytest.mark.slow
 def test_a_centred_model_starts_a_nuts_walker_from_draws():
     walker, messages = _start_centred()
     assert walker.gradient and walker.tuning.sampler == "nuts"
