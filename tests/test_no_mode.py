@@ -132,10 +132,12 @@ def _check_log_tau(draws: np.ndarray):
 
 @pytest.mark.slow
 def test_centred_eight_groups_against_quadrature():
-    # target_acceptance 0.95: at the default 0.8 the centred form's lower tail of log τ
-    # is under-visited (measured: sd 0.345 against 0.376, 6 MCSE, with 32 divergences);
-    # the smaller step follows the neck. Divergences, if any, are reported in the summary.
-    walker, _ = _start_centred(target_acceptance=0.95)
+    # target_acceptance 0.99: the centred form's lower tail of log τ is under-visited at
+    # larger steps (measured with these keys: sd 0.345 against 0.376 at the default 0.8,
+    # 32 divergences; 0.351, 4.5 MCSE off, at 0.95 with 4 divergences; 0.362, 1.4 MCSE,
+    # at 0.99 with 1). This is the funnel's known bias, not noise: the test pins the
+    # remedy the divergence warning recommends. Divergences, if any, are reported.
+    walker, _ = _start_centred(target_acceptance=0.99)
     walker = fisherwalk.refine(walker, jax.random.key(1), progress=False)
     trace = fisherwalk.walk(walker, jax.random.key(2), draws=4000, progress=False)
     _check_log_tau(np.asarray(trace.draws["log_tau"]))
