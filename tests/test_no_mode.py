@@ -158,3 +158,28 @@ def test_noncentred_eight_groups_against_quadrature():
     divergent = int(trace.divergent.sum())
     warned = [w for w in trace.summary().warnings if "divergent" in w]
     assert bool(warned) == (divergent > 0)
+
+
+def test_no_mode_checks_the_chain_starts_given():
+    # start(chain_starts=...) reaches the draws-based warm-up too (run/modeless.py), and
+    # its starts are checked there as start() checks them: a NaN start is named, not run
+    p0 = {"mu": jnp.zeros(()), "log_tau": jnp.zeros(()), "theta": jnp.zeros(8)}
+    bad = {"mu": jnp.array([0.0, jnp.nan, 0.0, 0.0]), "log_tau": jnp.zeros(4),
+           "theta": jnp.ones((4, 8))}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(fisherwalk.InputError, match="chain 1, parameter mu"):
+            fisherwalk.start(centred, p0, jax.random.key(0), chain_starts=bad,
+                             progress=False)
+
+
+@pytest.mark.slow
+def test_no_mode_warms_up_from_the_chain_starts_given():
+    p0 = {"mu": jnp.zeros(()), "log_tau": jnp.zeros(()), "theta": jnp.zeros(8)}
+    starts = {"mu": jnp.zeros(4), "log_tau": jnp.zeros(4), "theta": jnp.ones((4, 8))}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        walker = fisherwalk.start(centred, p0, jax.random.key(0), chain_starts=starts,
+                                  progress=False)
+    assert walker.report.laplace.no_mode and walker.tuning.sampler == "nuts"
+    assert "from the chain_starts given" in walker.report.notes[-1]

@@ -28,6 +28,7 @@ from ..fit.runaway import Runaway, advice, start_points
 from ..theory.gradient import NUTS_TARGET_ACCEPTANCE
 from .draws_warmup import DrawsWarmup, metric_factors, window_warmup
 from .samplers import registry
+from .starts import checked_starts
 from .tuning import Tuning
 from .walker import LaplaceCheck, StartReport, Walker, assemble, flat_logdensity, make_model
 
@@ -60,7 +61,7 @@ def draws_fit(warm: DrawsWarmup, position: Any, logdensity_fn: Callable,
 def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chains: int,
                    found: Runaway, *, sampler: str = registry.FALLBACK,
                    target_acceptance: float | None = None,
-                   steps: int | None = None) -> Walker:
+                   steps: int | None = None, chain_starts: Any = None) -> Walker:
     """A NUTS walker warmed up from draws, for a posterior whose mode search ran off.
 
     Parameters
@@ -77,6 +78,9 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
         Dual averaging's aim (default BlackJAX's NUTS 0.8).
     steps
         Window-adaptation steps per chain (default BlackJAX's 1000).
+    chain_starts
+        start()'s ``chain_starts``: when given, the window adaptation starts there instead
+        of at the best points the search visited (checked as start() checks them).
     """
     began = time.perf_counter()
     target = NUTS_TARGET_ACCEPTANCE if target_acceptance is None else float(target_acceptance)
@@ -86,6 +90,12 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
     starts = start_points(found, noise)
     logp = np.asarray(model.evaluate(starts.astype(np.asarray(found.start).dtype)))
     starts[~np.isfinite(logp)] = found.start
+    where_from = "the best points the search visited before the run-off"
+    if chain_starts is not None:
+        flat = pytrees.flatten_position(position, where="start(position=...)")
+        starts, _ = checked_starts(chain_starts, position, tuple(flat.names),
+                                   np.asarray(found.start).dtype, model.evaluate, chains)
+        where_from = "the chain_starts given"
     warm = window_warmup(flat_logdensity(model), starts, jax.random.fold_in(key, 12),
                          steps=steps, target_acceptance=target)
     fit = draws_fit(warm, position, logdensity_fn, found, time.perf_counter() - began)
@@ -99,8 +109,8 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
                 f" sampler={sampler!r} was replaced by NUTS: without a mode there is no "
                 "Gaussian picture to tune it from.")
     done = (f"Continuing without a mode:{replaced} NUTS warmed up by BlackJAX's window "
-            f"adaptation ({warm.steps} steps per chain from the best points the search "
-            f"visited before the run-off; a {'diagonal' if warm.diagonal else 'dense'} "
+            f"adaptation ({warm.steps} steps per chain from {where_from}; a "
+            f"{'diagonal' if warm.diagonal else 'dense'} "
             f"metric learned from the draws, step size {warm.step_size:.3g}, acceptance "
             f"{warm.acceptance:.2f} in the last quarter toward {target:.2f}"
             + (f"; {warm.divergent} divergent transitions in the warm-up" if warm.divergent

@@ -343,7 +343,8 @@ def start(
             if bar is not None:
                 bar.close()
             return modeless_start(logdensity_fn, position, key, chains, err.runaway,
-                                  sampler=sampler, target_acceptance=aim)
+                                  sampler=sampler, target_acceptance=aim,
+                                  chain_starts=chain_starts)
     elif not isinstance(fit, LaplaceFit):
         raise InputError(explain(f"fit={type(fit).__name__} is not a LaplaceFit.",
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
