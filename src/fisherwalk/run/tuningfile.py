@@ -209,8 +209,9 @@ def tuning_record(walker: Walker) -> dict:
             "shape": _plain_array(tuning.shape, "shape"),
             **_family_fields(tuning),
             "target_acceptance": _plain_number(tuning.target_acceptance, "target_acceptance"),
-            # the user's target_acceptance= for dual averaging (HMC, NUTS); null if none
-            "aim": None if tuning.aim is None else _plain_number(tuning.aim, "aim"),
+            # the user's target_acceptance= for dual averaging (HMC, NUTS), only when given:
+            # a record (and a checkpoint's identity) without one is as it was before
+            **({} if tuning.aim is None else {"aim": _plain_number(tuning.aim, "aim")}),
             "spectrum": _plain_array(tuning.spectrum, "spectrum"),
             "predicted_jump": _plain_number(tuning.predicted_jump, "predicted_jump"),
             "whitening": _plain_array(tuning.whitening, "whitening"),
