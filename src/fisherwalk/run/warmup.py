@@ -200,10 +200,12 @@ def refine(
     steps
         Warm-up steps per chain, rounded up to a multiple of 200 (two phases of whole
         chunks) and run as asked, by every family (``report.warmup.steps`` says how many
-        ran; the random walk may add a third phase). The default, 400, is justified in
-        the module docstring.
+        ran; the random walk may add a third phase, and a metric learned from draws adds
+        the window adaptation's steps, :mod:`fisherwalk.run.metric_repair`). The default,
+        400, is justified in the module docstring.
     reshape
-        ``None`` (default): re-estimate the proposal shape only when a check fails;
+        ``None`` (default): learn the proposal shape (the metric) from draws only when a
+        check fails;
         ``True``: always; ``False``: never (the parameter still adapts).
     progress
         Progress bar; default only when standard error is a terminal.
