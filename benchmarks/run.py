@@ -35,6 +35,7 @@ jax.config.update("jax_enable_x64", True)  # a script, not a library: float64 as
 
 import baselines  # noqa: E402
 import harness  # noqa: E402
+import hierarchical  # noqa: E402
 import numpy as np  # noqa: E402
 import targets as target_defs  # noqa: E402
 import warmups  # noqa: E402
@@ -305,7 +306,8 @@ def main(argv=None) -> int:
     mode = Mode(args.quick)
     if args.repeats is not None:
         mode.repeats = max(1, args.repeats)
-    available = target_defs.all_targets()
+    available = {**target_defs.all_targets(),
+                 **{t.name: t for t in hierarchical.hierarchical_targets()}}
     names = (args.targets.split(",") if args.targets
              else list(target_defs.QUICK if args.quick else available))
     unknown = [n for n in names if n not in available]

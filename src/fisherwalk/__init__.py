@@ -15,6 +15,7 @@ from .errors import (
     InputError,
     ModelError,
     ModelFileError,
+    NoModeError,
     SamplingError,
 )
 from .fit.laplace import LaplaceFit, laplace
@@ -82,6 +83,7 @@ __all__ = [
     "InputError",
     "ModelError",
     "FitError",
+    "NoModeError",
     "SamplingError",
     "CheckpointError",
     "ModelFileError",

@@ -16,6 +16,7 @@ __all__ = [
     "InputError",
     "ModelError",
     "FitError",
+    "NoModeError",
     "SamplingError",
     "CheckpointError",
     "ModelFileError",
@@ -55,6 +56,17 @@ class ModelError(FisherwalkError):
 class FitError(FisherwalkError):
     """The Laplace fit failed: no convergence, a runaway mode, or a Hessian that is not
     positive definite."""
+
+
+class NoModeError(FitError):
+    """The mode search ran off along one parameter while the log density kept rising:
+    the posterior has no mode (a funnel). ``runaway`` holds the diagnosis and the points
+    the search visited (:class:`fisherwalk.fit.runaway.Runaway`); :func:`fisherwalk.start`
+    catches it and warms a gradient sampler up from draws instead."""
+
+    def __init__(self, message: str, runaway=None):
+        super().__init__(message)
+        self.runaway = runaway
 
 
 class SamplingError(FisherwalkError):

@@ -24,7 +24,7 @@ import numpy as np
 
 from ..base import precision, programs, pytrees
 from ..base.keys import as_key
-from ..errors import ModelError, explain
+from ..errors import ModelError, NoModeError, explain
 from .checks import (
     check_end,
     check_options,
@@ -35,6 +35,7 @@ from .checks import (
     validated_matrix,
 )
 from .modes import SCOUT_SPREAD, check_box, collect_modes, restart_points, scout_points
+from .runaway import advice, find_no_mode
 from .search import compile_ahead, make_search, timed
 
 __all__ = ["LaplaceFit", "laplace", "check_fisher", "fisher_from_cholesky"]
@@ -60,6 +61,8 @@ class LaplaceFit(NamedTuple):
     modes_flat: tuple[np.ndarray, ...] = ()  # the distinct modes ravelled, as in ``modes``
     modes_fisher: tuple[np.ndarray, ...] = ()  # the Fisher information at each of them
     order: tuple[int, ...] = ()  # ravelled indices in the order the user wrote them (() = as is)
+    no_mode: str = ""  # set when the posterior has no mode: the diagnosis (then ``mode`` is
+    #                    the centre of warm-up draws and ``fisher`` the precision they gave)
 
 
 def fisher_from_cholesky(cholesky: jax.Array) -> jax.Array:
@@ -92,6 +95,18 @@ def check_fisher(matrix: Any, names: tuple[str, ...], *, where: str = "fisher") 
         eigenvalue <= 1e-12 x the largest); the message names the parameters involved.
     """
     return jnp.asarray(np.linalg.cholesky(validated_matrix(matrix, names, where)))
+
+
+def _check_mode_exists(main, compiled, x0, args, user_fisher, names) -> None:
+    """Raise NoModeError when the search ran off along one parameter while the log
+    density kept rising (:func:`fisherwalk.fit.runaway.find_no_mode`)."""
+    info = None
+    if user_fisher is None and np.isfinite(main.fisher).all():
+        info = np.asarray(main.fisher, np.float64)
+    found = find_no_mode(main, info, compiled, x0, args[1], names)
+    if found is not None:
+        raise NoModeError(explain(found.message, f"laplace(): the mode search, parameter "
+                                  f"{found.name}", advice(found)), found)
 
 
 def laplace(
@@ -167,6 +182,10 @@ def laplace(
     ModelError
         The log density is not a scalar, is not finite at the start, has a non-finite
         gradient there, or cannot take the position's structure.
+    NoModeError
+        (a FitError) The search drove one parameter off while the log density kept
+        rising: the posterior has no mode (a funnel); :func:`fisherwalk.start` catches it
+        and warms a gradient sampler up from draws (:mod:`fisherwalk.fit.runaway`).
     FitError
         No convergence; a runaway mode (the log density keeps rising along a direction
         of vanishing curvature, e.g. complete separation in logistic regression, Albert
@@ -239,6 +258,7 @@ def laplace(
     main = jax.tree_util.tree_map(np.asarray, jax.block_until_ready(compiled(x0, *args)))
     run_s = time.perf_counter() - began
     check_start(main, logdensity_fn, position, names)
+    _check_mode_exists(main, compiled, x0, args, fisher, names)
     check_end(main)
     info = information(main, fisher, unravel, names)
     check_search(main, info, np.asarray(x0), names, tol, max_iterations, use_hessian,

@@ -19,6 +19,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from . import divergences
+
 __all__ = [
     "rhat_text",
     "ess_text",
@@ -354,11 +356,18 @@ def correlation_warning(names: Sequence[str], pairs: list[tuple]) -> str | None:
         "(e.g. sample their sum and difference).")
 
 
-def divergence_warning(divergent: np.ndarray | None) -> str | None:
+def divergence_warning(divergent: np.ndarray | None, flat: np.ndarray | None = None,
+                       names: tuple[str, ...] = (), aim: float | None = None) -> str | None:
     """Divergent transitions of HMC or NUTS (BlackJAX flags a transition whose leapfrog
-    energy error exceeded 1000), counted over the whole run."""
+    energy error exceeded 1000), counted over the whole run; with the draws ``flat``
+    (chains, draws, d) and their ``names``, where they gather and the remedy that fits
+    (a funnel: the non-centred form; elsewhere: a higher target acceptance than ``aim``,
+    :mod:`fisherwalk.results.divergences`)."""
     if divergent is None or not np.any(divergent):
         return None
+    if flat is not None:
+        return divergences.divergence_warning(np.asarray(flat), np.asarray(divergent),
+                                              tuple(names), aim)
     count, total = int(np.sum(divergent)), int(np.size(divergent))
     return _warn(
         f"{count} of {total} transitions were divergent (the leapfrog energy error exceeded "

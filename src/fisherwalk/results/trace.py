@@ -165,7 +165,8 @@ class Trace(NamedTuple):
         )
         modes, flags = mode_caveats(self.flat, self.names, facts.modes_flat,
                                     facts.modes_logdensity, facts.modes_fisher)
-        text = divergence_warning(self.divergent)
+        # where the divergences gather, and the remedy that fits (results/divergences.py)
+        text = divergence_warning(self.divergent, self.flat, self.names, facts.aim)
         if text:
             summary = summary._replace(warnings=summary.warnings + (text,))
         for failure in self.failures:  # walk(pointwise=/derived=) failed after sampling

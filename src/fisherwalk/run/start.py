@@ -18,13 +18,18 @@ import numpy as np
 
 from ..base.checks import spd_matrix, whole_number
 from ..base.keys import as_key, normals, stream
-from ..errors import FisherwalkWarning, InputError, explain, warn_user
+from ..errors import FisherwalkWarning, InputError, NoModeError, explain, warn_user
 from ..fit.laplace import LaplaceFit, laplace
 from ..fit.modes import SCOUTS, describe_modes, laplace_masses
+from ..fit.symmetry import probe_symmetry, symmetry_warning
 from ..results.diagnostics import khat_threshold, pareto_khat
 from . import proposal
+from .aim import check_aim
+from .evidence import weigh_evidence
 from .memory import check_start_memory
+from .modeless import modeless_start
 from .progress import progress_bar
+from .resample import resample_starts
 from .samplers import registry
 from .samplers.auto import choose_sampler
 from .starts import chosen_starts
@@ -107,6 +112,19 @@ def tuning_for(shape, shape_kind: str, cholesky, *, criterion: str = "slowest") 
     return draft.family.initial(draft)
 
 
+def _padded(evaluate, rows: int):
+    """``evaluate`` on fewer points, padded to the ``rows`` it was compiled for (no new
+    compilation for a handful of probes)."""
+
+    def padded(points):
+        points = np.asarray(points)
+        m = points.shape[0]
+        full = np.concatenate([points, np.repeat(points[:1], max(rows - m, 0), axis=0)])
+        return np.asarray(evaluate(full))[:m]
+
+    return padded
+
+
 def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
     """Draw from N(mode, H⁻¹); chains start at the first draws with a finite log density.
 
@@ -146,6 +164,13 @@ def _laplace_sample(evaluate, fit: LaplaceFit, key, chains: int):
             f"PSIS k̂ = {khat:.2f} exceeds {check.threshold:.2f}: the Laplace approximation "
             "misses the posterior's tails (refine() will check the shape and may re-estimate it)."
         )
+        if finite.sum() >= 2 * chains:  # better starts from the same draws (run/resample.py)
+            sd = np.sqrt(np.sum(fisher_shape**2, axis=1))
+            moved = resample_starts(draws[finite], (logp - logq)[finite], positions,
+                                    stream(key, 4), sd, fit.names)
+            positions = moved.positions.astype(positions.dtype)
+            logdens = logp[finite][moved.indices].astype(logdens.dtype)
+            notes.append(moved.note)
     return positions, logdens, check, notes
 
 
@@ -195,6 +220,7 @@ def start(
     progress: bool | None = None,
     sampler: str = "rwm",
     chain_starts: Any = None,
+    target_acceptance: float | None = None,
     **laplace_options,
 ) -> Walker:
     """Tune a sampler from the Laplace approximation of the posterior.
@@ -250,6 +276,11 @@ def start(
         the position's structure and a leading axis of length ``chains`` on every leaf.
         The report gives each start's distance from the mode in posterior sds
         (:mod:`fisherwalk.run.starts`); the Laplace draws still feed the PSIS check.
+    target_acceptance
+        HMC and NUTS (and "auto" when it picks them): the acceptance dual averaging aims
+        for, in (0, 1); default the Gaussian-limit optimum for HMC and 0.8 for NUTS.
+        Raise it (0.9, 0.95) when the summary reports divergent transitions; it is kept
+        in the tuning file and the run record.
     **laplace_options
         Passed to :func:`fisherwalk.laplace` (e.g. ``max_iterations``).
 
@@ -261,6 +292,18 @@ def start(
 
     Notes
     -----
+    No mode: when the mode search runs off along one parameter while the log density
+    keeps rising (a centred hierarchical model's log scale going to −∞, a funnel), start()
+    warns (naming that parameter, the non-centred form first) and returns a NUTS walker
+    warmed up from draws by BlackJAX's window adaptation from the best points the search
+    visited (:mod:`fisherwalk.run.modeless`); ``report.laplace.no_mode`` says so.
+
+    Evidence: with PSIS k̂ above its threshold the chain starts are resampled from the
+    Laplace draws by their Pareto-smoothed weights (:mod:`fisherwalk.run.resample`), and
+    "auto" discounts (k̂ > threshold) or drops (k̂ > 1) the random walk and MALA
+    (:mod:`fisherwalk.run.evidence`). A posterior symmetric under swapping labels is said
+    to be (:mod:`fisherwalk.fit.symmetry`).
+
     The scale l and the target acceptance maximise the expected squared jump of the
     Gaussian limit (Roberts, Gelman & Gilks 1997, Ann. Appl. Probab. 7(1); Gelman,
     Roberts & Gilks 1996, Bayesian Statistics 5), computed for this finite d.
@@ -283,6 +326,7 @@ def start(
                   "unseen. Use chains=4 (the default) unless you know why one chain "
                   "suffices.", FisherwalkWarning)
     sampler = registry.check_sampler(sampler)
+    aim = check_aim(target_acceptance, sampler)
     key = as_key(rng_key, where="start(rng_key=...)")
     dim = len(fit.names) if isinstance(fit, LaplaceFit) else sum(
         int(np.size(leaf)) for leaf in jax.tree.leaves(position))
@@ -293,8 +337,15 @@ def start(
     bar = progress_bar(2, progress, "start: Laplace fit (compiling, searching)", unit="phase")
     if fit is None:
         key_restarts = jax.random.fold_in(key, 1) if restarts or scouts else None
-        fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
-                      rng_key=key_restarts, scouts=scouts, **laplace_options)
+        try:
+            fit = laplace(logdensity_fn, position, fisher=fisher, restarts=restarts,
+                          rng_key=key_restarts, scouts=scouts, **laplace_options)
+        except NoModeError as err:  # no mode: NUTS warmed up from draws (run.modeless)
+            if bar is not None:
+                bar.close()
+            return modeless_start(logdensity_fn, position, key, chains, err.runaway,
+                                  sampler=sampler, target_acceptance=aim,
+                                  chain_starts=chain_starts)
     elif not isinstance(fit, LaplaceFit):
         raise InputError(explain(f"fit={type(fit).__name__} is not a LaplaceFit.",
                                  "start(fit=...)", "pass the result of fisherwalk.laplace()."))
@@ -320,6 +371,11 @@ def start(
         bar.set_description("start: Laplace draws, PSIS check")
     model = make_model(logdensity_fn, fit.mode, chains)
     positions, logdens, check, state_notes = _laplace_sample(model.evaluate, fit, key, chains)
+    symmetric = probe_symmetry(_padded(model.evaluate, max(LAPLACE_DRAWS, chains)), fit.mode,
+                               fit.mode_flat, fit.logdensity, fit.cholesky)
+    if symmetric:  # label switching: said at start, kept in the report's notes
+        warn_user(symmetry_warning(symmetric), FisherwalkWarning)
+        state_notes.append(symmetry_warning(symmetric))
     notes.extend(state_notes)
     if chain_starts is not None:
         positions, logdens, note = chosen_starts(chain_starts, fit, model.evaluate, chains)
@@ -329,11 +385,17 @@ def start(
         notes.append(note)
     if sampler == registry.AUTO:
         picked = choose_sampler(flat_logdensity(model), positions, len(fit.names))
-        sampler = picked.sampler
-        notes.append(picked.note)
+        weighed = weigh_evidence(picked.seconds_per_answer, check.khat, check.threshold)
+        sampler = weighed.sampler
+        notes.extend(n for n in (picked.note, weighed.note) if n)
+    if aim is not None and not registry.family(sampler).takes_target_acceptance:
+        notes.append(f"target_acceptance={aim} was not used: sampler='auto' chose "
+                     f"{sampler!r}, which has no dual averaging toward a target.")
+        aim = None
     if sampler != tuning.sampler:  # another family: its own theory value for this shape
         tuning = registry.family(sampler).initial(
-            Tuning(shape_matrix, None, fit.cholesky, kind, criterion, sampler=sampler))
+            Tuning(shape_matrix, None, fit.cholesky, kind, criterion, sampler=sampler,
+                   aim=aim))
     described = tuning.family.describe(tuning)
     if described:
         notes.append(described)

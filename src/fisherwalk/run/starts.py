@@ -23,7 +23,7 @@ from scipy import stats
 from ..base.pytrees import ravel_batch
 from ..errors import InputError, ModelError, explain
 
-__all__ = ["chosen_starts", "start_distances", "FAR_QUANTILE"]
+__all__ = ["checked_starts", "chosen_starts", "start_distances", "FAR_QUANTILE"]
 
 FAR_QUANTILE = 0.999  # a start beyond this χ²_d quantile is called far from the bulk
 _WHERE = "start(chain_starts=...)"
@@ -63,6 +63,30 @@ def _flat_starts(chain_starts: Any, template: Any, chains: int) -> np.ndarray:
     return ravel_batch(chain_starts, 1).astype(float)
 
 
+def checked_starts(chain_starts: Any, template: Any, names: tuple[str, ...], dtype,
+                   evaluate: Callable, chains: int) -> tuple[np.ndarray, np.ndarray]:
+    """The user's ``chain_starts`` ravelled to ``(chains, d)`` in ``dtype`` and their log
+    densities, checked (:func:`chosen_starts` raises the same errors): also the starts
+    of a posterior with no mode (:mod:`fisherwalk.run.modeless`)."""
+    flat = _flat_starts(chain_starts, template, chains)
+    bad = np.argwhere(~np.isfinite(flat))
+    if bad.size:
+        c, j = (int(v) for v in bad[0])
+        raise _refuse(f"chain_starts holds a non-finite value at chain {c}, parameter "
+                      f"{names[j]} ({flat[c, j]}).", "give finite starting values.")
+    positions = flat.astype(dtype)
+    logdens = np.asarray(evaluate(positions))
+    off = np.flatnonzero(~np.isfinite(logdens))
+    if off.size:
+        c = int(off[0])
+        raise ModelError(explain(
+            f"The log density is {logdens[c]} at the start of chain {c}.",
+            f"{_WHERE}, chain {c}",
+            "start every chain inside the posterior's support (where the log density is "
+            "finite)."))
+    return positions, logdens.astype(dtype)
+
+
 def chosen_starts(chain_starts: Any, fit, evaluate: Callable, chains: int
                   ) -> tuple[np.ndarray, np.ndarray, str]:
     """The chains' starting positions ``(chains, d)`` and log densities from the user's
@@ -76,24 +100,9 @@ def chosen_starts(chain_starts: Any, fit, evaluate: Callable, chains: int
     ModelError
         The log density is not finite at a start (the chain is named).
     """
-    flat = _flat_starts(chain_starts, fit.mode, chains)
+    positions, logdens = checked_starts(chain_starts, fit.mode, tuple(fit.names),
+                                        np.asarray(fit.mode_flat).dtype, evaluate, chains)
     names = tuple(fit.names)
-    bad = np.argwhere(~np.isfinite(flat))
-    if bad.size:
-        c, j = (int(v) for v in bad[0])
-        raise _refuse(f"chain_starts holds a non-finite value at chain {c}, parameter "
-                      f"{names[j]} ({flat[c, j]}).", "give finite starting values.")
-    dtype = np.asarray(fit.mode_flat).dtype
-    positions = flat.astype(dtype)
-    logdens = np.asarray(evaluate(positions))
-    off = np.flatnonzero(~np.isfinite(logdens))
-    if off.size:
-        c = int(off[0])
-        raise ModelError(explain(
-            f"The log density is {logdens[c]} at the start of chain {c}.",
-            f"{_WHERE}, chain {c}",
-            "start every chain inside the posterior's support (where the log density is "
-            "finite)."))
     distance = start_distances(positions, np.asarray(fit.mode_flat), np.asarray(fit.cholesky))
     dim = len(names)
     far_limit = float(np.sqrt(stats.chi2.ppf(FAR_QUANTILE, dim)))
@@ -105,4 +114,4 @@ def chosen_starts(chain_starts: Any, fit, evaluate: Callable, chains: int
     if far.size:
         note += (f"; chain(s) {', '.join(map(str, far))} start beyond it: refine() before "
                  "walk(), and expect a longer warm-up")
-    return positions, logdens.astype(dtype), note + "."
+    return positions, logdens, note + "."

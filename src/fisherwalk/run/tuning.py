@@ -36,6 +36,8 @@ class Tuning(NamedTuple):
     criterion: str = "slowest"  # scale criterion for a shape that does not match P
     sampler: str = registry.DEFAULT  # the family's name in the registry
     step_size: float | None = None  # a gradient family's BlackJAX step size (None: rwm)
+    aim: float | None = None  # the user's target_acceptance= for dual averaging (None: the
+    #                           theory's; only families with ``takes_target_acceptance``)
 
     @property
     def family(self) -> Family:

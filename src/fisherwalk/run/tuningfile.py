@@ -209,6 +209,9 @@ def tuning_record(walker: Walker) -> dict:
             "shape": _plain_array(tuning.shape, "shape"),
             **_family_fields(tuning),
             "target_acceptance": _plain_number(tuning.target_acceptance, "target_acceptance"),
+            # the user's target_acceptance= for dual averaging (HMC, NUTS), only when given:
+            # a record (and a checkpoint's identity) without one is as it was before
+            **({} if tuning.aim is None else {"aim": _plain_number(tuning.aim, "aim")}),
             "spectrum": _plain_array(tuning.spectrum, "spectrum"),
             "predicted_jump": _plain_number(tuning.predicted_jump, "predicted_jump"),
             "whitening": _plain_array(tuning.whitening, "whitening"),
@@ -303,6 +306,12 @@ def read_record(source: str | os.PathLike | dict) -> dict:
         raise _bad("Field 'tuning.shape_kind' must be a string.", where)
     positive_number(float(arrays[value_field]), f"tuning.{value_field}", where, todo=_TODO)
     _check_values(arrays, tuple(names), where)
+    if tuning.get("aim") is not None:  # the user's target_acceptance= (HMC, NUTS)
+        if not registry.family(sampler).takes_target_acceptance:
+            raise _bad(f"Field 'tuning.aim' is set, but the family {sampler!r} takes no "
+                       "target acceptance.", where)
+        probability(decode_number(tuning["aim"], "tuning.aim", where), "tuning.aim", where,
+                    todo=_TODO)
     if "factor" in arrays:
         expected = float(arrays["scale"]) / math.sqrt(dim) * arrays["shape"]
         rtol = 1e3 * float(np.finfo(np.dtype(record["dtype"])).eps)  # rounding of the dtype
@@ -365,8 +374,12 @@ def load_tuning(source: str | os.PathLike | dict) -> SavedTuning:
     sampler = str(t.get("sampler", registry.DEFAULT))
     parameter = registry.family(sampler).parameter
     value = float(t[parameter] if parameter in t else t["scale"])  # (older records: 'scale')
+    aim = t.get("aim")  # the user's target_acceptance= (absent in older records; checked)
+    if aim is not None:
+        aim = float(decode_number(aim, "tuning.aim", "tuning record"))
     tuning = Tuning(matrix(t["shape"]), None, matrix(t["whitening"]), str(t["shape_kind"]),
-                    str(t.get("criterion", "slowest")), sampler)._replace(**{parameter: value})
+                    str(t.get("criterion", "slowest")), sampler,
+                    aim=aim)._replace(**{parameter: value})
     return SavedTuning(tuning, tuple(record["names"]), record)
 
 

@@ -20,14 +20,17 @@ N(mode, H⁻¹). The warm-up checks that in three ways and repairs what it can:
    answer) and phase 2 runs at it, measuring the acceptance there; if that acceptance
    departs from the prediction beyond 3 Monte Carlo standard errors, a third phase of
    the same length adapts the scale after all.
-3. When a check fails beyond its Monte Carlo error, the proposal shape is re-estimated
-   from the warm-up draws, shrunk toward H⁻¹ (weight n_eff / (n_eff + d + 1) on the
-   draws: a choice, common practice, no published source), and the scale and target
-   acceptance are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the
-   spectrum of A = Sᵀ P S, P the precision the walker now believes). When a check fails,
-   phase 2 (the other half) adapts the scale again, and the final scale is the average of
-   the adapted log scale over the second half of phase 2 (Polyak & Juditsky 1992, SIAM J.
-   Control Optim. 30(4)).
+3. When a check fails beyond its Monte Carlo error, the proposal shape (or a gradient
+   sampler's metric) is learned from draws: BlackJAX's window adaptation, started from the
+   chains' positions and the Laplace metric, with windows that double so that early draws
+   are forgotten (:mod:`fisherwalk.run.metric_repair`); the scale and target acceptance
+   are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the spectrum
+   of A = Sᵀ P S, P the precision the walker now believes). When a check fails, phase 2
+   (the other half) adapts the scale again, and the final scale is the average of the
+   adapted log scale over the second half of phase 2 (Polyak & Juditsky 1992, SIAM J.
+   Control Optim. 30(4)). When "auto" chose a family whose predicted speed rests on the
+   Gaussian limit (the random walk, MALA) and the covariance check fails, the walker
+   switches to NUTS with the learned metric (:func:`fisherwalk.run.evidence.redecide`).
 
 Default length: 400 steps. Started near stationarity from N(mode, H⁻¹), the chains need
 no burn-in to travel; the warm-up only has to settle one scalar (a few dozen steps from a
@@ -50,8 +53,15 @@ from ..base.checks import whole_number
 from ..base.keys import as_key
 from ..results.diagnostics import ess_mean
 from .engine import DEFAULT_CHUNK
+from .evidence import redecide
+from .metric_repair import (
+    fallback_walker_parts,
+    learn_metric,
+    learned_factors,
+    learned_words,
+    window_start,
+)
 from .progress import progress_bar
-from .proposal import shape_from_cholesky
 from .samplers.family import WarmContext
 from .walker import Walker, continuable_state, flat_logdensity
 
@@ -89,7 +99,10 @@ class WarmupReport(NamedTuple):
 
 
 def _khat_words(khat: float, limit: float) -> str:
-    """PSIS k̂ in words; -inf means the importance ratios were all equal."""
+    """PSIS k̂ in words; -inf means the importance ratios were all equal; NaN that there
+    was no Laplace approximation to check (no mode: :mod:`fisherwalk.run.modeless`)."""
+    if math.isnan(khat):
+        return "no PSIS k̂: the posterior has no mode, so no Laplace approximation"
     if khat == -math.inf:
         return ("PSIS k̂ -inf: every Laplace draw had the same importance ratio (at each "
                 "of them the log density equals the Laplace Gaussian's up to a constant; "
@@ -132,23 +145,32 @@ def _covariance_check(draws: np.ndarray, whitening: np.ndarray, within: bool = F
     return cov, spectrum, (float(low), float(high)), n_eff, p_value
 
 
-def _reshaped(walker: Walker, cov: np.ndarray, n_eff: float):
-    """A new shape S from the warm-up covariance, shrunk toward H⁻¹; with the lower
-    Cholesky factor of its precision and the weight on the draws."""
+def chosen_by_auto(walker: Walker) -> bool:
+    """Whether start(sampler="auto") made the walker's choice (its note says so)."""
+    return any(str(n).startswith("sampler='auto' chose") for n in walker.report.notes)
+
+
+def _switched(walker: Walker, learned, switch: str, learned_note: str, phase1,
+              measured) -> Walker:
+    """A walker of the registry's FALLBACK family (NUTS) with the learned metric,
+    replacing a choice of "auto" the warm-up refuted.
+
+    ``measured``: (steps, k̂, threshold, outside, spectrum, bounds, p-value, n_eff,
+    reasons) of the phase already run."""
+    steps, khat, k_limit, outside, spectrum, bounds, p_value, n_eff, reasons = measured
+    tuning, model, state = fallback_walker_parts(walker, learned)
+    theory = tuning.family.initial(tuning._replace(step_size=None)).step_size
     fit = walker.report.laplace
-    d = cov.shape[0]
-    fisher_shape = np.asarray(shape_from_cholesky(fit.cholesky))
-    laplace_cov = fisher_shape @ fisher_shape.T
-    weight = n_eff / (n_eff + d + 1.0)
-    blend = weight * cov + (1.0 - weight) * laplace_cov
-    blend = 0.5 * (blend + blend.T)
-    dtype = np.asarray(walker.tuning.shape).dtype
-    if walker.tuning.shape_kind == "diagonal":
-        shape = np.diag(np.sqrt(np.diag(blend)))
-    else:
-        shape = np.linalg.cholesky(blend)
-    precision_chol = np.linalg.cholesky(np.linalg.inv(blend))
-    return shape.astype(dtype), precision_chol.astype(dtype), weight
+    fisher_spectrum = np.sort(np.linalg.svd(
+        np.asarray(fit.cholesky).T @ np.asarray(tuning.shape), compute_uv=False) ** 2)
+    warm = WarmupReport(
+        steps + learned.steps, khat, k_limit, outside, tuning.family.parameter,
+        float(theory), float(learned.step_size), float(learned.step_size),
+        float(learned.target_acceptance), float(phase1.acceptance),
+        float(learned.acceptance), spectrum, bounds, p_value, n_eff, True, reasons,
+        fisher_spectrum, (switch, learned_note), phase1.divergent + learned.divergent)
+    return walker._replace(state=state, tuning=tuning, model=model,
+                           report=walker.report._replace(warmup=warm))
 
 
 def refine(
@@ -178,11 +200,14 @@ def refine(
     steps
         Warm-up steps per chain, rounded up to a multiple of 200 (two phases of whole
         chunks) and run as asked, by every family (``report.warmup.steps`` says how many
-        ran; the random walk may add a third phase). Default (None): the family's own,
-        ``Family.warmup_steps``: 400 for the random walk (justified in the module
-        docstring), 200 for the gradient families (dual averaging from the theory step).
+        ran; the random walk may add a third phase, and a metric learned from draws adds
+        the window adaptation's steps, :mod:`fisherwalk.run.metric_repair`). Default
+        (None): the family's own, ``Family.warmup_steps``: 400 for the random walk
+        (justified in the module docstring), 200 for the gradient families (dual averaging
+        from the theory step).
     reshape
-        ``None`` (default): re-estimate the proposal shape only when a check fails;
+        ``None`` (default): learn the proposal shape (the metric) from draws only when a
+        check fails;
         ``True``: always; ``False``: never (the parameter still adapts).
     progress
         Progress bar; default only when standard error is a terminal.
@@ -227,17 +252,26 @@ def refine(
         do_reshape = bool(reasons) if reshape is None else bool(reshape)
         if tuning0.shape_kind == "identity":
             do_reshape = False
-        notes, tuning1, state = [], None, phase1.state
-        if do_reshape:
-            shape, precision_chol, weight = _reshaped(walker, cov, n_eff)
+        notes, tuning1, state, window = [], None, phase1.state, 0
+        if do_reshape:  # the metric learned from draws (run/metric_repair.py)
+            why = "; ".join(reasons) if reasons else "reshape=True was asked"
+            switch = redecide(tuning0.sampler, chosen_by_auto(walker), p_value < COVARIANCE_LEVEL,
+                              khat, k_limit)
+            step0, aim0 = window_start(family, tuning0, phase1, switch)
+            learned = learn_metric(walker, family.positions(walker.model.engine, state),
+                                   jax.random.fold_in(key, 3), step_size=step0,
+                                   target_acceptance=aim0)
+            if switch:  # "auto" chose on a picture the warm-up refuted: NUTS instead
+                return _switched(walker, learned, switch, learned_words(learned, why),
+                                 phase1, (half, khat, k_limit, outside, spectrum, bounds,
+                                          p_value, n_eff, tuple(reasons)))
+            shape, precision_chol = learned_factors(learned, tuning0)
             tuning1, engine, state = family.reshape(
                 context, phase1, flat_logdensity(walker.model), fit.mode_flat, walker.chains,
-                state, shape, precision_chol)
+                learned, shape, precision_chol)
             context = context._replace(model=walker.model._replace(engine=engine))
-            notes.append(
-                "Re-estimated the proposal shape (the metric) from the warm-up draws "
-                f"(weight {weight:.2f} on the draws, the rest on H⁻¹) because "
-                + ("; ".join(reasons) if reasons else "reshape=True was asked") + ".")
+            notes.append(learned_words(learned, why))
+            window = learned.steps
         settled = family.settle(context, key, tuning1, state, phase1, half, tuple(reasons),
                                 do_reshape)
     finally:
@@ -249,7 +283,7 @@ def refine(
     )
     name = family.parameter
     warm = WarmupReport(
-        settled.steps, khat, k_limit, outside, name, float(getattr(tuning0, name)),
+        settled.steps + window, khat, k_limit, outside, name, float(getattr(tuning0, name)),
         float(phase1.value), float(getattr(final, name)), float(settled.target),
         float(phase1.acceptance), float(settled.acceptance), spectrum, bounds, p_value,
         n_eff, do_reshape, settled.reasons, fisher_spectrum,

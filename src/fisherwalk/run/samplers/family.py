@@ -89,7 +89,9 @@ class Family(NamedTuple):
     # -- warm-up (the skeleton is fisherwalk.run.warmup.refine)
     phase: Callable[..., Phase]  # (context, key, state, steps) -> phase 1
     reshape: Callable[..., tuple]  # (context, phase 1, flat logdensity, mode_flat, chains,
-    #                                 state, shape, precision_chol) -> (tuning, engine, state)
+    #                                 learned, shape, precision_chol) -> (tuning, engine,
+    #                                 state); ``learned`` the window adaptation's result
+    #                                 (run.draws_warmup.DrawsWarmup: where the chains are)
     settle: Callable[..., Settled]  # (context, key, tuning1 or None if not reshaped, state,
     #                                  phase 1, steps, reasons, reshaped) -> Settled
     covariance_of_squares: bool  # the checks' n_eff from squared coordinates (antithetic draws)
@@ -102,3 +104,12 @@ class Family(NamedTuple):
     blackjax_takes_metric: bool = True  # whether that constructor takes the metric
     kernel: Callable | None = None  # a gradient family's one-chain step builder (run.gradient)
     warmup_steps: int = 400  # refine()'s default length for this family (steps per chain)
+    # -- the evidence (issue 22)
+    takes_target_acceptance: bool = False  # start(target_acceptance=) sets its dual
+    #                                        averaging's aim (``tuning.aim``): HMC, NUTS
+    relies_on_limit: bool = False  # its predicted speed rests wholly on the Gaussian limit
+    #                               (its scale or step and acceptance come from it), so
+    #                               "auto" discounts or drops it when PSIS k̂ is high
+    window_start: Callable[..., tuple[float, float]] | None = None  # (tuning, phase 1) ->
+    #   (step size, target acceptance) from which refine()'s metric repair starts BlackJAX's
+    #   window adaptation (run.metric_repair); None: (1.0, 0.8), BlackJAX's defaults

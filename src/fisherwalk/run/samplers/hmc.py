@@ -81,4 +81,5 @@ FAMILY = step_family(
     blackjax_parameters=_parameters,
     blackjax_api=blackjax.hmc,
     words=_words,
+    takes_target_acceptance=True,
 )

@@ -68,4 +68,5 @@ FAMILY = step_family(
     blackjax_api=blackjax.mala,
     blackjax_takes_metric=False,
     energy=False,
+    relies_on_limit=True,
 )

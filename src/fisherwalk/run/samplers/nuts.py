@@ -58,4 +58,5 @@ FAMILY = step_family(
     blackjax_states=hmc_like_states(HMCState),
     blackjax_parameters=_parameters,
     blackjax_api=blackjax.nuts,
+    takes_target_acceptance=True,
 )

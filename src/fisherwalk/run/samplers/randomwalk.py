@@ -172,10 +172,16 @@ def _phase(context, key, state, steps) -> Phase:
     return Phase(state, draws, acc1, scale1, 0, reasons, log_m1)
 
 
-def _reshape(context, phase1, flat_logdensity, mode_flat, chains, state, shape,
+def _reshape(context, phase1, flat_logdensity, mode_flat, chains, learned, shape,
              precision_chol):
+    """The shape learned from draws (run.metric_repair) at its theory scale; phase 2
+    continues from the window adaptation's chains, which have travelled further into the
+    tails than phase 1's: its scale then fits the whole posterior."""
     draft = context.tuning._replace(shape=shape, whitening=precision_chol,
                                     shape_kind="warm-up", criterion="slowest")
+    dtype = np.asarray(shape).dtype
+    state = ChainState(np.asarray(learned.position).astype(dtype),
+                       np.asarray(learned.logdensity).astype(dtype))
     return _initial(draft), context.model.engine, state
 
 
@@ -261,4 +267,5 @@ FAMILY = Family(
     blackjax_states=_blackjax_states,
     blackjax_parameters=lambda tuning: {"sigma": np.asarray(tuning.factor)},
     blackjax_api=blackjax.additive_step_random_walk,
+    relies_on_limit=True,
 )

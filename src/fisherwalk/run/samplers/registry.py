@@ -19,11 +19,15 @@ from ..metric import whitening_factor
 from . import hmc, mala, nuts, randomwalk
 from .family import Family
 
-__all__ = ["AUTO", "DEFAULT", "register", "unregister", "family", "names", "choices",
+__all__ = ["AUTO", "DEFAULT", "FALLBACK", "register", "unregister", "family", "names", "choices",
            "check_sampler", "gradient_engine", "gradient_names"]
 
 AUTO = "auto"  # start(sampler="auto"): pick the family predicted to answer first
 DEFAULT = randomwalk.FAMILY.name
+# the family that runs when there is no Gaussian picture to tune from: a posterior with no
+# mode (run.modeless), or a choice of "auto" that the warm-up refuted (run.evidence); only
+# a gradient sampler with an adapted metric and path length can enter a funnel's neck
+FALLBACK = nuts.FAMILY.name
 
 _FAMILIES: dict[str, Family] = {f.name: f for f in (
     randomwalk.FAMILY,

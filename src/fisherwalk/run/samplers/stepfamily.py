@@ -29,7 +29,7 @@ from ..gradient_checks import check_gradients
 from ..stepsize import warm_up
 from .family import Family, Phase, Settled
 
-__all__ = ["step_family", "ChunkView", "gradients_in_original"]
+__all__ = ["step_family", "ChunkView", "gradients_in_original", "dual_averaging_target"]
 
 # refine()'s default for the gradient families: two phases of one chunk each. Dual averaging
 # started at the theory's step settles within it (measured on the benchmark's logistic
@@ -51,12 +51,18 @@ class ChunkView(NamedTuple):
     energy: Any = None  # (draws, chains) Hamiltonian energy at the kept draw (HMC, NUTS)
 
 
+def dual_averaging_target(tuning) -> float:
+    """What dual averaging aims for: the user's ``target_acceptance=`` (``tuning.aim``, for
+    a family that takes one), else the theory's acceptance at this d."""
+    return float(tuning.aim) if tuning.aim is not None else float(tuning.choice.acceptance)
+
+
 def _engine(name: str, kernel: Callable):
     def build(flat_logdensity, tuning, mode_flat, chains, devices=None):
         return gradient.make_gradient_engine(
             name, kernel, flat_logdensity, np.asarray(mode_flat),
             tuning.metric.factor(tuning.matched), int(chains),
-            target_acceptance=tuning.choice.acceptance, devices=devices)
+            target_acceptance=dual_averaging_target(tuning), devices=devices)
     return build
 
 
@@ -102,14 +108,16 @@ def _phase(context, key, state, steps) -> Phase:
 
 
 def _reshape(engine_of):
-    def reshape(context, phase1, flat_logdensity, mode_flat, chains, state, shape,
+    def reshape(context, phase1, flat_logdensity, mode_flat, chains, learned, shape,
                 precision_chol):
+        """The metric and step size learned from draws (run.metric_repair); the chains
+        continue from where the window adaptation left them."""
         old = context.model.engine
-        tuning = context.tuning._replace(step_size=phase1.value, shape=shape,
+        tuning = context.tuning._replace(step_size=float(learned.step_size), shape=shape,
                                          whitening=precision_chol, shape_kind="warm-up")
         devices = None if old.placement is None else old.placement.mesh
         engine = engine_of(flat_logdensity, tuning, mode_flat, chains, devices)
-        positions = _positions(old, state)
+        positions = np.asarray(learned.position).astype(np.asarray(shape).dtype)
         return tuning, engine, check_gradients(engine, positions, context.names)
     return reshape
 
@@ -125,9 +133,9 @@ def _settle(context, key, tuning1, state, phase1, steps, reasons, reshaped) -> S
     if context.bar is not None:
         context.bar.update(steps)
     final = tuning1._replace(step_size=warm2.step_size)
-    target = tuning0.choice.acceptance
+    target = dual_averaging_target(tuning0)
     notes.append(
-        f"Step size {tuning0.step_size:.4g} (theory) -> {phase1.value:.4g} -> "
+        f"Step size {tuning0.step_size:.4g} (start) -> {phase1.value:.4g} -> "
         f"{warm2.step_size:.4g} by dual averaging toward acceptance {target:.3f}; acceptance "
         f"in the second half {warm2.acceptance:.3f} (Monte Carlo error "
         f"{warm2.acceptance_mcse:.3f}); {context.khat}.")
@@ -147,11 +155,26 @@ def gradients_in_original(engine, state) -> np.ndarray:
 
 def _describe(name: str, extra: Callable[[Any], str]):
     def describe(tuning) -> str:
+        aimed = ("" if tuning.aim is None else " (your target_acceptance; the theory's "
+                 f"{tuning.choice.acceptance:.3f})")
         return (f"Sampler {name!r}: BlackJAX's kernel on the whitened posterior (metric "
                 f"S Sᵀ, '{tuning.shape_kind}'); theory step size {tuning.step_size:.4g}, "
-                f"target acceptance {tuning.choice.acceptance:.3f} for d = {tuning.dim}"
-                + extra(tuning) + ".")
+                f"target acceptance {dual_averaging_target(tuning):.3f}{aimed} for "
+                f"d = {tuning.dim}" + extra(tuning) + ".")
     return describe
+
+
+def _aimed(theory: Callable[[Any], float]) -> Callable[[Any], float]:
+    """The predicted acceptance of a family that takes a target: the user's aim if given."""
+    def target_acceptance(tuning) -> float:
+        return float(tuning.aim) if tuning.aim is not None else float(theory(tuning))
+    return target_acceptance
+
+
+def _window_start(tuning, phase1) -> tuple[float, float]:
+    """refine()'s metric repair starts BlackJAX's window adaptation from the step size
+    phase 1 reached, aiming where this family's dual averaging aims."""
+    return float(phase1.value), dual_averaging_target(tuning)
 
 
 def step_family(*, name: str, label: str, kernel: Callable, extra_compile_seconds: float,
@@ -159,9 +182,15 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
                 blackjax_states: Callable, blackjax_parameters: Callable,
                 blackjax_api: Any, blackjax_takes_metric: bool = True,
                 words: Callable[[Any], str] = lambda tuning: "",
-                energy: bool = True) -> Family:
+                energy: bool = True, takes_target_acceptance: bool = False,
+                relies_on_limit: bool = False) -> Family:
     """A gradient family from its kernel, its target and its BlackJAX form; ``energy``:
-    whether its kernel has a Hamiltonian (HMC, NUTS), which walk() then records."""
+    whether its kernel has a Hamiltonian (HMC, NUTS), which walk() then records;
+    ``takes_target_acceptance``: whether start(target_acceptance=) sets its dual
+    averaging's aim (then the predicted acceptance is that aim); ``relies_on_limit``:
+    whether its predicted speed rests wholly on the Gaussian limit (MALA)."""
+    predicted = _aimed(target_acceptance) if takes_target_acceptance else target_acceptance
+
     def choice(tuning):
         return optimal_gradient_step(name, tuning.dim)
 
@@ -174,7 +203,7 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
         name=name, label=label, parameter="step_size", evaluation="gradient",
         extra_compile_seconds=float(extra_compile_seconds),
         initial=lambda draft: draft._replace(step_size=float(choice(draft).step_size)),
-        choice=choice, target_acceptance=target_acceptance,
+        choice=choice, target_acceptance=predicted,
         predicted_jump=lambda tuning: float(choice(tuning).jump_distance * tuning.dim),
         ess_per_step=ess_per_step,
         ess_per_evaluation=lambda dim: predicted_ess_per_evaluation(name, dim),
@@ -185,7 +214,9 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
         settle=_settle, covariance_of_squares=True, blackjax=blackjax,
         blackjax_states=blackjax_states, blackjax_parameters=blackjax_parameters,
         blackjax_api=blackjax_api, blackjax_takes_metric=blackjax_takes_metric,
-        kernel=kernel, warmup_steps=GRADIENT_WARMUP_STEPS)
+        kernel=kernel, warmup_steps=GRADIENT_WARMUP_STEPS,
+        takes_target_acceptance=bool(takes_target_acceptance),
+        relies_on_limit=bool(relies_on_limit), window_start=_window_start)
 
 
 def hmc_like_states(kind):
