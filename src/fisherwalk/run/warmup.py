@@ -206,8 +206,9 @@ def refine(
         (justified in the module docstring), 200 for the gradient families (dual averaging
         from the theory step).
     reshape
-        ``None`` (default): learn the proposal shape (the metric) from draws only when a
-        check fails;
+        ``None`` (default): learn the proposal shape (the metric) from draws only when
+        the Gaussian picture is refuted (PSIS k̂ above its threshold, or the warm-up
+        covariance against H⁻¹);
         ``True``: always; ``False``: never (the parameter still adapts).
     progress
         Progress bar; default only when standard error is a terminal.
@@ -248,8 +249,12 @@ def refine(
                 f"{spectrum[-1]:.2f} (1 in the Gaussian picture; Monte Carlo error with "
                 f"{n_eff:.0f} effective draws allows about {bounds[0]:.2f} to {bounds[1]:.2f}); "
                 f"test of equality p = {p_value:.1e}")
+        # the metric is learned from draws only when the Gaussian picture itself is refuted
+        # (k̂, or the warm-up covariance against H⁻¹); a family's own check (the random
+        # walk's adapted scale against the theory) is answered by its settling phase
+        refuted = bool(reasons)
         reasons.extend(phase1.reasons)
-        do_reshape = bool(reasons) if reshape is None else bool(reshape)
+        do_reshape = refuted if reshape is None else bool(reshape)
         if tuning0.shape_kind == "identity":
             do_reshape = False
         notes, tuning1, state, window = [], None, phase1.state, 0
