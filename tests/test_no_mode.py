@@ -129,6 +129,17 @@ def _check_log_tau(draws: np.ndarray):
     assert abs(np.quantile(draws, 0.05) - q05) < 4 * mcse_quantile(draws, 0.05)
     assert abs(np.quantile(draws, 0.95) - q95) < 4 * mcse_quantile(draws, 0.95)
 
+def _warm_walk_and_check(walker):
+    """Warm up, walk 4000 draws, compare log τ with the quadrature; divergences, if any,
+    are reported by the summary."""
+    walker = fisherwalk.refine(walker, jax.random.key(1), progress=False)
+    trace = fisherwalk.walk(walker, jax.random.key(2), draws=4000, progress=False)
+    _check_log_tau(np.asarray(trace.draws["log_tau"]))
+    divergent = int(trace.divergent.sum())
+    warned = [w for w in trace.summary().warnings if "divergent" in w]
+    assert bool(warned) == (divergent > 0)
+
+
 
 @pytest.mark.slow
 def test_centred_eight_groups_against_quadrature():
@@ -138,12 +149,7 @@ def test_centred_eight_groups_against_quadrature():
     # at 0.99 with 1). This is the funnel's known bias, not noise: the test pins the
     # remedy the divergence warning recommends. Divergences, if any, are reported.
     walker, _ = _start_centred(target_acceptance=0.99)
-    walker = fisherwalk.refine(walker, jax.random.key(1), progress=False)
-    trace = fisherwalk.walk(walker, jax.random.key(2), draws=4000, progress=False)
-    _check_log_tau(np.asarray(trace.draws["log_tau"]))
-    divergent = int(trace.divergent.sum())
-    warned = [w for w in trace.summary().warnings if "divergent" in w]
-    assert bool(warned) == (divergent > 0)
+    _warm_walk_and_check(walker)
 
 
 @pytest.mark.slow
@@ -152,12 +158,7 @@ def test_noncentred_eight_groups_against_quadrature():
     walker = fisherwalk.start(noncentred, p0, jax.random.key(0), sampler="nuts",
                               progress=False)
     assert walker.report.laplace.no_mode == ""  # the non-centred form has a mode
-    walker = fisherwalk.refine(walker, jax.random.key(1), progress=False)
-    trace = fisherwalk.walk(walker, jax.random.key(2), draws=4000, progress=False)
-    _check_log_tau(np.asarray(trace.draws["log_tau"]))
-    divergent = int(trace.divergent.sum())
-    warned = [w for w in trace.summary().warnings if "divergent" in w]
-    assert bool(warned) == (divergent > 0)
+    _warm_walk_and_check(walker)
 
 
 def test_no_mode_checks_the_chain_starts_given():
