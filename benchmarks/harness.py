@@ -333,7 +333,7 @@ class FisherwalkSampler:
     """
 
     name = "fisherwalk"
-    chunk = 100  # fisherwalk.run.engine.DEFAULT_CHUNK
+    chunk = 100  # fisherwalk.engine.loop.DEFAULT_CHUNK
 
     def __init__(self, logdensity_fn: Callable, dim: int, monitor: CompileMonitor,
                  shape: str = "fisher", chains: int = 4, sampler: str = "rwm"):
@@ -354,7 +354,7 @@ class FisherwalkSampler:
         from baselines import Prepared
 
         from fisherwalk import refine, start
-        from fisherwalk.run.start import LAPLACE_DRAWS as laplace_draws  # PSIS check draws
+        from fisherwalk.prepare.start import LAPLACE_DRAWS as laplace_draws  # PSIS check draws
 
         k_start, k_refine = jax.random.split(key)
         t0 = time.perf_counter()
@@ -432,7 +432,7 @@ def _counting_warmups():
     """
     counts: list[int] = []
     try:
-        from fisherwalk.run.samplers import stepfamily
+        from fisherwalk.samplers import stepfamily
     except ImportError:  # a package layout without gradient samplers: nothing to count
         yield counts
         return
@@ -471,7 +471,7 @@ def engine_seconds_per_step(walker, budget: float = 0.3) -> float | None:
     """Seconds per step of fisherwalk's engine call alone (no walk() host work):
     the host-side noise of each chunk and the compiled loop. None if it cannot run."""
     from fisherwalk.base.keys import stream
-    from fisherwalk.run import engine
+    from fisherwalk.engine import loop as engine
 
     try:
         dtype = np.asarray(walker.state.logdensity).dtype

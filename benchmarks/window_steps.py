@@ -1,6 +1,6 @@
 """How few window-adaptation steps suffice when started from the Laplace fit?
 
-For each target: BlackJAX's window adaptation (``fisherwalk.run.draws_warmup``) with
+For each target: BlackJAX's window adaptation (``fisherwalk.prepare.draws_warmup``) with
 ``steps`` in STEPS, started (a) from fisherwalk's Laplace starts and metric H⁻¹, and
 (b) as BlackJAX's default does, from the target's initial position (plus N(0, 0.1²)) and
 the identity; then 1000 NUTS draws per chain (4 chains) with the learned metric and
@@ -32,10 +32,10 @@ import numpy as np  # noqa: E402
 import targets as target_defs  # noqa: E402
 
 import fisherwalk  # noqa: E402
+from fisherwalk.engine.gradient import control  # noqa: E402
+from fisherwalk.prepare.draws_warmup import window_warmup  # noqa: E402
+from fisherwalk.prepare.metric_repair import fallback_walker_parts  # noqa: E402
 from fisherwalk.results.diagnostics import ess_bulk, rhat  # noqa: E402
-from fisherwalk.run.draws_warmup import window_warmup  # noqa: E402
-from fisherwalk.run.gradient import control  # noqa: E402
-from fisherwalk.run.metric_repair import fallback_walker_parts  # noqa: E402
 
 STEPS = (100, 200, 300, 500, 1000)
 DRAWS = 1000

@@ -26,7 +26,7 @@ def interrupt_sampling(monkeypatch):
     """``interrupt_sampling(n)``: walk()'s chunk loop raises KeyboardInterrupt (a Ctrl-C)
     when it is about to hand over chunk ``n`` (0-based), for every sampler family;
     ``interrupt_sampling(None)`` undoes it."""
-    from fisherwalk.run import sampling
+    from fisherwalk.workflow import sampling
 
     real = sampling._sample
 

@@ -2,8 +2,8 @@
 
 - no import cycles between modules, including imports placed inside functions;
 - no ``_private`` name imported from another module;
-- the sub-packages import one way only: errors, base < theory < fit < models < results <
-  run < cli
+- the sub-packages import one way only, along the data's path: errors, base < theory < fit
+  < models < results < engine < samplers < tuned < persistence < prepare < workflow < cli
   (a layer may import from itself and from the layers before it, never after).
 """
 
@@ -15,7 +15,8 @@ from pathlib import Path
 import pytest
 
 PACKAGE = Path(__file__).resolve().parents[1] / "src" / "fisherwalk"
-LAYERS = ("errors", "base", "theory", "fit", "models", "results", "run", "cli")
+LAYERS = ("errors", "base", "theory", "fit", "models", "results", "engine", "samplers", "tuned",
+          "persistence", "prepare", "workflow", "cli")
 
 
 def _module_name(path: Path) -> str:
@@ -112,8 +113,8 @@ def test_every_layer_is_a_package(layer):
 
 # --------------------------------------------------------------- the sampler kind rule
 #
-# A sampler family's behaviour is asked of its registry entry (fisherwalk.run.samplers),
-# never re-discovered. Outside the families' own modules (fisherwalk.run.samplers.*) and
+# A sampler family's behaviour is asked of its registry entry (fisherwalk.samplers),
+# never re-discovered. Outside the families' own modules (fisherwalk.samplers.*) and
 # their theory (fisherwalk.theory.*), the source may not:
 #   - compare anything with a registered family's name ("rwm", "nuts", ...): ==, !=, in;
 #   - test a kind-specific type: isinstance(x, C) for C in KIND_TYPES;
@@ -121,11 +122,11 @@ def test_every_layer_is_a_package(layer):
 #     KIND_FIELDS;
 #   - ask a walker whether it is a gradient sampler: <...>walker.gradient.
 
-FAMILIES = PACKAGE / "run" / "samplers"
+FAMILIES = PACKAGE / "samplers"
 KIND_TYPES = {"GradientTuning", "GradientEngine", "MALAState", "HMCState", "RWState"}
 KIND_FIELDS = {"sampler", "step_size", "scale", "logdensity_grad", "integration_steps",
                "gradient"}
-EXEMPT = ("fisherwalk.run.samplers", "fisherwalk.theory")
+EXEMPT = ("fisherwalk.samplers", "fisherwalk.theory")
 
 
 def _family_names() -> set[str]:

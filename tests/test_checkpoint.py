@@ -26,9 +26,9 @@ import pytest
 
 import fisherwalk
 from fisherwalk.errors import CheckpointError, FisherwalkWarning, InputError
-from fisherwalk.run.sampling import walk
-from fisherwalk.run.start import start
-from fisherwalk.run.tuningfile import save_tuning
+from fisherwalk.persistence.tuningfile import save_tuning
+from fisherwalk.prepare.start import start
+from fisherwalk.workflow.sampling import walk
 
 # A correlated Gaussian on a dict position (names a[0], a[1], b): the same source runs
 # here and in the subprocesses.
@@ -55,7 +55,8 @@ SCRIPT = textwrap.dedent("""
     jax.config.update("jax_enable_x64", True)
     import numpy as np
     import fisherwalk
-    from fisherwalk.run import checkpoint as ck, sampling, tuningfile as record
+    from fisherwalk.persistence import checkpoint as ck, tuningfile as record
+    from fisherwalk.workflow import sampling
     exec(open(sys.argv[1]).read())
     directory, mode, kill = sys.argv[2], sys.argv[3], sys.argv[4]
     what, n, *when = kill.split(":")

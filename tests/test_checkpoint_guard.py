@@ -24,9 +24,9 @@ import pytest
 
 import fisherwalk
 from fisherwalk.errors import CheckpointError, FisherwalkWarning
-from fisherwalk.run.sampling import walk
-from fisherwalk.run.start import start
-from fisherwalk.run.tuningfile import save_tuning
+from fisherwalk.persistence.tuningfile import save_tuning
+from fisherwalk.prepare.start import start
+from fisherwalk.workflow.sampling import walk
 
 DRAWS, CHUNK = 200, 20
 FIELDS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults")
@@ -169,7 +169,8 @@ CHILD = textwrap.dedent("""
     jax.config.update("jax_enable_x64", True)
     import jax.numpy as jnp
     import numpy as np
-    from fisherwalk.run import sampling, tuningfile
+    from fisherwalk.workflow import sampling
+    from fisherwalk.persistence import tuningfile
 
     def logdensity(x):
         return -0.5 * jnp.sum(x**2 * jnp.array([1.0, 4.0, 9.0]))

@@ -7,7 +7,7 @@ import jax.numpy as jnp
 import pytest
 
 import fisherwalk
-from fisherwalk.run.samplers import registry
+from fisherwalk.samplers import registry
 
 
 def _logdensity(x):

@@ -1,6 +1,6 @@
 """The size bound of a checkpoint segment, and finished checkpoints that reopen.
 
-The bound (run/segments.py, segment_bytes) is computed from the list of arrays a
+The bound (persistence/segments.py, segment_bytes) is computed from the list of arrays a
 segment holds (segment_layout), the same list save() writes; it is checked here against
 the bytes numpy actually writes at several sizes, dtypes and dimensions, and a finished
 run whose one segment holds thousands of draws must reopen (re-walk and resume) with
@@ -15,8 +15,8 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk.run.sampling import _Collector
-from fisherwalk.run.segments import segment_bytes, segment_data, segment_layout
+from fisherwalk.persistence.segments import segment_bytes, segment_data, segment_layout
+from fisherwalk.workflow.sampling import _Collector
 
 FIELDS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults")
 FINGERPRINT = "0" * 64

@@ -1,4 +1,4 @@
-"""walk(pointwise=..., derived=...): functions of the kept draws (run/derive.py), their rows
+"""walk(pointwise=..., derived=...): functions of the kept draws (workflow/derive.py), their rows
 in the summary, their chunked evaluation, their refusals, and checkpoint/resume."""
 
 import math
@@ -12,7 +12,7 @@ from scipy import stats
 import fisherwalk
 from fisherwalk import InputError, ModelError
 from fisherwalk.results.diagnostics import ess_mean
-from fisherwalk.run import derive
+from fisherwalk.workflow import derive
 
 # ----------------------------------------------------------------- log-normal: k = exp(log k)
 

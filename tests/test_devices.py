@@ -1,5 +1,5 @@
 """Chains and data across devices and processes (base/meshes.py, base/shards.py,
-run/devices.py, examples/two_processes.py).
+workflow/devices.py, examples/two_processes.py).
 
 Several host devices exist only if XLA_FLAGS=--xla_force_host_platform_device_count=N is
 set before jax is imported, so each multi-device check runs in a fresh Python process
@@ -47,7 +47,7 @@ import json
 import jax, jax.numpy as jnp, numpy as np
 import fisherwalk as fw
 from fisherwalk.base.shards import sharded_logdensity
-from fisherwalk.run.devices import spread_chains, chain_devices
+from fisherwalk.workflow.devices import spread_chains, chain_devices
 
 rng = np.random.default_rng(7)
 n, d = 1001, 3                      # 1001 rows over 4 devices: 3 padded rows
@@ -73,7 +73,7 @@ def test_chains_over_four_devices_agree_with_one_device():
         import jax, jax.numpy as jnp, numpy as np
         import fisherwalk as fw
         from fisherwalk.errors import InputError
-        from fisherwalk.run.devices import spread_chains, chain_devices
+        from fisherwalk.workflow.devices import spread_chains, chain_devices
 
         A = jnp.array([[2.0, 0.6, 0.0], [0.6, 1.0, 0.3], [0.0, 0.3, 0.5]])
         def ld(p):
@@ -86,7 +86,7 @@ def test_chains_over_four_devices_agree_with_one_device():
         r1 = fw.refine(spread_chains(w, 1), jax.random.key(2), steps=200)
         t4 = fw.walk(r4, jax.random.key(3), draws=150, thin=2)
         t1 = fw.walk(spread_chains(r1, 1), jax.random.key(3), draws=150, thin=2)
-        from fisherwalk.run import engine
+        from fisherwalk.engine import loop as engine
         out = r4.engine(np.array([1, 2], np.uint64), 0, r4.state, r4.tuning.factor,
                         engine.control(), 5)
         held = sorted(s.data.shape[1] for s in out.position.addressable_shards)

@@ -22,7 +22,7 @@ import pytest
 
 import fisherwalk
 from fisherwalk.errors import CheckpointError
-from fisherwalk.run import checkpoint as checkpoint_module
+from fisherwalk.persistence import checkpoint as checkpoint_module
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -19,7 +19,7 @@ import pytest
 
 import fisherwalk as fw
 from fisherwalk.base import programs
-from fisherwalk.run import engine
+from fisherwalk.engine import loop as engine
 
 
 def _logdensity(x):

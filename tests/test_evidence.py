@@ -21,9 +21,9 @@ import pytest
 from scipy.special import digamma
 
 import fisherwalk
+from fisherwalk.prepare.evidence import DISCOUNT, redecide, weigh_evidence
+from fisherwalk.prepare.resample import smoothed_log_weights
 from fisherwalk.results.diagnostics import mcse_mean
-from fisherwalk.run.evidence import DISCOUNT, redecide, weigh_evidence
-from fisherwalk.run.resample import smoothed_log_weights
 
 A = 0.5
 

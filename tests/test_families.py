@@ -19,12 +19,13 @@ import pytest
 
 import fisherwalk as fw
 from fisherwalk.cli.parser import build_parser
+from fisherwalk.persistence import tuningfile
 from fisherwalk.results.diagnostics import mcse_mean
-from fisherwalk.run import handoff, tuningfile
-from fisherwalk.run.devices import chain_devices, spread_chains
-from fisherwalk.run.samplers import hmc, randomwalk, registry
+from fisherwalk.samplers import hmc, randomwalk, registry
 from fisherwalk.theory.gradient import INTEGRATION_TIME
 from fisherwalk.theory.randomwalk import expected_acceptance, expected_jump
+from fisherwalk.workflow import handoff
+from fisherwalk.workflow.devices import chain_devices, spread_chains
 
 PRECISION = np.array([[2.0, 0.6, 0.0], [0.6, 1.0, 0.3], [0.0, 0.3, 0.5]])
 MEAN = np.array([1.0, -2.0, 0.5])
@@ -291,7 +292,7 @@ def test_gradient_chains_go_over_devices_automatically(name):
         import json
         import jax, jax.numpy as jnp, numpy as np
         import fisherwalk as fw
-        from fisherwalk.run.devices import spread_chains, chain_devices
+        from fisherwalk.workflow.devices import spread_chains, chain_devices
         A = jnp.array({PRECISION.tolist()})
         def ld(p):
             x = p - jnp.array({MEAN.tolist()})
@@ -299,7 +300,7 @@ def test_gradient_chains_go_over_devices_automatically(name):
         w = fw.start(ld, jnp.zeros(3), jax.random.key(1), chains=4, sampler="{name}")
         held = sorted(s.data.shape[0] for s in
                       w.model.engine.run(jax.random.key(9), 0, w.state,
-                                         __import__("fisherwalk.run.gradient",
+                                         __import__("fisherwalk.engine.gradient",
                                          fromlist=["control"]).control(
                                              w.tuning.step_size), 2).state.position
                       .addressable_shards)

@@ -4,7 +4,7 @@ Neal (2003), "Slice sampling", Annals of Statistics 31(3), section 8: v ~ N(0, 3
 x_i | v ~ N(0, e^v), i = 1..9 (d = 10). The marginal of v is exactly N(0, 9). The search
 for a mode runs v down to about -40.5 (where x = 0 and the density along v peaks, with a
 curvature ratio of e^40 between x and v: no usable Laplace approximation), so start()
-warms NUTS up from draws (run/modeless.py).
+warms NUTS up from draws (prepare/modeless.py).
 
 The check, stated honestly: either v's mean and sd match N(0, 9) within 4 Monte Carlo
 standard errors (results/diagnostics.py's MCSE; 4 MCSE, a 6e-5 false-failure rate per

@@ -12,12 +12,13 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
+from fisherwalk.engine import gradient, stepsize
+from fisherwalk.engine.gradient_checks import check_gradients
 from fisherwalk.errors import ModelError
 from fisherwalk.results.diagnostics import mcse_mean
-from fisherwalk.run import gradient, handoff, stepsize
-from fisherwalk.run.gradient_checks import check_gradients
-from fisherwalk.run.samplers import registry
+from fisherwalk.samplers import registry
 from fisherwalk.theory.gradient import hmc_steps_law, optimal_gradient_step
+from fisherwalk.workflow import handoff
 
 CHAINS = 4
 DIM = 5

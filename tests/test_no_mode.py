@@ -162,7 +162,7 @@ def test_noncentred_eight_groups_against_quadrature():
 
 
 def test_no_mode_checks_the_chain_starts_given():
-    # start(chain_starts=...) reaches the draws-based warm-up too (run/modeless.py), and
+    # start(chain_starts=...) reaches the draws-based warm-up too (prepare/modeless.py), and
     # its starts are checked there as start() checks them: a NaN start is named, not run
     p0 = {"mu": jnp.zeros(()), "log_tau": jnp.zeros(()), "theta": jnp.zeros(8)}
     bad = {"mu": jnp.array([0.0, jnp.nan, 0.0, 0.0]), "log_tau": jnp.zeros(4),

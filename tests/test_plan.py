@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 
 import fisherwalk as fw
+from fisherwalk.engine.loop import ChainState
 from fisherwalk.errors import InputError
-from fisherwalk.run import plan
-from fisherwalk.run.engine import ChainState
+from fisherwalk.workflow import plan
 
 
 def _gauss(x):

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import fisherwalk
-from fisherwalk.run.derive import PREDICT_STREAM
+from fisherwalk.workflow.derive import PREDICT_STREAM
 
 Y = np.random.default_rng(2).normal(3.0, 1.5, 30)  # invented demo data
 

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from jax.flatten_util import ravel_pytree
 
-from fisherwalk.run import proposal
+from fisherwalk.engine import proposal
 
 
 def _factor(d, seed=0):

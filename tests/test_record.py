@@ -21,14 +21,14 @@ import statsmodels.api as sm
 from sklearn.datasets import load_breast_cancer
 
 from fisherwalk.errors import InputError
-from fisherwalk.run.start import start
-from fisherwalk.run.tuningfile import (
+from fisherwalk.persistence.tuningfile import (
     SavedTuning,
     load_tuning,
     save_tuning,
     tuning_record,
     walker_from_record,
 )
+from fisherwalk.prepare.start import start
 from fisherwalk.theory.randomwalk import optimal_scale
 
 

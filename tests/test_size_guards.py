@@ -18,8 +18,10 @@ import numpy as np
 import pytest
 
 import fisherwalk
+from fisherwalk.engine import loop as engine
+from fisherwalk.engine import memory
 from fisherwalk.errors import CheckpointError, InputError
-from fisherwalk.run import engine, memory, tuningfile
+from fisherwalk.persistence import tuningfile
 
 KEY = jax.random.key(0)
 

@@ -14,8 +14,8 @@ import pytest
 
 import fisherwalk as fw
 from fisherwalk.cli.modelfile import load_model
+from fisherwalk.engine import progress
 from fisherwalk.errors import InputError, ModelFileError
-from fisherwalk.run import progress
 
 
 def _gauss(x):

@@ -14,7 +14,7 @@ import pytest
 
 import fisherwalk as fw
 from fisherwalk.errors import CheckpointError, InputError
-from fisherwalk.run.tuningfile import save_tuning, tuning_record
+from fisherwalk.persistence.tuningfile import save_tuning, tuning_record
 
 
 def logdensity(x):

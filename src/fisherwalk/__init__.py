@@ -6,6 +6,7 @@ The public names are the ones below; everything in the sub-packages (``base``,
 """
 
 from .base.shards import sharded_logdensity
+from .engine.loop import ChainState
 from .errors import (
     CheckpointError,
     FisherwalkError,
@@ -22,21 +23,20 @@ from .fit.laplace import LaplaceFit, laplace
 from .models.declared import constrained_problem
 from .models.numpyro_model import model_problem
 from .models.space import ModelProblem
+from .persistence.tuningfile import SavedTuning, load_tuning, save_tuning
+from .prepare.start import start
+from .prepare.warmup import WarmupReport, refine
 from .results.facts import RunFacts
 from .results.report import Summary
 from .results.trace import Trace
-from .run.blackjax_handoff import handoff
-from .run.devices import spread_chains
-from .run.engine import ChainState
-from .run.plan import RunLength
-from .run.reopen import reopen
-from .run.resume import resume
-from .run.sampling import walk
-from .run.start import start
-from .run.tuningfile import SavedTuning, load_tuning, save_tuning
-from .run.walker import LaplaceCheck, StartReport, Tuning, Walker
-from .run.warmup import WarmupReport, refine
 from .theory.randomwalk import ScaleChoice, optimal_scale
+from .tuned.walker import LaplaceCheck, StartReport, Tuning, Walker
+from .workflow.blackjax_handoff import handoff
+from .workflow.devices import spread_chains
+from .workflow.plan import RunLength
+from .workflow.reopen import reopen
+from .workflow.resume import resume
+from .workflow.sampling import walk
 
 __version__ = "0.1.0"
 

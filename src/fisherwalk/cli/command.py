@@ -32,7 +32,7 @@ import numpy as np
 from ..base.jsonio import dumps
 from ..base.lock import acquire_lock
 from ..errors import FisherwalkError, InputError, ModelFileError, explain
-from ..run.samplers import registry
+from ..samplers import registry
 from . import compilecache, outputs, resumable
 from .modelfile import load_model
 from .narration import (

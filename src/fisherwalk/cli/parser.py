@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import argparse
 
-from ..run.samplers import registry
+from ..samplers import registry
 from . import compilecache
 
 __all__ = ["build_parser", "DEFAULT_CHAINS", "DEFAULT_DRAWS", "DEFAULT_WARMUP", "DEFAULT_SEED",
@@ -14,7 +14,7 @@ __all__ = ["build_parser", "DEFAULT_CHAINS", "DEFAULT_DRAWS", "DEFAULT_WARMUP", 
 DEFAULT_CHAINS = 4
 # Without --draws the run length is planned (walk(draws=None)): rounds until every
 # parameter has bulk and tail ESS >= 400 and R-hat < 1.01, sized from the theory's
-# predicted ESS per step (fisherwalk.run.plan).
+# predicted ESS per step (fisherwalk.workflow.plan).
 DEFAULT_DRAWS = None
 # refine(steps=None): the sampler family's own warm-up (400 random walk, 200 gradient)
 DEFAULT_WARMUP = None

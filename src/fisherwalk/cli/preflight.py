@@ -9,8 +9,8 @@ from pathlib import Path
 
 from ..base.checks import parse_whole_number
 from ..base.files import check_output_folder
-from ..run.memory import check_walk_memory
-from ..run.plan import MAX_DRAWS
+from ..engine.memory import check_walk_memory
+from ..workflow.plan import MAX_DRAWS
 from . import outputs
 from .parser import MAX_SEED
 

@@ -2,7 +2,7 @@
 
 ``run --checkpoint`` writes ``DIR/command.json`` (the command line, the options, the keys,
 the model and data files with their SHA-256) before it starts, and the sampling keeps its
-progress in ``DIR/checkpoint/`` (:mod:`fisherwalk.run.checkpoint`). After an
+progress in ``DIR/checkpoint/`` (:mod:`fisherwalk.persistence.checkpoint`). After an
 interruption, ``fisherwalk resume DIR --model model.py`` rebuilds the walker from the
 checkpoint, checks the model's log density against it, finishes the sampling with the
 same draws an uninterrupted run would give, and writes the usual files into ``DIR``.

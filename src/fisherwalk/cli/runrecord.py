@@ -22,9 +22,9 @@ import numpy as np
 
 from ..base.files import write_atomic, write_text_atomic
 from ..base.jsonio import to_plain, write_json_atomic
+from ..persistence import tuningfile
 from ..results.facts import facts_record, in_written_order
 from ..results.trace import derived_names
-from ..run import tuningfile
 
 __all__ = ["RunResult", "build_record", "write_outputs", "sha256_file", "run_keys",
            "draws_arrays", "write_pointwise", "POINTWISE_FILE"]

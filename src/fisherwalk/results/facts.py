@@ -4,7 +4,7 @@ The summary, the plots and the ArviZ export need to know which sampler ran, what
 for, the scale or step size it used, what the Gaussian picture predicted, the whitening
 that turns draws into the units of that prediction, the Laplace modes and whether there
 was a warm-up. The run side builds these facts once from its walker
-(:func:`fisherwalk.run.runfacts.run_facts`); a run reopened from its folder reads them from
+(:func:`fisherwalk.workflow.runfacts.run_facts`); a run reopened from its folder reads them from
 ``record.json`` (:func:`facts_record`, :func:`facts_from_record`). Nothing here asks what
 kind of object it was given.
 """

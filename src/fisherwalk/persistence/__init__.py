@@ -1,0 +1,2 @@
+"""What outlives a process: checkpoints (segments, identity, files) and tuning files.
+"""

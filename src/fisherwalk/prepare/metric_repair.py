@@ -1,0 +1,86 @@
+"""The metric repair of refine(): learned from draws when the Laplace metric is wrong.
+
+When the warm-up's checks say H⁻¹ is the wrong metric (PSIS k̂ high, the whitened
+covariance spectrum far from ones), a blend of a few hundred correlated draws with H⁻¹
+moves the metric only a little. Instead the metric is learned from draws by BlackJAX's
+window adaptation (:mod:`fisherwalk.prepare.draws_warmup`), started from the chains' current
+positions, the Laplace metric and the current step size, whose windows double so that
+early draws are forgotten. The result serves any sampler: a gradient sampler's metric,
+the random walk's proposal shape (the covariance estimate, Roberts & Rosenthal 2001,
+"Optimal scaling for various Metropolis-Hastings algorithms", Statist. Sci. 16(4)), or,
+when "auto" chose the random walk or MALA on a Gaussian picture the warm-up refuted, the
+metric and step size of the NUTS walker that replaces it
+(:func:`fisherwalk.prepare.evidence.redecide`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..engine.proposal import shape_from_cholesky
+from ..samplers import registry
+from ..samplers.family import Family
+from ..theory.gradient import NUTS_TARGET_ACCEPTANCE
+from ..tuned.tuning import Tuning
+from ..tuned.walker import Walker, flat_logdensity, with_engine
+from .draws_warmup import DrawsWarmup, metric_factors, window_warmup
+
+__all__ = ["learn_metric", "learned_factors", "window_start", "fallback_walker_parts",
+           "learned_words"]
+
+
+def window_start(family: Family, tuning: Tuning, phase1, switch: str) -> tuple[float, float]:
+    """(step size, target acceptance) the window adaptation starts from: the family's own
+    (``Family.window_start``; a gradient family's phase-1 step and its dual averaging's
+    aim), else BlackJAX's defaults (1.0, 0.8); NUTS's 0.8 when the walker is switching
+    to it (``switch``, :func:`fisherwalk.prepare.evidence.redecide`)."""
+    step, aim = (1.0, NUTS_TARGET_ACCEPTANCE) if family.window_start is None else \
+        family.window_start(tuning, phase1)
+    return float(step), float(NUTS_TARGET_ACCEPTANCE if switch else aim)
+
+
+def learn_metric(walker: Walker, positions, rng_key, *, step_size: float = 1.0,
+                 target_acceptance: float = NUTS_TARGET_ACCEPTANCE,
+                 steps: int | None = None) -> DrawsWarmup:
+    """Window adaptation from ``positions`` (chains, d), the Laplace metric and a step."""
+    fit = walker.report.laplace
+    laplace_shape = np.asarray(shape_from_cholesky(np.asarray(fit.cholesky, np.float64)))
+    return window_warmup(flat_logdensity(walker.model), np.asarray(positions), rng_key,
+                         steps=steps, inverse_mass_matrix=laplace_shape @ laplace_shape.T,
+                         step_size=step_size, target_acceptance=target_acceptance)
+
+
+def learned_factors(learned: DrawsWarmup, tuning: Tuning):
+    """(S, C) of the learned metric in the tuning's dtype: S Sᵀ = M, C Cᵀ = M⁻¹."""
+    shape, precision_chol = metric_factors(learned.inverse_mass_matrix)
+    dtype = np.asarray(tuning.shape).dtype
+    return shape.astype(dtype), precision_chol.astype(dtype)
+
+
+def fallback_walker_parts(walker: Walker, learned: DrawsWarmup):
+    """(tuning, model, state) of a walker of the registry's FALLBACK family (NUTS) with the
+    learned metric and step size, the chains where the window adaptation left them; the
+    user's target acceptance is kept if the family takes one."""
+    fit = walker.report.laplace
+    entry = registry.family(registry.FALLBACK)
+    shape, precision_chol = learned_factors(learned, walker.tuning)
+    aim = walker.tuning.aim if entry.takes_target_acceptance else None
+    tuning = Tuning(shape, None, precision_chol, "warm-up", sampler=entry.name,
+                    step_size=float(learned.step_size), aim=aim)
+    placement = walker.model.engine.placement
+    devices = None if placement is None else placement.mesh
+    model = with_engine(walker.model._replace(engine=None), tuning, fit.mode_flat,
+                        walker.chains, devices)
+    positions = np.asarray(learned.position).astype(shape.dtype)
+    state = entry.init(model.engine, positions, None, model.evaluate, tuple(fit.names))
+    return tuning, model, state
+
+
+def learned_words(learned: DrawsWarmup, why: str) -> str:
+    kind = "diagonal" if learned.diagonal else "dense"
+    return (f"Learned the metric from draws ({why}): BlackJAX's window adaptation, "
+            f"{learned.steps} steps per chain from the chains' positions and the Laplace "
+            f"metric, a {kind} estimate, step size {learned.step_size:.3g}, acceptance "
+            f"{learned.acceptance:.2f} in the last quarter"
+            + (f", {learned.divergent} divergent transitions" if learned.divergent else "")
+            + ".")

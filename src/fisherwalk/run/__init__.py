@@ -1,1 +1,0 @@
-"""Running chains: proposal, the compiled engines, the walker, warm-up, sampling, checkpoints."""

@@ -1,0 +1,3 @@
+"""walk() and what follows it: the planned run, functions of the draws, resume, reopen, hand-
+over to BlackJAX, devices.
+"""
