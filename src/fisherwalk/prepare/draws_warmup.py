@@ -25,7 +25,6 @@ from __future__ import annotations
 import inspect
 import math
 from collections.abc import Callable
-from typing import NamedTuple
 
 import blackjax
 import jax
@@ -34,47 +33,45 @@ import numpy as np
 
 from ..base.checks import probability, whole_number
 from ..base.keys import as_key
+from ..samplers.windows import DENSE_LIMIT, LearnedMetric, metric_factors
 
-__all__ = ["DrawsWarmup", "window_warmup", "DENSE_LIMIT", "WINDOW_STEPS",
+__all__ = ["DrawsWarmup", "window_warmup", "DENSE_LIMIT", "dense_enough", "WINDOW_STEPS",
            "LAPLACE_WINDOW_STEPS", "metric_factors"]
 
-DENSE_LIMIT = 100  # a dense metric up to this d, diagonal beyond (d² memory, d³ Cholesky);
-#                    our choice, common practice, no published source
 WINDOW_STEPS = 1000  # BlackJAX's (and Stan's) default warm-up length, for a start with no mode
 LAPLACE_WINDOW_STEPS = 300  # started from the Laplace metric (benchmarks/RESULTS.md measures it)
 SHRINKAGE = 0.2  # imm_shrinkage_to_previous when started from the Laplace metric (our choice)
 
 
-class DrawsWarmup(NamedTuple):
-    """What the draws-based warm-up learned (chain axis first)."""
-
-    position: np.ndarray  # (chains, d) the chains at the end of the warm-up
-    logdensity: np.ndarray  # (chains,)
-    inverse_mass_matrix: np.ndarray  # (d, d) the shared metric (dense even when diagonal)
-    diagonal: bool  # whether the metric was estimated as a diagonal
-    step_size: float  # the shared step size (median of the chains')
-    chain_step_sizes: np.ndarray  # (chains,)
-    steps: int  # warm-up steps per chain
-    acceptance: float  # mean acceptance probability over the last quarter
-    divergent: int  # divergent transitions in the whole warm-up, all chains
-    gradients: int  # gradient evaluations in the whole warm-up, all chains
-    draws: np.ndarray  # (chains, steps, d) the warm-up draws
-    target_acceptance: float  # what the step size aimed for
-    started_from: str  # "laplace" or "identity"
+DrawsWarmup = LearnedMetric  # the one record of a metric learned from draws
 
 
 def _supports(name: str) -> bool:
     return name in inspect.signature(blackjax.window_adaptation).parameters
 
 
-def metric_factors(inverse_mass_matrix: np.ndarray):
-    """(S, C): S Sᵀ = M (the shape) and C Cᵀ = M⁻¹ (the precision the walker believes),
-    both lower triangular, from the metric M."""
-    m = np.asarray(inverse_mass_matrix, np.float64)
-    m = 0.5 * (m + m.T)
-    shape = np.linalg.cholesky(m)
-    precision = np.linalg.inv(m)
-    return shape, np.linalg.cholesky(0.5 * (precision + precision.T))
+def _last_window(steps: int) -> int:
+    """Draws per chain in the last slow window of BlackJAX's (Stan's) schedule: a first
+    fast window of 75 steps, a last of 50, slow windows 25, 50, 100, ... between them,
+    the last one taking what remains."""
+    slow = steps - 75 - 50
+    if slow < 25:
+        return 0
+    size, used = 25, 0
+    while used + size + 2 * size <= slow:
+        used += size
+        size *= 2
+    return slow - used
+
+
+def dense_enough(dim: int, steps: int) -> bool:
+    """Whether a dense metric can be estimated per chain: up to :data:`DENSE_LIMIT`, and
+    with at least 10 d draws in the last window (each chain estimates its own; the sample
+    eigenvalues spread as (1 ± √(d/n))², Marchenko & Pastur 1967: n ≥ 10 d keeps them within
+    about 0.5 to 1.7; the 10 is our choice, common practice, no published source). On the
+    random-intercept benchmark (d = 53) a dense estimate from 100 draws per chain made
+    NUTS's trajectories 14 times longer than a diagonal one."""
+    return dim <= DENSE_LIMIT and 10 * dim <= _last_window(steps)
 
 
 def window_warmup(flat_logdensity: Callable, starts, rng_key, *, steps: int | None = None,
@@ -101,7 +98,7 @@ def window_warmup(flat_logdensity: Callable, starts, rng_key, *, steps: int | No
     target_acceptance
         Dual averaging's aim (BlackJAX's default 0.8).
     diagonal
-        Estimate a diagonal metric; default: dense up to d = :data:`DENSE_LIMIT`.
+        Estimate a diagonal metric; default: dense when :func:`dense_enough`.
     shrinkage
         ``imm_shrinkage_to_previous`` (blackjax >= 1.7.1); default :data:`SHRINKAGE`
         with a Laplace metric, 0 without.
@@ -117,7 +114,7 @@ def window_warmup(flat_logdensity: Callable, starts, rng_key, *, steps: int | No
                          "window_warmup(steps=...)", minimum=20)
     probability(target_acceptance, "target_acceptance", "window_warmup(target_acceptance=...)")
     key = as_key(rng_key, where="window_warmup(rng_key=...)")
-    diagonal = dim > DENSE_LIMIT if diagonal is None else bool(diagonal)
+    diagonal = not dense_enough(dim, steps) if diagonal is None else bool(diagonal)
     options = {"is_mass_matrix_diagonal": diagonal,
                "initial_step_size": float(step_size),
                "target_acceptance_rate": float(target_acceptance)}

@@ -20,10 +20,14 @@ import numpy as np
 from ..engine.proposal import shape_from_cholesky
 from ..samplers import registry
 from ..samplers.family import Family
+from ..samplers.windows import learn_on_engine
 from ..theory.gradient import NUTS_TARGET_ACCEPTANCE
 from ..tuned.tuning import Tuning
 from ..tuned.walker import Walker, flat_logdensity, with_engine
 from .draws_warmup import DrawsWarmup, metric_factors, window_warmup
+
+REPAIR_FINAL = 100  # a walker switching family ends its windows with one of step size only
+#                    (a family keeping its own has refine()'s settling phase for that)
 
 __all__ = ["learn_metric", "learned_factors", "window_start", "fallback_walker_parts",
            "learned_words"]
@@ -41,13 +45,37 @@ def window_start(family: Family, tuning: Tuning, phase1, switch: str) -> tuple[f
 
 def learn_metric(walker: Walker, positions, rng_key, *, step_size: float = 1.0,
                  target_acceptance: float = NUTS_TARGET_ACCEPTANCE,
-                 steps: int | None = None) -> DrawsWarmup:
-    """Window adaptation from ``positions`` (chains, d), the Laplace metric and a step."""
+                 steps: int | None = None, switch: bool = False,
+                 first_draws=None) -> DrawsWarmup:
+    """The metric learned from draws, from ``positions`` (chains, d) and the Laplace metric.
+
+    A family whose engine takes the metric as data (``Family.learns_metric``: MALA, HMC,
+    NUTS), or the registry's FALLBACK when ``switch`` (the walker is switching to it),
+    learns it in windows on that engine (:func:`fisherwalk.samplers.windows.learn_on_engine`,
+    starting from ``first_draws``, refine()'s phase-1 draws): nothing new is compiled,
+    or, when switching, only the program the walk then uses. The random walk's shape is
+    learned by BlackJAX's window adaptation (:mod:`fisherwalk.prepare.draws_warmup`).
+    """
     fit = walker.report.laplace
     laplace_shape = np.asarray(shape_from_cholesky(np.asarray(fit.cholesky, np.float64)))
-    return window_warmup(flat_logdensity(walker.model), np.asarray(positions), rng_key,
-                         steps=steps, inverse_mass_matrix=laplace_shape @ laplace_shape.T,
-                         step_size=step_size, target_acceptance=target_acceptance)
+    family = registry.family(registry.FALLBACK) if switch else walker.family
+    if not family.learns_metric:
+        return window_warmup(flat_logdensity(walker.model), np.asarray(positions), rng_key,
+                             steps=steps, inverse_mass_matrix=laplace_shape @ laplace_shape.T,
+                             step_size=step_size, target_acceptance=target_acceptance)
+    tuning = walker.tuning._replace(step_size=float(step_size))
+    if switch:
+        aim = walker.tuning.aim if family.takes_target_acceptance else None
+        draft = Tuning(np.asarray(walker.tuning.shape), None, np.asarray(walker.tuning.whitening),
+                       walker.tuning.shape_kind, sampler=family.name, aim=aim)
+        tuning = family.initial(draft)
+    placement = walker.model.engine.placement
+    devices = None if placement is None else placement.mesh
+    return learn_on_engine(family, flat_logdensity(walker.model), tuning, fit.mode_flat,
+                           walker.chains, devices, np.asarray(positions), rng_key,
+                           tuple(fit.names), first_draws=first_draws,
+                           final=REPAIR_FINAL if switch else 0,
+                           started_from="laplace" if first_draws is None else "warm-up")
 
 
 def learned_factors(learned: DrawsWarmup, tuning: Tuning):
@@ -78,9 +106,11 @@ def fallback_walker_parts(walker: Walker, learned: DrawsWarmup):
 
 def learned_words(learned: DrawsWarmup, why: str) -> str:
     kind = "diagonal" if learned.diagonal else "dense"
-    return (f"Learned the metric from draws ({why}): BlackJAX's window adaptation, "
-            f"{learned.steps} steps per chain from the chains' positions and the Laplace "
-            f"metric, a {kind} estimate, step size {learned.step_size:.3g}, acceptance "
+    return (f"Learned the metric from draws ({why}): {learned.how}, "
+            f"{learned.steps} steps per chain from the chains' positions and "
+            + ("a first estimate from the warm-up's own draws"
+               if learned.started_from == "warm-up" else "the Laplace metric")
+            + f", a {kind} estimate, step size {learned.step_size:.3g}, acceptance "
             f"{learned.acceptance:.2f} in the last quarter"
             + (f", {learned.divergent} divergent transitions" if learned.divergent else "")
             + ".")

@@ -3,8 +3,9 @@
 When the mode search runs off (:class:`fisherwalk.errors.NoModeError`, diagnosed by
 :mod:`fisherwalk.fit.runaway`), there is no Laplace approximation to tune from. The
 chains start from the best points the search visited before the run-off, and NUTS
-warms up with BlackJAX's window adaptation (:mod:`fisherwalk.prepare.draws_warmup`), which
-learns the metric and the step size from the draws. The walker that comes back is an
+warms up in windows on its own engine (:mod:`fisherwalk.samplers.windows`, Stan's schedule),
+which learn the metric and the step size from the draws; the walk then runs the same
+compiled program. The walker that comes back is an
 ordinary NUTS walker: its tuning holds the learned metric and step size, and its
 report's ``laplace`` holds, in place of a mode and a Fisher information, the centre of
 the warm-up draws and the precision they gave (``LaplaceFit.no_mode`` says so).
@@ -21,15 +22,18 @@ import jax
 import numpy as np
 
 from ..base import pytrees
+from ..base.checks import whole_number
 from ..base.keys import normals, stream
 from ..errors import FisherwalkWarning, explain, warn_user
 from ..fit.laplace import LaplaceFit
 from ..fit.runaway import Runaway, advice, start_points
 from ..samplers import registry
+from ..samplers.windows import LearnedMetric as DrawsWarmup
+from ..samplers.windows import learn_on_engine, metric_factors, schedule
 from ..theory.gradient import NUTS_TARGET_ACCEPTANCE
 from ..tuned.tuning import Tuning
 from ..tuned.walker import LaplaceCheck, StartReport, Walker, assemble, flat_logdensity, make_model
-from .draws_warmup import DrawsWarmup, metric_factors, window_warmup
+from .draws_warmup import WINDOW_STEPS
 from .starts import checked_starts
 
 __all__ = ["modeless_start", "draws_fit"]
@@ -77,7 +81,7 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
     target_acceptance
         Dual averaging's aim (default BlackJAX's NUTS 0.8).
     steps
-        Window-adaptation steps per chain (default BlackJAX's 1000).
+        Warm-up steps per chain (default 1000, BlackJAX's and Stan's).
     chain_starts
         start()'s ``chain_starts``: when given, the window adaptation starts there instead
         of at the best points the search visited (checked as start() checks them).
@@ -96,20 +100,29 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
         starts, _ = checked_starts(chain_starts, position, tuple(flat.names),
                                    np.asarray(found.start).dtype, model.evaluate, chains)
         where_from = "the chain_starts given"
-    warm = window_warmup(flat_logdensity(model), starts, jax.random.fold_in(key, 12),
-                         steps=steps, target_acceptance=target)
+    entry = registry.family(registry.FALLBACK)
+    names = tuple(pytrees.flatten_position(position, where="start(position=...)").names)
+    dtype = np.asarray(found.start).dtype
+    eye = np.eye(dim, dtype=dtype)
+    draft = Tuning(eye, None, eye, "identity", sampler=entry.name,
+                   aim=target_acceptance if entry.takes_target_acceptance else None)
+    burn, windows, final = schedule(WINDOW_STEPS if steps is None else
+                                    whole_number(steps, "steps", "start(): the warm-up",
+                                                 minimum=300))
+    warm = learn_on_engine(entry, flat_logdensity(model), entry.initial(draft),
+                           np.asarray(found.start), chains, None, starts.astype(dtype),
+                           jax.random.fold_in(key, 12), names, burn=burn,
+                           windows=windows, final=final, started_from="identity")
     fit = draws_fit(warm, position, logdensity_fn, found, time.perf_counter() - began)
     shape, precision_chol = metric_factors(warm.inverse_mass_matrix)
-    dtype = np.asarray(fit.mode_flat).dtype
-    entry = registry.family(registry.FALLBACK)
     tuning = Tuning(shape.astype(dtype), None, precision_chol.astype(dtype), "warm-up",
                     sampler=entry.name, step_size=float(warm.step_size),
                     aim=target_acceptance if entry.takes_target_acceptance else None)
     replaced = ("" if sampler == entry.name else
                 f" sampler={sampler!r} was replaced by NUTS: without a mode there is no "
                 "Gaussian picture to tune it from.")
-    done = (f"Continuing without a mode:{replaced} NUTS warmed up by BlackJAX's window "
-            f"adaptation ({warm.steps} steps per chain from {where_from}; a "
+    done = (f"Continuing without a mode:{replaced} NUTS warmed up by {warm.how} "
+            f"({warm.steps} steps per chain from {where_from}; a "
             f"{'diagonal' if warm.diagonal else 'dense'} "
             f"metric learned from the draws, step size {warm.step_size:.3g}, acceptance "
             f"{warm.acceptance:.2f} in the last quarter toward {target:.2f}"

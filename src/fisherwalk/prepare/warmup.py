@@ -265,7 +265,8 @@ def refine(
             step0, aim0 = window_start(family, tuning0, phase1, switch)
             learned = learn_metric(walker, family.positions(walker.model.engine, state),
                                    jax.random.fold_in(key, 3), step_size=step0,
-                                   target_acceptance=aim0)
+                                   target_acceptance=aim0, switch=bool(switch),
+                                   first_draws=phase1.draws)
             if switch:  # "auto" chose on a picture the warm-up refuted: NUTS instead
                 return _switched(walker, learned, switch, learned_words(learned, why),
                                  phase1, (half, khat, k_limit, outside, spectrum, bounds,

@@ -113,3 +113,7 @@ class Family(NamedTuple):
     window_start: Callable[..., tuple[float, float]] | None = None  # (tuning, phase 1) ->
     #   (step size, target acceptance) from which refine()'s metric repair starts BlackJAX's
     #   window adaptation (run.metric_repair); None: (1.0, 0.8), BlackJAX's defaults
+    learns_metric: bool = False  # its engine takes the metric as data, so a metric is
+    #                              learned in windows on it (fisherwalk.samplers.windows)
+    #                              with no new compilation; False: BlackJAX's window
+    #                              adaptation learns it (fisherwalk.prepare.draws_warmup)

@@ -216,7 +216,7 @@ def step_family(*, name: str, label: str, kernel: Callable, extra_compile_second
         blackjax_api=blackjax_api, blackjax_takes_metric=blackjax_takes_metric,
         kernel=kernel, warmup_steps=GRADIENT_WARMUP_STEPS,
         takes_target_acceptance=bool(takes_target_acceptance),
-        relies_on_limit=bool(relies_on_limit), window_start=_window_start)
+        relies_on_limit=bool(relies_on_limit), window_start=_window_start, learns_metric=True)
 
 
 def hmc_like_states(kind):
