@@ -27,9 +27,10 @@ SCRIPT = ROOT / "benchmarks" / "run.py"
 # The structure of a quick run's results.json on gauss-d2 (every sampler, one repeat); the
 # format tests below set the figures they need themselves.
 GIVEN = ROOT / "tests" / "data" / "benchmark_results_gauss_d2.json"
-SAMPLERS = {"fisherwalk", "fisherwalk-mala", "fisherwalk-nuts", "nuts", "pathfinder", "chees",
-            "adaptive", "textbook"}
-ONE_PER_STEP = {"fisherwalk", "fisherwalk-mala", "adaptive", "textbook"}
+# one of each kind the checks tell apart (one evaluation per step, one gradient per step,
+# trajectories of gradients), fisherwalk's and a baseline's: the slow tier's budget
+SAMPLERS = {"fisherwalk", "fisherwalk-mala", "fisherwalk-nuts", "nuts", "adaptive"}
+ONE_PER_STEP = {"fisherwalk", "fisherwalk-mala", "adaptive"}
 
 
 @pytest.fixture(scope="module")
@@ -118,7 +119,7 @@ def _tables(markdown: str) -> list[list[list[str]]]:
 
 
 @pytest.mark.slow
-def test_every_sampler_ran_once_on_the_target(quick_run):
+def test_every_sampler_asked_ran_once_on_the_target(quick_run):
     _, results = quick_run
     assert results["mode"] == "quick" and results["repeats"] == 1
     (target,) = results["targets"]
@@ -126,8 +127,9 @@ def test_every_sampler_ran_once_on_the_target(quick_run):
     assert {r["sampler"] for r in target["runs"]} == SAMPLERS
     assert len(target["runs"]) == len(SAMPLERS)
     assert target["raw_seconds"] > 0
-    assert {r["sampler"] for r in results["references"]} == {"fisherwalk", "adaptive",
-                                                              "textbook"}
+    assert {r["sampler"] for r in results["references"]} <= {"fisherwalk", "adaptive",
+                                                             "textbook"}
+    assert "fisherwalk" in {r["sampler"] for r in results["references"]}
 
 
 @pytest.mark.slow
