@@ -5,18 +5,8 @@ with inverse mass matrix H⁻¹), which in the large-sample limit is N(0, I_d). 
 one step of MALA and one HMC trajectory are linear maps of the current state and the fresh
 noise, so everything below is exact at every finite d (no Monte Carlo, no lookup table).
 
-**Reduction.** Per coordinate the state and the noise form w_i = (x_i, z_i) ~ N(0, I_2),
-the proposal is x'_i = v_1 x_i + v_2 z_i, and the log of 1/(acceptance ratio) is
-ΔE = Σ_i w_iᵀ G w_i with a 2×2 symmetric G (the same for every i) of determinant ≤ 0.
-Rotating every w_i into the eigenbasis of G gives ΔE = α A − β B with α, β ≥ 0 and
-A, B ~ χ²_d independent, and the acceptance min(1, e^(−ΔE)) depends on (A, B) only.
-Given (A, B), the rotated coordinates are uniform on spheres, so the moments of the jump
-x'_i − x_i and of x'_i² − x_i² reduce to E[A^j B^k min(1, e^(−ΔE))], j + k ≤ 2. The
-inner expectation over B is closed-form (regularised incomplete gamma functions: on
-B ≥ αA/β the acceptance is 1, below it e^(βB) tilts χ²_d into a gamma law of scale
-2/(1 − 2β), with 1 − 2β = r > 0), and the outer one over A is Gauss–Legendre on the chi
-law (panels over ±9 sd of √A). Against a rule with 4× the nodes the moments agree to
-4e-13 for d ≤ 10⁴, 1e-11 at d = 10⁶ and 5e-9 at d = 10⁸; one evaluation takes < 1 ms.
+**Reduction** (:mod:`fisherwalk.theory.quadrature`): one step on N(0, I_d) is a quadratic
+form in chi-square variables, whose moments are computed exactly.
 
 * **MALA** (Roberts & Tweedie 1996, "Exponential convergence of Langevin distributions
   and their discrete approximations", Bernoulli 2(4); recalled): y = (1 − h/2) x + √h ξ, so
@@ -86,11 +76,22 @@ from functools import lru_cache
 from typing import Any, NamedTuple
 
 import numpy as np
-from numpy.polynomial.legendre import leggauss
-from scipy import optimize, special, stats
+from scipy import optimize
 
 from ..base.checks import whole_number
 from ..errors import InputError, explain
+from .quadrature import (
+    INTEGRATION_TIME,
+    chi_square_rule,
+    circle_tree,
+    decorrelation,
+    ess_per_step,
+    hmc_form,
+    hmc_mixture,
+    mala_form,
+    moments,
+    steps_law,
+)
 from .randomwalk import optimal_scale
 
 __all__ = [
@@ -112,9 +113,7 @@ __all__ = [
 
 SAMPLERS = ("rwm", "mala", "hmc", "nuts")
 GRADIENT_SAMPLERS = ("mala", "hmc", "nuts")
-INTEGRATION_TIME = (0.8 * np.pi / 2, 1.2 * np.pi / 2)  # HMC jitter window of the time t
 NUTS_TARGET_ACCEPTANCE = 0.8  # BlackJAX's default dual-averaging target for NUTS
-_MAX_DOUBLINGS = 10  # BlackJAX's default max_num_doublings for NUTS
 
 
 class GradientChoice(NamedTuple):
@@ -178,138 +177,6 @@ def _check_steps(steps: Any) -> int:
     return int(n)
 
 
-# ---------------------------------------------------- the reduction to (A, B) ~ χ²_d²
-
-
-class _Form(NamedTuple):
-    """One step on N(0, I_d) in the eigenbasis of G (arrays broadcast together)."""
-
-    alpha: np.ndarray  # ΔE = αA − βB
-    beta: np.ndarray
-    tilt: np.ndarray  # r = 1 − 2β > 0, computed without cancellation
-    angle: np.ndarray  # eigenvector of the larger eigenvalue of G: (cos, sin)(angle)
-    keep: np.ndarray  # v_1: x' = v_1 x + v_2 z per coordinate
-    move: np.ndarray  # v_2
-
-
-@lru_cache(maxsize=256)
-def _chi_square_rule(dim: int, panels: int = 8, nodes: int = 24) -> tuple[np.ndarray, ...]:
-    """Nodes A = R² and normalised weights for expectations over A ~ χ²_d, R ~ chi_d:
-    Gauss–Legendre panels in R over its central 1 − 2·10⁻¹⁸ of probability. For small
-    d the first panel is halved 27 times toward 0, where the chi density is not small
-    and an unstable step's acceptance varies on the scale R ~ α^(−1/2)."""
-    lo, hi = stats.chi.ppf(1e-18, dim), stats.chi.isf(1e-18, dim)
-    x, w = leggauss(nodes)
-    edges = np.linspace(lo, hi, panels + 1)
-    if dim <= 20:
-        inner = edges[1] * 2.0 ** -np.arange(27, 0, -1.0)
-        edges = np.concatenate([[lo], inner[inner > lo], edges[1:]])
-    left, right = edges[:-1, None], edges[1:, None]
-    radius = (0.5 * (right - left) * x + 0.5 * (right + left)).ravel()
-    log_pdf = stats.chi.logpdf(radius, dim)
-    weight = (0.5 * (right - left) * w).ravel() * np.exp(log_pdf - log_pdf.max())
-    weight /= weight.sum()
-    square = radius * radius
-    for array in (square, weight):
-        array.flags.writeable = False
-    return square, weight
-
-
-def _moments(form: _Form, dim: int, rule, acceptance_only: bool = False) -> tuple:
-    """Acceptance a, J = E[(x'_i − x_i)²] and J₂ = E[(x'_i² − x_i²)²] per coordinate
-    (only (a,) when ``acceptance_only``)."""
-    a_nodes, weight = rule
-    d, k = float(dim), 0.5 * dim
-    alpha, beta, tilt = (np.asarray(v, dtype=float)[..., None]
-                         for v in (form.alpha, form.beta, form.tilt))
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        edge = np.where(alpha == 0.0, 0.0,
-                        np.where(beta == 0.0, np.inf, alpha * a_nodes / beta))
-        log_tilted = -alpha * a_nodes - k * np.log(tilt)
-        inner = []  # E[B^j min(1, e^(−ΔE)) | A] for j = 0, 1, 2
-        for j, moment in enumerate((1.0, d, d * (d + 2.0))[:1 if acceptance_only else 3]):
-            upper = special.gammaincc(k + j, 0.5 * edge)
-            lower = np.exp(log_tilted + np.log(special.gammainc(k + j, 0.5 * tilt * edge))
-                           - j * np.log(tilt))
-            inner.append(moment * (upper + lower))
-    if acceptance_only:
-        return (inner[0] @ weight,)
-    f0, f1, f2 = inner
-    e_f, e_a, e_aa = f0 @ weight, (a_nodes * f0) @ weight, (a_nodes**2 * f0) @ weight
-    e_b, e_ab, e_bb = f1 @ weight, (a_nodes * f1) @ weight, f2 @ weight
-    cos, sin = np.cos(form.angle), np.sin(form.angle)
-    v1, v2 = form.keep, form.move
-    jump_plus, jump_minus = (v1 - 1.0) * cos + v2 * sin, -(v1 - 1.0) * sin + v2 * cos
-    jump = (jump_plus**2 * e_a + jump_minus**2 * e_b) / d
-    proj_plus, proj_minus = v1 * cos + v2 * sin, -v1 * sin + v2 * cos
-    k11 = proj_plus**2 - cos**2  # x'² − x² = wᵀ(vvᵀ − e₁e₁ᵀ)w, rotated
-    k22 = proj_minus**2 - sin**2
-    k12 = proj_plus * proj_minus + cos * sin
-    square_jump = (3.0 * (k11**2 * e_aa + k22**2 * e_bb) / (d * (d + 2.0))
-                   + (4.0 * k12**2 + 2.0 * k11 * k22) * e_ab / d**2)
-    return e_f, jump, square_jump
-
-
-def _mala_form(h: np.ndarray) -> _Form:
-    h = np.asarray(h, dtype=float)
-    root = np.sqrt(h**4 / 64.0 + h) + h * h / 8.0  # eigenvalues of G·8/h: root, −h/root
-    c = 1.0 - 0.5 * h
-    angle = 0.5 * np.arctan2(2.0 * c * np.sqrt(h), c * c - 1.0 - h)
-    return _Form(h / 8.0 * root, h / 8.0 * h / root, h / root**2, angle, c, np.sqrt(h))
-
-
-def _hmc_form(eps: np.ndarray, steps: np.ndarray) -> _Form:
-    eps, steps = np.broadcast_arrays(np.asarray(eps, dtype=float), np.asarray(steps))
-    c0 = 1.0 - 0.5 * eps * eps
-    cos_n = special.eval_chebyt(steps, c0)
-    sin_n = special.eval_chebyu(steps - 1, c0)
-    p12, p21 = eps * sin_n, -eps * (1.0 - 0.25 * eps * eps) * sin_n
-    gamma = np.abs(0.25 * eps**3 * sin_n)
-    sigma = 0.5 * gamma + np.sqrt(1.0 + 0.25 * gamma * gamma)
-    angle = 0.5 * np.arctan2(2.0 * cos_n * (p12 + p21), p21 * p21 - p12 * p12)
-    return _Form(0.5 * gamma * sigma, 0.5 * gamma / sigma, 1.0 / sigma**2, angle, cos_n, p12)
-
-
-# ----------------------------------------------------------------------------- HMC law
-
-
-def _steps_law(eps: float) -> tuple[np.ndarray, np.ndarray]:
-    """Law of n = max(1, ⌊t/ε + u⌋), t ~ U(INTEGRATION_TIME), u ~ U(0, 1).
-
-    P(⌊s + u⌋ = k | s) = max(0, 1 − |s − k|), integrated over s = t/ε in closed form.
-    """
-    lo, hi = INTEGRATION_TIME[0] / eps, INTEGRATION_TIME[1] / eps
-    ks = np.arange(int(np.floor(lo)), int(np.floor(hi)) + 2)
-
-    def ramp(y):  # ∫_{−∞}^{y} max(0, 1 − |s|) ds
-        y = np.clip(y, -1.0, 1.0)
-        return np.where(y < 0.0, 0.5 * (y + 1.0) ** 2, 1.0 - 0.5 * (1.0 - y) ** 2)
-
-    prob = (ramp(hi - ks) - ramp(lo - ks)) / (hi - lo)
-    steps = np.maximum(ks, 1)
-    values = np.unique(steps)
-    prob = np.array([prob[steps == v].sum() for v in values])
-    keep = prob > 0.0
-    return values[keep], prob[keep] / prob[keep].sum()
-
-
-def _hmc_mixture(eps: float, dim: int, rule=None) -> tuple[float, float, float, float]:
-    """(acceptance, J, J₂, mean steps) of jittered HMC at step ε."""
-    steps, prob = _steps_law(eps)
-    a, jump, square = _moments(_hmc_form(eps, steps), dim, rule or _chi_square_rule(dim))
-    return float(prob @ a), float(prob @ jump), float(prob @ square), float(prob @ steps)
-
-
-def _decorrelation(jump: float, square_jump: float) -> float:
-    """min(1 − ρ₁, 1 − ρ₂): the slower of x_i and x_i², lag 1."""
-    return min(0.5 * jump, 0.25 * square_jump)
-
-
-def _ess_per_step(decorrelation: float) -> float:
-    """AR(1): (1 − ρ)/(1 + ρ) with ρ = 1 − decorrelation."""
-    return decorrelation / (2.0 - decorrelation)
-
-
 # ------------------------------------------------------------------------- optimisers
 
 
@@ -326,82 +193,46 @@ def _maximise(value, lo: float, hi: float, points: int = 48) -> float:
 
 @lru_cache(maxsize=1024)
 def _mala_choice(dim: int) -> GradientChoice:
-    rule = _chi_square_rule(dim)
+    rule = chi_square_rule(dim)
     shrink = dim ** (-1.0 / 3.0)
 
     def jump_at(log_scale: float) -> float:
         h = np.exp(2.0 * log_scale) * shrink
-        return float(_moments(_mala_form(h), dim, rule)[1])
+        return float(moments(mala_form(h), dim, rule)[1])
 
     scale = _maximise(jump_at, 0.2, 5.0)
     h = scale * scale * shrink
-    a, jump, square = (float(v) for v in _moments(_mala_form(h), dim, rule))
-    ess = _ess_per_step(_decorrelation(jump, square))
+    a, jump, square = (float(v) for v in moments(mala_form(h), dim, rule))
+    ess = ess_per_step(decorrelation(jump, square))
     return GradientChoice("mala", dim, scale, 0.5 * h, a, jump, square, None, None, 1.0, ess)
 
 
 @lru_cache(maxsize=1024)
 def _hmc_choice(dim: int) -> GradientChoice:
-    rule = _chi_square_rule(dim)
+    rule = chi_square_rule(dim)
     shrink = dim ** (-0.25)
 
     def efficiency(log_scale: float) -> float:
-        _, jump, square, steps = _hmc_mixture(np.exp(log_scale) * shrink, dim, rule)
-        return _decorrelation(jump, square) / steps
+        _, jump, square, steps = hmc_mixture(np.exp(log_scale) * shrink, dim, rule)
+        return decorrelation(jump, square) / steps
 
     scale = _maximise(efficiency, 0.2, min(1.99 / shrink, 6.0))
     eps = scale * shrink
-    a, jump, square, steps = _hmc_mixture(eps, dim, rule)
-    law = _steps_law(eps)[0]
-    ess = _ess_per_step(_decorrelation(jump, square)) / steps
+    a, jump, square, steps = hmc_mixture(eps, dim, rule)
+    law = steps_law(eps)[0]
+    ess = ess_per_step(decorrelation(jump, square)) / steps
     return GradientChoice("hmc", dim, scale, eps, a, jump, square, (int(law[0]), int(law[-1])),
                           INTEGRATION_TIME, steps, ess)
-
-
-class _Tree(NamedTuple):
-    """NUTS in the circle model at one step ε."""
-
-    gradients: int  # leapfrog steps (gradient evaluations) per NUTS step
-    acceptance: float  # BlackJAX's acceptance statistic: mean over the new states
-    rho_mean: float  # lag-1 autocorrelation of x_i
-    rho_square: float  # lag-1 autocorrelation of x_i²
-
-
-def _circle_tree(eps: float, dim: int, rule) -> _Tree:
-    """NUTS on N(0, I_d) with every trajectory a circle (d → ∞: |x|² ≈ |p|² ≈ d, x·p ≈ 0).
-
-    A tree of m states spans (m − 1)ε, and BlackJAX's check ρ·v_end ≤ 0 with
-    ρ = Σp − (p_left + p_right)/2 reads, on a circle, F(m)·cos((m − 1)ε/2) ≤ 0 with
-    F(m) = sin(mε/2)/sin(ε/2) − cos((m − 1)ε/2) > 0: the tree turns once its span
-    reaches π. Every smaller size was checked in earlier doublings, so the tree doubles
-    until the merged span reaches π (at most 2^10 states). The start sits uniformly in
-    the old half (random directions), the draw uniformly in the new half (equal weights
-    along the trajectory), and the acceptance statistic averages the exact finite-d
-    acceptance of |offset| leapfrog steps over all states but the start.
-    """
-    size = 2
-    while (size - 1) * eps < np.pi and size < 2**_MAX_DOUBLINGS:
-        size *= 2
-    old = size // 2
-    start = np.arange(old)[:, None]
-    offsets = np.abs(np.arange(size)[None, :] - start)  # (start, state)
-    distinct = np.arange(1, size)
-    accept = np.concatenate([[1.0], _moments(_hmc_form(eps, distinct), dim, rule,
-                                             acceptance_only=True)[0]])
-    mean_accept = float(np.sum(accept[offsets]) - old) / (old * (size - 1))
-    drawn = offsets[:, old:].ravel()
-    cos_o = special.eval_chebyt(drawn, 1.0 - 0.5 * eps * eps)
-    return _Tree(size - 1, mean_accept, float(np.mean(cos_o)), float(np.mean(cos_o**2)))
 
 
 @lru_cache(maxsize=1024)
 def _nuts_choice(dim: int) -> GradientChoice:
     """ε where the circle model's acceptance statistic first falls to the target."""
-    rule = _chi_square_rule(dim)
+    rule = chi_square_rule(dim)
     shrink = dim ** (-0.25)
 
     def gap(eps: float) -> float:
-        return _circle_tree(eps, dim, rule).acceptance - NUTS_TARGET_ACCEPTANCE
+        return circle_tree(eps, dim, rule).acceptance - NUTS_TARGET_ACCEPTANCE
 
     grid = np.minimum(np.linspace(0.5, 3.0, 26) * shrink, 1.95)
     gaps = np.array([gap(e) for e in grid])
@@ -412,8 +243,8 @@ def _nuts_choice(dim: int) -> GradientChoice:
         eps = optimize.brentq(gap, 1e-4, grid[0], xtol=1e-12)
     else:
         eps = optimize.brentq(gap, grid[below[0] - 1], grid[below[0]], xtol=1e-12)
-    tree = _circle_tree(eps, dim, rule)
-    ess = _ess_per_step(min(1.0 - tree.rho_mean, 1.0 - tree.rho_square)) / tree.gradients
+    tree = circle_tree(eps, dim, rule)
+    ess = ess_per_step(min(1.0 - tree.rho_mean, 1.0 - tree.rho_square)) / tree.gradients
     return GradientChoice("nuts", dim, eps / shrink, eps, NUTS_TARGET_ACCEPTANCE,
                           2.0 * (1.0 - tree.rho_mean), 4.0 * (1.0 - tree.rho_square), None,
                           None, float(tree.gradients), ess)
@@ -435,7 +266,7 @@ def mala_acceptance(scale: Any, dim: int) -> float | np.ndarray:
     d = _check_dim(dim)
     scales = _check_positive(scale, "scale")
     h = scales**2 * d ** (-1.0 / 3.0)
-    return _as_output(_moments(_mala_form(h), d, _chi_square_rule(d))[0], scales.ndim == 0)
+    return _as_output(moments(mala_form(h), d, chi_square_rule(d))[0], scales.ndim == 0)
 
 
 def mala_jump(scale: Any, dim: int) -> float | np.ndarray:
@@ -443,7 +274,7 @@ def mala_jump(scale: Any, dim: int) -> float | np.ndarray:
     d = _check_dim(dim)
     scales = _check_positive(scale, "scale")
     h = scales**2 * d ** (-1.0 / 3.0)
-    return _as_output(_moments(_mala_form(h), d, _chi_square_rule(d))[1], scales.ndim == 0)
+    return _as_output(moments(mala_form(h), d, chi_square_rule(d))[1], scales.ndim == 0)
 
 
 def hmc_acceptance(step_size: Any, steps: int, dim: int) -> float | np.ndarray:
@@ -455,7 +286,7 @@ def hmc_acceptance(step_size: Any, steps: int, dim: int) -> float | np.ndarray:
     d = _check_dim(dim)
     eps = _check_positive(step_size, "step_size")
     n = _check_steps(steps)
-    return _as_output(_moments(_hmc_form(eps, n), d, _chi_square_rule(d))[0], eps.ndim == 0)
+    return _as_output(moments(hmc_form(eps, n), d, chi_square_rule(d))[0], eps.ndim == 0)
 
 
 def hmc_jump(step_size: Any, steps: int, dim: int) -> float | np.ndarray:
@@ -463,7 +294,7 @@ def hmc_jump(step_size: Any, steps: int, dim: int) -> float | np.ndarray:
     d = _check_dim(dim)
     eps = _check_positive(step_size, "step_size")
     n = _check_steps(steps)
-    return _as_output(_moments(_hmc_form(eps, n), d, _chi_square_rule(d))[1], eps.ndim == 0)
+    return _as_output(moments(hmc_form(eps, n), d, chi_square_rule(d))[1], eps.ndim == 0)
 
 
 def hmc_steps_law(step_size: float) -> tuple[np.ndarray, np.ndarray]:
@@ -476,7 +307,7 @@ def hmc_steps_law(step_size: float) -> tuple[np.ndarray, np.ndarray]:
     if eps.ndim != 0:
         raise InputError(explain("step_size is an array.", "hmc_steps_law(step_size)",
                                  "pass one step size (a float)."))
-    return _steps_law(float(eps))
+    return steps_law(float(eps))
 
 
 def stable_step_limit(sampler: str) -> float:
@@ -501,13 +332,13 @@ def step_acceptance(sampler: str, step_size: Any, dim: int) -> float | np.ndarra
     sampler = _check_sampler(sampler, GRADIENT_SAMPLERS, "step_acceptance(sampler=...)")
     d = _check_dim(dim)
     steps = _check_positive(step_size, "step_size")
-    rule = _chi_square_rule(d)
+    rule = chi_square_rule(d)
     if sampler == "mala":
-        return _as_output(_moments(_mala_form(2.0 * steps), d, rule)[0], steps.ndim == 0)
+        return _as_output(moments(mala_form(2.0 * steps), d, rule)[0], steps.ndim == 0)
     if sampler == "hmc":
-        out = [_hmc_mixture(float(e), d, rule)[0] for e in steps.ravel()]
+        out = [hmc_mixture(float(e), d, rule)[0] for e in steps.ravel()]
     else:
-        out = [_circle_tree(float(e), d, rule).acceptance for e in steps.ravel()]
+        out = [circle_tree(float(e), d, rule).acceptance for e in steps.ravel()]
     return _as_output(np.reshape(out, steps.shape), steps.ndim == 0)
 
 
@@ -551,5 +382,5 @@ def predicted_ess_per_evaluation(sampler: str, dim: int) -> float:
     sampler = _check_sampler(sampler, SAMPLERS, "predicted_ess_per_evaluation(sampler=...)")
     d = _check_dim(dim)
     if sampler == "rwm":
-        return _ess_per_step(0.5 * optimal_scale(d).slowest_jump)
+        return ess_per_step(0.5 * optimal_scale(d).slowest_jump)
     return optimal_gradient_step(sampler, d).ess_per_gradient
