@@ -58,7 +58,14 @@ from numpy.polynomial.legendre import leggauss
 from scipy import optimize, special
 
 from ..base.checks import whole_number
-from ..errors import FisherwalkError, InputError, explain
+from ..errors import InputError, explain
+from .spectrum import (
+    criterion_value,
+    group_spectrum,
+    rule_for,
+    spectrum_optimum,
+    spectrum_terms,
+)
 
 __all__ = [
     "CRITERIA",
@@ -232,116 +239,6 @@ def _matched_optimum(dim: int) -> tuple[float, float, float, float]:
     return float(scale), float(acceptance), float(jump), float(error)
 
 
-# ------------------------------------------------------ any spectrum: Craig's formula
-
-
-class _Groups(NamedTuple):
-    values: np.ndarray  # distinct eigenvalues, ascending
-    counts: np.ndarray  # multiplicity of each
-    inverse: np.ndarray  # input index -> group index
-
-
-def _groups(spectrum: np.ndarray) -> _Groups:
-    values, inverse, counts = np.unique(spectrum, return_inverse=True, return_counts=True)
-    return _Groups(values, counts.astype(float), inverse)
-
-
-@lru_cache(maxsize=256)
-def _craig_rule(halvings: int, nodes: int = 16) -> tuple[np.ndarray, np.ndarray]:
-    """Nodes s = sin²θ and weights (2/π)·dθ on [0, π/2]: Gauss–Legendre panels whose
-    edges halve toward 0, so features at θ ≈ c√λ_j of every size are resolved."""
-    edges = np.concatenate([[0.0], 0.5 * np.pi * 2.0 ** -np.arange(halvings, -1, -1.0)])
-    x, w = leggauss(nodes)
-    left, right = edges[:-1, None], edges[1:, None]
-    theta = (0.5 * (right - left) * x + 0.5 * (right + left)).ravel()
-    weight = (0.5 * (right - left) * w).ravel() * (2.0 / np.pi)
-    s = np.sin(theta) ** 2
-    s.flags.writeable = False
-    weight.flags.writeable = False
-    return s, weight
-
-
-def _rule_for(min_scale: float, dim: int, groups: _Groups, refine: bool = False):
-    """A Craig rule fine enough for every scale >= min_scale."""
-    c_min = min_scale / (2.0 * np.sqrt(dim)) * np.sqrt(groups.values[0])
-    theta_min = 0.02 * min(c_min, 1.0) if c_min > 0 else 1.0
-    halvings = int(np.clip(np.ceil(np.log2(0.5 * np.pi / theta_min)), 3, 90))
-    return _craig_rule(halvings + 2, 24) if refine else _craig_rule(halvings)
-
-
-def _spectrum_terms(scale: float, dim: int, groups: _Groups, rule):
-    """a(l), and J_g(l) per direction of each eigenvalue group, at one scale."""
-    s, w = rule
-    c2 = scale * scale / (4.0 * dim)
-    ratio = c2 * groups.values[None, :] / s[:, None]  # (nodes, groups)
-    weighted = w * np.exp(-0.5 * (np.log1p(ratio) @ groups.counts))
-    acceptance = float(np.sum(weighted))
-    per_group = (scale * scale / dim) * (weighted @ (groups.values / (1.0 + ratio)))
-    return acceptance, per_group
-
-
-def _criterion_value(per_group: np.ndarray, groups: _Groups, criterion: str) -> float:
-    if criterion == "total":
-        return float(per_group @ groups.counts)
-    return float(per_group.min())
-
-
-def _criterion_at(scale: float, dim: int, groups: _Groups, rule, criterion: str) -> float:
-    """The criterion alone (the slowest direction is group 0, the smallest eigenvalue)."""
-    s, w = rule
-    c2 = scale * scale / (4.0 * dim)
-    ratio = c2 * groups.values[None, :] / s[:, None]
-    weighted = w * np.exp(-0.5 * (np.log1p(ratio) @ groups.counts))
-    if criterion == "total":
-        inner = (1.0 / (1.0 + ratio)) @ (groups.values * groups.counts)
-    else:
-        inner = groups.values[0] / (1.0 + ratio[:, 0])
-    return float(scale * scale / dim * (weighted @ inner))
-
-
-def _spectrum_optimum(dim: int, groups: _Groups, criterion: str) -> float:
-    """l* for a spectrum: walk uphill in log l from 2.4/√mean(λ) in steps of 0.25 until
-    the criterion falls, then bounded Brent inside the last three points.
-
-    The criterion was unimodal in l on every spectrum checked on a dense grid (92
-    spectra: log-uniform over ten decades, two clusters, one outlier; d from 2 to
-    1000; both criteria); the walk assumes it.
-    """
-    mean = float(groups.values @ groups.counts) / dim
-    step = 0.25
-    rule_min = [0.1 / np.sqrt(mean)]
-    rule = [_rule_for(rule_min[0], dim, groups)]
-
-    def value(log_scale: float) -> float:
-        scale = float(np.exp(log_scale))
-        if scale < rule_min[0]:
-            rule_min[0] = 0.5 * scale
-            rule[0] = _rule_for(rule_min[0], dim, groups)
-        return _criterion_at(scale, dim, groups, rule[0], criterion)
-
-    start = float(np.log(2.4 / np.sqrt(mean)))
-    here, ahead = value(start), value(start + step)
-    direction = 1.0 if ahead >= here else -1.0
-    previous, best, best_value = ((start, start + step, ahead) if direction > 0
-                                  else (start + step, start, here))
-    for _ in range(400):  # 400 steps of 0.25 span 43 decades of l
-        trial = best + direction * step
-        trial_value = value(trial)
-        if trial_value < best_value:
-            break
-        previous, best, best_value = best, trial, trial_value
-    else:
-        raise FisherwalkError(explain(  # pragma: no cover - not seen on any spectrum tried
-            "no maximum of the expected jump was found along the scale axis.",
-            "optimal_scale(spectrum=...)", "report the spectrum to the developers."))
-    lo, hi = sorted((previous, trial))
-    rule_min[0] = float(np.exp(lo))
-    rule[0] = _rule_for(rule_min[0], dim, groups)
-    result = optimize.minimize_scalar(lambda x: -value(x), bounds=(lo, hi), method="bounded",
-                                      options={"xatol": 1e-10})
-    return float(np.exp(result.x))
-
-
 # ----------------------------------------------------------------------------- public
 
 
@@ -393,15 +290,15 @@ def optimal_scale(dim: int, spectrum: Any = None, *, criterion: str = "slowest")
     if values is None:
         return ScaleChoice(d, m_scale, m_accept, m_jump, m_jump / d, criterion, 1.0, m_error,
                            None)
-    groups = _groups(values)
-    scale = _spectrum_optimum(d, groups, criterion)
-    rule = _rule_for(scale, d, groups)
-    acceptance, per_group = _spectrum_terms(scale, d, groups, rule)
-    fine_acceptance, fine_group = _spectrum_terms(scale, d, groups,
-                                                  _rule_for(scale, d, groups, refine=True))
-    value = _criterion_value(per_group, groups, criterion)
+    groups = group_spectrum(values)
+    scale = spectrum_optimum(d, groups, criterion)
+    rule = rule_for(scale, d, groups)
+    acceptance, per_group = spectrum_terms(scale, d, groups, rule)
+    fine_acceptance, fine_group = spectrum_terms(scale, d, groups,
+                                                  rule_for(scale, d, groups, refine=True))
+    value = criterion_value(per_group, groups, criterion)
     error = max(abs(fine_acceptance - acceptance),
-                abs(_criterion_value(fine_group, groups, criterion) - value), m_error)
+                abs(criterion_value(fine_group, groups, criterion) - value), m_error)
     reference = m_jump if criterion == "total" else m_jump / d
     return ScaleChoice(
         dim=d,
@@ -429,14 +326,14 @@ def acceptance_curve(scales: Any, dim: int, spectrum: Any = None) -> ScaleCurve:
     if values is None:
         acceptance, jump = _matched_terms(grid, _chi_rule(d))
         return ScaleCurve(acceptance, jump, jump / d)
-    groups = _groups(values)
+    groups = group_spectrum(values)
     positive = grid[grid > 0]
-    rule = _rule_for(float(positive.min()) if positive.size else 0.0, d, groups)
+    rule = rule_for(float(positive.min()) if positive.size else 0.0, d, groups)
     acceptance = np.empty(grid.shape)
     jump = np.empty(grid.shape)
     slowest = np.empty(grid.shape)
     for index, scale in np.ndenumerate(grid):
-        acceptance[index], per_group = _spectrum_terms(float(scale), d, groups, rule)
+        acceptance[index], per_group = spectrum_terms(float(scale), d, groups, rule)
         jump[index] = per_group @ groups.counts
         slowest[index] = per_group.min()
     return ScaleCurve(acceptance, jump, slowest)
@@ -473,10 +370,10 @@ def expected_jump(scale: Any, dim: int, spectrum: Any = None, *,
     if values is None:
         jump = _matched_terms(grid, _chi_rule(d))[1]
         return np.repeat((jump / d)[..., None], d, axis=-1)
-    groups = _groups(values)
+    groups = group_spectrum(values)
     positive = grid[grid > 0]
-    rule = _rule_for(float(positive.min()) if positive.size else 0.0, d, groups)
+    rule = rule_for(float(positive.min()) if positive.size else 0.0, d, groups)
     out = np.empty(grid.shape + (d,))
     for index, scale_value in np.ndenumerate(grid):
-        out[index] = _spectrum_terms(float(scale_value), d, groups, rule)[1][groups.inverse]
+        out[index] = spectrum_terms(float(scale_value), d, groups, rule)[1][groups.inverse]
     return out
