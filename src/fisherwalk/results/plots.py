@@ -26,11 +26,12 @@ from typing import Any
 
 import numpy as np
 
-from ..base.files import write_atomic
 from ..errors import InputError, explain
 from . import diagnostics
+from .canvas import CHAIN_COLOURS, figure, save_figure
 from .facts import in_written_order
 from .focus import focus_indices, prominent
+from .tuning_figure import plot_tuning
 
 __all__ = [
     "plot_traces",
@@ -48,25 +49,6 @@ FILE_NAMES = {
     "autocorrelation": "autocorrelation.png",
 }
 MAX_PANELS = 16  # parameters shown per figure; more would be unreadable
-_DPI = 110
-_CHAIN_COLOURS = ("#1b6ca8", "#d1495b", "#2a9d5c", "#e09f3e", "#6a4c93", "#3d3d3d",
-                  "#00a6a6", "#9c6644")
-
-
-def _figure(width: float, height: float):
-    from matplotlib.figure import Figure
-
-    return Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
-
-
-def _save(fig, path) -> Path | None:
-    if path is None:
-        return None
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    return write_atomic(path, lambda handle: fig.savefig(handle, format="png"))
-
-
 def _labels(trace, labels: Sequence[str] | None) -> list[str]:
     """Panel titles in ravelled order (the order of ``trace.flat``); ``labels`` are given
     one per parameter in ravelled order, as ``trace.names``."""
@@ -209,7 +191,7 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
     else:
         chosen, note = panels(trace, focus, max_panels)
     chains, draws, dim = flat.shape
-    fig = _figure(*_panel_size(len(chosen)))
+    fig = figure(*_panel_size(len(chosen)))
     every = max(1, math.ceil(draws / max_points))
     steps = np.arange(0, draws, every) * trace.thin
     if every > 1:
@@ -217,7 +199,7 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
     for k, (i, ax) in enumerate(zip(chosen, _grid(fig, len(chosen)), strict=True)):
         for c in range(chains):
             ax.plot(steps, flat[c, ::every, i], lw=0.5, alpha=0.75,
-                    color=_CHAIN_COLOURS[c % len(_CHAIN_COLOURS)],
+                    color=CHAIN_COLOURS[c % len(CHAIN_COLOURS)],
                     label=f"chain {c}" if k == 0 else None)
         if mode is not None:
             ax.axhline(mode[i], color="black", ls="--", lw=0.9,
@@ -229,129 +211,7 @@ def plot_traces(trace, path=None, *, labels: Sequence[str] | None = None,
     _legend(fig, min(chains + 1, 9))
     fig.suptitle(f"Chain traces: {chains} chains x {draws} draws{note}{_space(trace, True)}",
                  fontsize=11)
-    _save(fig, path)
-    return fig
-
-
-def plot_tuning(trace, path=None):
-    """The tuning picture for this dimension and proposal shape.
-
-    Top: the acceptance rate that the Gaussian limit predicts at each scale l (Roberts,
-    Gelman & Gilks 1997, Ann. Appl. Probab. 7(1), computed for this finite d and the
-    spectrum of A = Sᵀ H S). Bottom: the predicted expected squared jump distance per
-    step in whitened units, |Lᵀ Δθ|² with L Lᵀ = H (standard deviations of the Laplace
-    approximation, summed over parameters); its peak is the optimal l. A posterior
-    wider than N(mode, H⁻¹) shows a realised jump above the curve, and the warm-up then
-    raises l to bring the acceptance back to the target. Marked: the scale start() chose
-    from the theory, the scale after the warm-up, and the realised acceptance and jump
-    of the walk at the refined scale. Realised points on the curves say the Gaussian
-    picture holds; points off them say the posterior differs from N(mode, H⁻¹) (wider,
-    narrower, skewed).
-    """
-    from ..theory.randomwalk import acceptance_curve
-
-    facts = trace.facts
-    if facts.setting_label != "scale":
-        return _plot_gradient_tuning(trace, path)
-    warmed = facts.warmed
-    dim = int(facts.dim)
-    spectrum = np.asarray(facts.spectrum, dtype=float)
-    matched = bool(np.allclose(spectrum, 1.0, rtol=1e-6))
-    chosen = float(facts.setting_theory)
-    refined = float(facts.setting)
-    top = max(3.0 * max(chosen, refined), 6.0)
-    grid = np.linspace(0.05, top, 240)
-    curve = acceptance_curve(grid, dim, None if matched else spectrum)
-    marks = acceptance_curve(np.array([chosen, refined]), dim, None if matched else spectrum)
-    realised_acc = float(np.mean(trace.accepted))
-    realised_jump = None
-    if trace.thin == 1 and trace.flat.shape[1] > 1:
-        realised_jump = diagnostics.whitened_jump(
-            np.asarray(trace.flat), np.asarray(facts.whitening)).mean
-
-    fig = _figure(7.6, 7.0)
-    ax_acc, ax_jump = fig.subplots(2, 1, sharex=True)
-    ax_acc.plot(grid, curve.acceptance, color="#1b6ca8", lw=1.8, label="predicted acceptance")
-    ax_jump.plot(grid, curve.jump_distance, color="#1b6ca8", lw=1.8,
-                 label="predicted jump distance (all directions)")
-    if not matched:
-        ax_jump.plot(grid, curve.slowest_jump * dim, color="#1b6ca8", lw=1.2, ls=":",
-                     label="slowest direction's jump x d")
-    for ax, values in ((ax_acc, marks.acceptance), (ax_jump, marks.jump_distance)):
-        if not warmed:  # no refine(): walk() used the scale start() chose
-            ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
-                       label=f"chosen by start(), no warm-up: l = {refined:.3f}")
-            ax.plot([refined], values[1:], "o", color="#1b6ca8", ms=5, zorder=3,
-                    label="predicted at this scale")
-            continue
-        ax.axvline(chosen, color="#6a4c93", ls="--", lw=1.0,
-                   label=f"chosen by start(): l = {chosen:.3f}")
-        ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
-                   label=f"after warm-up: l = {refined:.3f}")
-        ax.plot([chosen, refined], values, "o", color="#1b6ca8", ms=5, zorder=3,
-                label="predicted at these scales")
-    ax_acc.axhline(facts.predicted_acceptance, color="grey", ls=":", lw=1.0,
-                   label=f"target acceptance {facts.predicted_acceptance:.3f}")
-    ax_acc.plot([refined], [realised_acc], "D", color="#d1495b", ms=8, zorder=4,
-                label=f"realised acceptance {realised_acc:.3f}")
-    if realised_jump is not None:
-        ax_jump.plot([refined], [realised_jump], "D", color="#d1495b", ms=8, zorder=4,
-                     label=f"realised jump {realised_jump:.3f}")
-    ax_acc.set_ylabel("acceptance rate")
-    ax_acc.set_ylim(0, 1)
-    precision = "re-estimated precision" if facts.shape_kind == "warm-up" else "H"
-    ax_jump.set_ylabel(f"squared jump per step, whitened\n|Lᵀ Δθ|² with L Lᵀ = {precision}")
-    ax_jump.set_xlabel("scale l  (proposal step = l/√d · S z)")
-    ax_jump.set_ylim(bottom=0)
-    ax_acc.legend(fontsize=8, loc="upper right")
-    ax_jump.legend(fontsize=8, loc="upper right")
-    shape = "proposal matched to H⁻¹" if matched else (
-        f"proposal shape '{facts.shape_kind}', spectrum of SᵀHS "
-        f"{spectrum.min():.2g} to {spectrum.max():.2g}")
-    fig.suptitle(f"Tuning for d = {dim}: {shape}\n"
-                 "curves: Gaussian-limit predictions; diamonds: this walk", fontsize=11)
-    _save(fig, path)
-    return fig
-
-
-def _plot_gradient_tuning(trace, path=None):
-    """A gradient sampler's tuning picture: the acceptance the Gaussian limit predicts
-    against BlackJAX's step size on the whitened target N(0, I_d) (exact for MALA and HMC
-    with its jittered time, fisherwalk.theory.gradient; for NUTS the acceptance statistic of
-    the circle model, a rough guide), the theory step, the step after dual averaging and
-    the realised acceptance."""
-    from ..theory.gradient import stable_step_limit, step_acceptance
-
-    facts = trace.facts
-    dim, sampler = int(facts.dim), facts.sampler
-    chosen, refined = float(facts.setting_theory), float(facts.setting)
-    stable = stable_step_limit(sampler)  # leapfrog: the curve ends just short of ε = 2
-    limit = 0.975 * stable if math.isfinite(stable) else 3.0 * max(chosen, refined)
-    grid = np.linspace(0.02, max(limit, 1.5 * max(chosen, refined)), 120)
-    curve = np.asarray(step_acceptance(sampler, grid, dim))
-    realised = float(np.mean(trace.acceptance_rate))
-    fig = _figure(7.6, 4.4)
-    ax = fig.subplots(1, 1)
-    ax.plot(grid, curve, color="#1b6ca8", lw=1.8, label="predicted acceptance")
-    ax.axvline(chosen, color="#6a4c93", ls="--", lw=1.0,
-               label=f"theory step for d = {dim}: {chosen:.4g}")
-    if facts.warmed:
-        ax.axvline(refined, color="#e09f3e", ls="-", lw=1.0,
-                   label=f"after dual averaging: {refined:.4g}")
-        ax.axhline(facts.aim, color="grey", ls=":", lw=1.0,
-                   label=f"target acceptance {facts.aim:.3f}")
-    else:
-        ax.set_title("no warm-up: the theory step", fontsize=9)
-    ax.plot([refined], [realised], "D", color="#d1495b", ms=8, zorder=4,
-            label=f"realised acceptance {realised:.3f}")
-    ax.set_ylim(0, 1)
-    ax.set_xlabel(f"step size (BlackJAX's step_size for {sampler})")
-    ax.set_ylabel("acceptance")
-    ax.legend(fontsize=8, loc="upper right")
-    fig.suptitle(f"Tuning of {facts.title} for d = {dim}, posterior whitened by S Sᵀ "
-                 f"({facts.shape_kind})\ncurve: Gaussian-limit prediction; diamond: this "
-                 "walk", fontsize=11)
-    _save(fig, path)
+    save_figure(fig, path)
     return fig
 
 
@@ -372,7 +232,7 @@ def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
     chosen, note = panels(trace, focus, max_panels)
     names = _labels(trace, labels)
     mode, laplace_sd = _laplace_moments(trace)
-    fig = _figure(*_panel_size(len(chosen)))
+    fig = figure(*_panel_size(len(chosen)))
     pooled = flat.reshape(-1, dim)
     rng = np.random.default_rng(0)
     for k, (i, ax) in enumerate(zip(chosen, _grid(fig, len(chosen)), strict=True)):
@@ -407,7 +267,7 @@ def plot_marginals(trace, path=None, *, labels: Sequence[str] | None = None,
     _legend(fig, 3)
     fig.suptitle(f"Marginals of {chains * draws} draws against the Laplace approximation"
                  f"{note}{_space(trace, False)}", fontsize=11)
-    _save(fig, path)
+    save_figure(fig, path)
     return fig
 
 
@@ -435,7 +295,7 @@ def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = Non
     acf = np.atleast_2d(diagnostics.autocorrelation(flat, max_lag))
     lags = np.arange(max_lag + 1) * trace.thin
     band = 2.0 / math.sqrt(chains * draws)
-    fig = _figure(*_panel_size(len(chosen)))
+    fig = figure(*_panel_size(len(chosen)))
     for k, (i, ax) in enumerate(zip(chosen, _grid(fig, len(chosen)), strict=True)):
         ax.axhspan(-band, band, color="#dddddd", lw=0,
                    label="±2/√N: independent draws" if k == 0 else None)
@@ -454,7 +314,7 @@ def plot_autocorrelation(trace, path=None, *, labels: Sequence[str] | None = Non
     _legend(fig, 2)
     fig.suptitle(f"Autocorrelation by lag, mean over {chains} chains; τ: integrated "
                  f"autocorrelation time{note}{_space(trace, False)}", fontsize=11)
-    _save(fig, path)
+    save_figure(fig, path)
     return fig
 
 
