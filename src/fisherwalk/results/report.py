@@ -23,12 +23,20 @@ import numpy as np
 
 from ..errors import InputError, explain
 from . import alerts, diagnostics, mcse
+from .summary_parts import (
+    acceptance_error,
+    checked_interval,
+    checked_per_chain,
+    checked_steps,
+    optional_float,
+    pooled_correlation,
+    proposal_correlation,
+)
 from .table import check_text, interval_probabilities
 from .table import render as _render
 
 __all__ = ["Summary", "summarize"]
 
-_BLOCK = 1 << 17  # numbers per block of draws when the correlation matrix is accumulated
 
 
 class Summary(NamedTuple):
@@ -182,107 +190,6 @@ def _plain_list(values):
 # ---------------------------------------------------------------------------------------
 
 
-def _per_chain(value, chains: int, label: str, *, integer: bool = False):
-    if value is None:
-        return None
-    arr = np.asarray(value, dtype=np.int64 if integer else float)
-    if arr.shape != (chains,) or (not integer and not np.all(np.isfinite(arr))):
-        raise InputError(
-            explain(
-                f"{label} has shape {arr.shape}, or holds non-finite values",
-                f"summarize(..., {label}=...)",
-                f"pass one finite value per chain, shape ({chains},)",
-            )
-        )
-    return arr
-
-
-def _optional_float(value, label: str):
-    if value is None:
-        return None
-    value = float(value)
-    if not math.isfinite(value):
-        raise InputError(explain(f"{label} is {value}", f"summarize(..., {label}=...)",
-                                 "pass a finite number or None"))
-    return value
-
-
-def _interval(value) -> float:
-    try:
-        interval = float(value)
-    except (TypeError, ValueError):
-        interval = float("nan")
-    if isinstance(value, bool) or not 0.0 < interval < 1.0:
-        raise InputError(explain(f"interval={value!r} is not a probability strictly between "
-                                 "0 and 1", "summarize(..., interval=...)",
-                                 "pass the central interval's probability, e.g. 0.9 for "
-                                 "the 5% and 95% quantiles"))
-    return interval
-
-
-def _steps(value, chains: int):
-    if value is None:
-        return None
-    arr = np.asarray(value, dtype=float)
-    if arr.ndim != 2 or arr.shape[0] != chains or arr.shape[1] < 1 or not np.all(
-        np.isfinite(arr)
-    ):
-        raise InputError(explain(f"acceptance_steps has shape {arr.shape}, or holds non-finite "
-                                 "values", "summarize(..., acceptance_steps=...)",
-                                 f"pass the acceptance of each kept draw, shape ({chains}, "
-                                 "draws), finite"))
-    return arr
-
-
-def _acceptance_error(steps: np.ndarray) -> float:
-    """Monte Carlo standard error of the pooled acceptance ā = (1/m) Σ_c ā_c.
-
-    The m chains are independent, so Var(ā) = (1/m²) Σ_c Var(ā_c), and a chain's mean of
-    n correlated values has Var(ā_c) = s_c² τ_c / n = s_c² / ESS_c (the Markov-chain
-    central limit theorem; Geyer 1992, "Practical Markov chain Monte Carlo", Statistical
-    Science 7(4)), s_c² the chain's variance of the per-draw acceptance and ESS_c its
-    effective size for the mean (:func:`fisherwalk.results.diagnostics.ess_mean` on that
-    chain). For independent 0/1 indicators it is the binomial √(p(1 − p)/(m n)). A chain
-    whose acceptance never varies adds nothing; its ESS is floored at 1.
-    """
-    if steps.shape[1] < 4:
-        return float("nan")
-    total = 0.0
-    for chain in steps:
-        spread = float(np.var(chain, ddof=1))
-        if spread > 0:
-            ess = float(diagnostics.ess_mean(chain[None, :]))
-            total += spread / max(ess, 1.0)
-    return float(math.sqrt(total) / steps.shape[0])
-
-
-def _correlation(draws: np.ndarray, used, mean: np.ndarray) -> np.ndarray:
-    """Correlation matrix of the used chains' draws pooled, accumulated in blocks."""
-    dim = draws.shape[2]
-    step = max(1, _BLOCK // dim)
-    total = np.zeros((dim, dim))
-    for c in used:
-        for t in range(0, draws.shape[1], step):
-            block = np.asarray(draws[c, t : t + step], dtype=float) - mean
-            total += block.T @ block
-    sd = np.sqrt(np.diag(total))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return total / np.outer(sd, sd)  # nan for a constant parameter: never reported
-
-
-def _proposal_correlation(shape, dim: int) -> np.ndarray:
-    factor = np.asarray(shape, dtype=float)
-    if factor.ndim != 2 or factor.shape[0] != dim or not np.all(np.isfinite(factor)):
-        raise InputError(explain(f"proposal_shape has shape {factor.shape} or non-finite "
-                                 "entries", "summarize(..., proposal_shape=...)",
-                                 f"pass the walker's ({dim}, {dim}) shape S (tuning.shape), "
-                                 "or some of its rows for some of the parameters"))
-    cov = factor @ factor.T
-    sd = np.sqrt(np.diag(cov))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return cov / np.outer(sd, sd)
-
-
 def summarize(
     flat_draws,
     names,
@@ -376,17 +283,17 @@ def summarize(
         raise InputError(explain(f"only {count} draw(s) per chain; the diagnostics need at "
                                  "least 4", where, "run the chains longer (a few hundred "
                                  "draws per chain at the very least)"))
-    interval = _interval(interval)
-    steps = _steps(acceptance_steps, chains)
+    interval = checked_interval(interval)
+    steps = checked_steps(acceptance_steps, chains)
     if acceptance is None and steps is not None:
         acceptance = steps.mean(axis=1)
-    acceptance = _per_chain(acceptance, chains, "acceptance")
-    faults = _per_chain(faults, chains, "faults", integer=True)
-    target_acceptance = _optional_float(target_acceptance, "target_acceptance")
-    scale = _optional_float(scale, "scale")
-    gaussian_acceptance = _optional_float(gaussian_acceptance, "gaussian_acceptance")
-    predicted_jump = _optional_float(predicted_jump, "predicted_jump")
-    seconds = _optional_float(seconds, "seconds")
+    acceptance = checked_per_chain(acceptance, chains, "acceptance")
+    faults = checked_per_chain(faults, chains, "faults", integer=True)
+    target_acceptance = optional_float(target_acceptance, "target_acceptance")
+    scale = optional_float(scale, "scale")
+    gaussian_acceptance = optional_float(gaussian_acceptance, "gaussian_acceptance")
+    predicted_jump = optional_float(predicted_jump, "predicted_jump")
+    seconds = optional_float(seconds, "seconds")
     if seconds is not None and seconds <= 0:
         raise InputError(explain(f"seconds is {seconds}", "summarize(..., seconds=...)",
                                  "pass the run's wall time in seconds (> 0) or None"))
@@ -424,10 +331,10 @@ def summarize(
         jump_per_chain = np.full(chains, np.nan)
         jump_per_chain[list(used)] = measured.per_chain
     elif realised_jump is not None and np.ndim(realised_jump) == 1:
-        jump_per_chain = _per_chain(realised_jump, chains, "realised_jump")
+        jump_per_chain = checked_per_chain(realised_jump, chains, "realised_jump")
         realised = float(jump_per_chain.mean())
     else:
-        realised = _optional_float(realised_jump, "realised_jump")
+        realised = optional_float(realised_jump, "realised_jump")
 
     frozen = ~per_chain["chain_moves"].any(axis=1)  # over the used chains
     warnings += alerts.rhat_warnings(names, rh, rhat_limit)
@@ -439,7 +346,7 @@ def summarize(
                                         frozen)
     warnings += alerts.fault_warnings(faults, gradient=gradient_faults)
     pooled = None if acceptance is None else float(acceptance.mean())
-    acceptance_mcse = None if steps is None else _acceptance_error(steps)
+    acceptance_mcse = None if steps is None else acceptance_error(steps)
     if pooled is not None and acceptance_mcse is not None and target_acceptance is not None:
         text = alerts.acceptance_warning(pooled, acceptance_mcse, target_acceptance,
                                          steps.shape[1], scale, gaussian_acceptance,
@@ -452,8 +359,8 @@ def summarize(
                                  "pass the walker's (d, d) shape S (tuning.shape); derived "
                                  "columns come after the d parameters"))
     if k > 1:
-        pairs = alerts.correlated_pairs(_correlation(draws[:, :, :k], used, mean[:k]),
-                                        _proposal_correlation(proposal_shape, k))
+        pairs = alerts.correlated_pairs(pooled_correlation(draws[:, :, :k], used, mean[:k]),
+                                        proposal_correlation(proposal_shape, k))
         text = alerts.correlation_warning(names[:k], pairs)
         warnings += [text] if text else []
 
