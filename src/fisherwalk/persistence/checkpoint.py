@@ -94,7 +94,8 @@ from .segments import (
     state_bytes,
     whitened_digests,
 )
-from .tuningfile import MAX_RECORD_BYTES, tuning_record
+from .tuningfile import tuning_record
+from .tuningread import MAX_RECORD_BYTES
 
 __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_json",
            "decode_state", "damaged", "whitened_state", "MAX_CHAINS", "open_store",

@@ -28,7 +28,8 @@ from ..persistence.checkpoint import (
     state_bytes,
     whitened_state,
 )
-from ..persistence.tuningfile import MAX_DIM, MAX_RECORD_BYTES, walker_from_record
+from ..persistence.tuningfile import walker_from_record
+from ..persistence.tuningread import MAX_DIM, MAX_RECORD_BYTES
 from ..results.trace import Trace
 from .sampling import walk
 
