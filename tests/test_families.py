@@ -120,6 +120,10 @@ def test_checkpoint_and_resume_for_every_family(walkers, name, tmp_path):
                     progress=False)
     again = fw.resume(ckpt, logdensity, progress=False)
     np.testing.assert_array_equal(first.flat, again.flat)
+    # HMC's and NUTS's energy comes back from the segments; the others have none
+    assert (again.energy is None) == (first.energy is None)
+    if first.energy is not None:
+        np.testing.assert_array_equal(first.energy, again.energy)
     identity = json.loads((ckpt / "run.json").read_text())["identity"]
     assert walker.family.parameter in identity["tuning"]
 

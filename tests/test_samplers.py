@@ -138,6 +138,8 @@ def test_a_resumed_nuts_run_is_bit_identical(runs, tmp_path):
     assert resumed.complete
     assert np.array_equal(resumed.flat, reference.flat)
     assert np.array_equal(resumed.divergent, reference.divergent)
+    # the Hamiltonian is kept in the checkpoint's segments too (az.bfmi needs it)
+    assert resumed.energy is not None and np.array_equal(resumed.energy, reference.energy)
 
 
 def test_a_gradient_tuning_survives_a_tuning_file(runs, tmp_path):

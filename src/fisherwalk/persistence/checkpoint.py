@@ -86,6 +86,7 @@ from .checkpoint_files import (
 from .checkpoint_identity import differences, fingerprint_of, identity, legacy_fingerprint
 from .segments import (
     ARRAYS,
+    OPTIONAL,
     changed_field,
     segment_bytes,
     segment_data,
@@ -327,6 +328,8 @@ class Store:
             with np.load(io.BytesIO(data), allow_pickle=False) as content:
                 arrays = {name: content[name]
                           for name in (*ARRAYS, "start", "stop", "fingerprint")}
+                arrays.update({name: content[name] for name in OPTIONAL
+                               if name in content.files})
                 # "" in segments written before the whitened state was digested
                 self._saved_whitened = segment_text(content["whitened"]) \
                     if "whitened" in content.files else None
@@ -337,7 +340,9 @@ class Store:
         first, stop = int(arrays["start"]), int(arrays["stop"])
         if first != start or not start < stop <= self.draws:
             raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
-        for name in ARRAYS:
+        for name in (*ARRAYS, *OPTIONAL):
+            if name not in arrays:  # a segment written before the field was kept: NaN
+                continue
             target = getattr(collector, name)
             value = arrays[name]
             expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
@@ -345,6 +350,8 @@ class Store:
                 raise damaged(file, f"'{name}' has shape {value.shape} and dtype {value.dtype}, "
                                      f"expected {expected} and {target.dtype}")
             target[:, start:stop] = value
+        if "energy" in arrays and np.isfinite(arrays["energy"]).any():
+            collector.has_energy = True  # HMC or NUTS: the Trace carries the energy
         return stop
 
     def restore(self, collector, state: ChainState) -> ChainState:

@@ -5,7 +5,9 @@ of a gradient sampler's whitened state.
 
 A segment ``segment-NNNNNN.npz`` of draws ``[start, stop)`` holds the collector's arrays
 (:data:`ARRAYS`: positions, log densities, acceptance, acceptance rates and the three
-int32 series faults, divergent, gradients) in that range, its start and stop, the run's
+int32 series faults, divergent, gradients; and :data:`OPTIONAL`: the Hamiltonian energy of
+HMC and NUTS, NaN for the other families, absent from segments written before it was kept)
+in that range, its start and stop, the run's
 fingerprint and the SHA-256 digests of the whitened state saved with it (empty for the
 random walk).
 """
@@ -18,11 +20,12 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["ARRAYS", "WHITENED_FIELDS", "segment_layout", "segment_data", "segment_bytes",
-           "segment_text", "state_bytes", "whitened_digests", "changed_field", "digest"]
+__all__ = ["ARRAYS", "OPTIONAL", "WHITENED_FIELDS", "segment_layout", "segment_data",
+           "segment_bytes", "segment_text", "state_bytes", "whitened_digests", "changed_field", "digest"]
 
 ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
-           "gradients")
+          "gradients")
+OPTIONAL = ("energy",)  # written always, read when present (older segments lack it)
 _NUMBER_BYTES = 32  # a number in JSON: at most 24 characters (-1.2345678901234567e-308)
 # or a quoted non-finite token, a comma and a space; rounded up
 
@@ -41,7 +44,7 @@ def segment_layout(collector, start: int, stop: int) -> dict[str, tuple[tuple, n
     collector's arrays in that range, and the start, stop and fingerprint members. The
     same list that :meth:`Store.save` writes, so the size bound cannot drift from it."""
     layout = {}
-    for name in ARRAYS:
+    for name in (*ARRAYS, *OPTIONAL):
         array = getattr(collector, name)
         layout[name] = ((array.shape[0], stop - start, *array.shape[2:]), array.dtype)
     layout.update(start=((), np.dtype(np.int64)), stop=((), np.dtype(np.int64)),
@@ -54,7 +57,7 @@ def segment_data(collector, start: int, stop: int, fingerprint: str,
     """The .npz file of a segment of draws ``[start, stop)``: the arrays of
     :func:`segment_layout`, uncompressed (``whitened``: :func:`whitened_digests` of the
     state saved with it, for a gradient sampler)."""
-    arrays = {name: getattr(collector, name)[:, start:stop] for name in ARRAYS}
+    arrays = {name: getattr(collector, name)[:, start:stop] for name in (*ARRAYS, *OPTIONAL)}
     arrays.update(start=np.int64(start), stop=np.int64(stop),
                   fingerprint=np.array(fingerprint, dtype=_FINGERPRINT),
                   whitened=np.array(whitened.encode("ascii"),
