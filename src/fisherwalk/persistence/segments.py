@@ -21,7 +21,8 @@ from typing import Any
 import numpy as np
 
 __all__ = ["ARRAYS", "OPTIONAL", "WHITENED_FIELDS", "segment_layout", "segment_data",
-           "segment_bytes", "segment_text", "state_bytes", "whitened_digests", "changed_field", "digest"]
+           "segment_bytes", "segment_text", "state_bytes", "whitened_digests", "changed_field",
+           "digest"]
 
 ARRAYS = ("flat", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
           "gradients")
