@@ -36,7 +36,11 @@ class Trace(NamedTuple):
 
     draws: Any  # the user's pytree, each leaf with leading (chains, draws) axes
     logdensity: np.ndarray  # (chains, draws) log density at each kept draw
-    accepted: np.ndarray  # (chains, draws) acceptance indicator (fraction of the thin steps)
+    accepted: np.ndarray  # (chains, draws) the random walk: 1 if the step was accepted (the
+    #                       fraction over the thin steps); a gradient family: the kernel's
+    #                       acceptance probability (BlackJAX's acceptance_rate; NUTS has no
+    #                       accept/reject, only the mean over its trajectory), as in
+    #                       acceptance_rate
     walker: Any  # the walker used (its states at each chain's last kept draw); None reopened
     flat: np.ndarray  # (chains, draws, d) the draws ravelled (parameter order: names)
     acceptance_rate: np.ndarray  # (chains, draws) Metropolis acceptance probability
