@@ -35,13 +35,19 @@ import numpy as np
 from ..base.checks import probability, whole_number
 from ..base.keys import as_key
 
-__all__ = ["DrawsWarmup", "window_warmup", "DENSE_LIMIT", "WINDOW_STEPS",
+__all__ = ["DrawsWarmup", "window_warmup", "DENSE_LIMIT", "DRAWS_PER_DIM", "WINDOW_STEPS",
            "LAPLACE_WINDOW_STEPS", "metric_factors"]
 
 DENSE_LIMIT = 100  # a dense metric up to this d, diagonal beyond (d² memory, d³ Cholesky);
 #                    our choice, common practice, no published source
 WINDOW_STEPS = 1000  # BlackJAX's (and Stan's) default warm-up length, for a start with no mode
 LAPLACE_WINDOW_STEPS = 300  # started from the Laplace metric (benchmarks/RESULTS.md measures it)
+DRAWS_PER_DIM = 20  # a dense estimate needs at least this many warm-up steps per parameter
+#                   (Stan's last slow window holds about half of them: ~10 d draws per
+#                   chain); with fewer, the noisy dense estimate made NUTS's trees 8x
+#                   longer than a diagonal one did (benchmarks/phases.py, the random-
+#                   intercept target at d = 53, 300 steps). Our choice, common practice,
+#                   no published source.
 SHRINKAGE = 0.2  # imm_shrinkage_to_previous when started from the Laplace metric (our choice)
 
 
@@ -101,7 +107,8 @@ def window_warmup(flat_logdensity: Callable, starts, rng_key, *, steps: int | No
     target_acceptance
         Dual averaging's aim (BlackJAX's default 0.8).
     diagonal
-        Estimate a diagonal metric; default: dense up to d = :data:`DENSE_LIMIT`.
+        Estimate a diagonal metric; default: dense up to d = :data:`DENSE_LIMIT` when
+        there are at least :data:`DRAWS_PER_DIM` steps per parameter, else diagonal.
     shrinkage
         ``imm_shrinkage_to_previous`` (blackjax >= 1.7.1); default :data:`SHRINKAGE`
         with a Laplace metric, 0 without.
@@ -117,7 +124,9 @@ def window_warmup(flat_logdensity: Callable, starts, rng_key, *, steps: int | No
                          "window_warmup(steps=...)", minimum=20)
     probability(target_acceptance, "target_acceptance", "window_warmup(target_acceptance=...)")
     key = as_key(rng_key, where="window_warmup(rng_key=...)")
-    diagonal = dim > DENSE_LIMIT if diagonal is None else bool(diagonal)
+    if diagonal is None:
+        diagonal = dim > DENSE_LIMIT or steps < DRAWS_PER_DIM * dim
+    diagonal = bool(diagonal)
     options = {"is_mass_matrix_diagonal": diagonal,
                "initial_step_size": float(step_size),
                "target_acceptance_rate": float(target_acceptance)}

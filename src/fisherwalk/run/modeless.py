@@ -22,6 +22,7 @@ import numpy as np
 
 from ..base import pytrees
 from ..base.keys import normals, stream
+from ..base.programs import remembered
 from ..errors import FisherwalkWarning, explain, warn_user
 from ..fit.laplace import LaplaceFit
 from ..fit.runaway import Runaway, advice, start_points
@@ -30,12 +31,20 @@ from .draws_warmup import DrawsWarmup, metric_factors, window_warmup
 from .samplers import registry
 from .starts import checked_starts
 from .tuning import Tuning
-from .walker import LaplaceCheck, StartReport, Walker, assemble, flat_logdensity, make_model
+from .walker import (
+    LaplaceCheck,
+    Model,
+    StartReport,
+    Walker,
+    assemble,
+    flat_logdensity,
+    make_model,
+)
 
 __all__ = ["modeless_start", "draws_fit"]
 
 
-def draws_fit(warm: DrawsWarmup, position: Any, logdensity_fn: Callable,
+def draws_fit(warm: DrawsWarmup, position: Any, model: Model,
               found: Runaway, seconds: float) -> LaplaceFit:
     """The stand-in for a Laplace fit: the centre of the warm-up's second half and the
     precision of the metric it learned."""
@@ -43,7 +52,10 @@ def draws_fit(warm: DrawsWarmup, position: Any, logdensity_fn: Callable,
     steps = warm.draws.shape[1]
     draws = warm.draws[:, steps // 2:].reshape(-1, warm.draws.shape[-1])
     centre = np.asarray(draws.mean(axis=0), np.asarray(flat.vector).dtype)
-    value, grad = jax.value_and_grad(lambda x: logdensity_fn(flat.unravel(x)))(centre)
+    fn = flat_logdensity(model)  # one compiled value and gradient, not op by op (dozens of
+    #                              small compilations), remembered per model
+    value, grad = jax.device_get(remembered(fn, "value and gradient", centre.shape,
+                                            lambda: jax.jit(jax.value_and_grad(fn)))(centre))
     shape, precision_chol = metric_factors(warm.inverse_mass_matrix)
     fisher = precision_chol @ precision_chol.T
     mode = flat.unravel(jax.numpy.asarray(centre))
@@ -98,7 +110,7 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
         where_from = "the chain_starts given"
     warm = window_warmup(flat_logdensity(model), starts, jax.random.fold_in(key, 12),
                          steps=steps, target_acceptance=target)
-    fit = draws_fit(warm, position, logdensity_fn, found, time.perf_counter() - began)
+    fit = draws_fit(warm, position, model, found, time.perf_counter() - began)
     shape, precision_chol = metric_factors(warm.inverse_mass_matrix)
     dtype = np.asarray(fit.mode_flat).dtype
     entry = registry.family(registry.FALLBACK)
