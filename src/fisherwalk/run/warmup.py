@@ -56,9 +56,9 @@ from .engine import DEFAULT_CHUNK
 from .evidence import redecide
 from .metric_repair import (
     fallback_walker_parts,
-    learn_metric,
     learned_factors,
     learned_words,
+    repair_metric,
     window_start,
 )
 from .progress import progress_bar
@@ -258,14 +258,18 @@ def refine(
         if tuning0.shape_kind == "identity":
             do_reshape = False
         notes, tuning1, state, window = [], None, phase1.state, 0
+        if do_reshape and reshape is None and fit.fisher_source == "draws":
+            do_reshape = False  # no mode: start() learned the metric from 1000 steps' draws
+            notes.append("The metric was not learned again: start() learned it from the "
+                         "draws of its window adaptation (the posterior has no mode); a "
+                         "shorter window from the same chains would not do better.")
         if do_reshape:  # the metric learned from draws (run/metric_repair.py)
             why = "; ".join(reasons) if reasons else "reshape=True was asked"
             switch = redecide(tuning0.sampler, chosen_by_auto(walker), p_value < COVARIANCE_LEVEL,
                               khat, k_limit)
             step0, aim0 = window_start(family, tuning0, phase1, switch)
-            learned = learn_metric(walker, family.positions(walker.model.engine, state),
-                                   jax.random.fold_in(key, 3), step_size=step0,
-                                   target_acceptance=aim0)
+            learned, _ = repair_metric(walker, context, phase1, state,
+                                       jax.random.fold_in(key, 3), step0, aim0, switch)
             if switch:  # "auto" chose on a picture the warm-up refuted: NUTS instead
                 return _switched(walker, learned, switch, learned_words(learned, why),
                                  phase1, (half, khat, k_limit, outside, spectrum, bounds,
