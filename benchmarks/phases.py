@@ -153,7 +153,15 @@ def main(argv=None) -> int:
     parser.add_argument("--targets", default=",".join(HIERARCHICAL))
     parser.add_argument("--samplers", default="auto")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--out", default=None,
+                        help="also write the tables to this markdown file (atomically)")
     args = parser.parse_args(argv)
+    lines: list[str] = []
+
+    def say(text: str) -> None:
+        print(text)
+        lines.append(text)
+        sys.stdout.flush()
     monitor = CompileMonitor()
     targets = {t.name: t for t in hierarchical_targets()}
     for name in args.targets.split(","):
@@ -164,15 +172,29 @@ def main(argv=None) -> int:
             t0 = time.perf_counter()
             with monitor.window() as whole:
                 rows, summary, notes = profile(targets[name], sampler, monitor, args.seed)
-            print(f"\n## {name}, sampler={sampler!r}: {time.perf_counter() - t0:.1f} s, "
-                  f"{whole.compiles} compilations ({whole.seconds:.1f} s compiling)")
-            print(f"   {summary}")
+            say(f"\n## {name}, sampler={sampler!r}: {time.perf_counter() - t0:.1f} s, "
+                f"{whole.compiles} compilations ({whole.seconds:.1f} s compiling)\n")
+            say(f"    {summary}")
             for note in notes:
-                print(f"   note: {note[:300]}")
-            print(f"   {'phase':<50} {'seconds':>8} {'compiles':>8}")
+                say(f"    note: {note[:300]}")
+            say(f"    {'phase':<50} {'seconds':>8} {'compiles':>8}")
             for label, depth, seconds, compiles in rows:
-                print(f"   {'  ' * depth + label:<50} {seconds:8.2f} {compiles:8d}")
-            sys.stdout.flush()
+                say(f"    {'  ' * depth + label:<50} {seconds:8.2f} {compiles:8d}")
+    if args.out:
+        import subprocess
+
+        from fisherwalk.base.files import write_text_atomic
+        commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], capture_output=True,
+                                text=True, cwd=HERE).stdout.strip() or "unknown"
+        load = os.getloadavg()[0]
+        head = ["# Phases of start + refine + walk: seconds and XLA compilations", "",
+                "Produced by the script, do not edit by hand. Command (from the repository "
+                "root):", "", "    python benchmarks/phases.py " + " ".join(argv or sys.argv[1:]),
+                "", f"Run {time.strftime('%Y-%m-%d %H:%M:%S UTC', time.gmtime())}, fisherwalk "
+                f"at {commit}, load average {load:.1f} at the end (a shared 2-core machine: "
+                "the seconds are noise, the compilation counts are not). Each target starts "
+                "with no remembered program (`programs.forget()`, `jax.clear_caches()`).", ""]
+        write_text_atomic(args.out, "\n".join(head + lines) + "\n")
     return 0
 
 
