@@ -10,7 +10,9 @@ the random walk's proposal shape (the covariance estimate, Roberts & Rosenthal 2
 "Optimal scaling for various Metropolis-Hastings algorithms", Statist. Sci. 16(4)), or,
 when "auto" chose the random walk or MALA on a Gaussian picture the warm-up refuted, the
 metric and step size of the NUTS walker that replaces it
-(:func:`fisherwalk.run.evidence.redecide`).
+(:func:`fisherwalk.run.evidence.redecide`). A random walk that stays learns its shape
+from more steps of its own compiled loop instead (:func:`repair_metric`): the window
+adaptation would compile two NUTS programs for one covariance matrix.
 """
 
 from __future__ import annotations

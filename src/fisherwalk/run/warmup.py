@@ -23,7 +23,8 @@ N(mode, H⁻¹). The warm-up checks that in three ways and repairs what it can:
 3. When a check fails beyond its Monte Carlo error, the proposal shape (or a gradient
    sampler's metric) is learned from draws: BlackJAX's window adaptation, started from the
    chains' positions and the Laplace metric, with windows that double so that early draws
-   are forgotten (:mod:`fisherwalk.run.metric_repair`); the scale and target acceptance
+   are forgotten, or, for the random walk at d <= 25, more steps of its own compiled loop
+   and their covariance (:mod:`fisherwalk.run.metric_repair`); the scale and target acceptance
    are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the spectrum
    of A = Sᵀ P S, P the precision the walker now believes). When a check fails, phase 2
    (the other half) adapts the scale again, and the final scale is the average of the
