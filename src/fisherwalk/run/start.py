@@ -384,7 +384,7 @@ def start(
         positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
         notes.append(note)
     if sampler == registry.AUTO:
-        picked = choose_sampler(flat_logdensity(model), positions, len(fit.names))
+        picked = choose_sampler(flat_logdensity(model), positions, dim, model.evaluate)
         weighed = weigh_evidence(picked.seconds_per_answer, check.khat, check.threshold)
         sampler = weighed.sampler
         notes.extend(n for n in (picked.note, weighed.note) if n)
