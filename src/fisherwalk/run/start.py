@@ -300,7 +300,7 @@ def start(
 
     Evidence: with PSIS k̂ above its threshold the chain starts are resampled from the
     Laplace draws by their Pareto-smoothed weights (:mod:`fisherwalk.run.resample`), and
-    "auto" discounts (k̂ > threshold) or drops (k̂ > 1) the random walk and MALA
+    "auto" discounts (k̂ > threshold; squared above 1) the random walk and MALA
     (:mod:`fisherwalk.run.evidence`). A posterior symmetric under swapping labels is said
     to be (:mod:`fisherwalk.fit.symmetry`).
 
