@@ -40,6 +40,12 @@ __all__ = ["DrawsWarmup", "window_warmup", "DENSE_LIMIT", "dense_enough", "WINDO
 
 WINDOW_STEPS = 1000  # BlackJAX's (and Stan's) default warm-up length, for a start with no mode
 LAPLACE_WINDOW_STEPS = 300  # started from the Laplace metric (benchmarks/RESULTS.md measures it)
+DRAWS_PER_DIM = 20  # a dense estimate needs at least this many warm-up steps per parameter
+#                   (Stan's last slow window holds about half of them: ~10 d draws per
+#                   chain); with fewer, the noisy dense estimate made NUTS's trees 8x
+#                   longer than a diagonal one did (benchmarks/phases.py, the random-
+#                   intercept target at d = 53, 300 steps). Our choice, common practice,
+#                   no published source.
 SHRINKAGE = 0.2  # imm_shrinkage_to_previous when started from the Laplace metric (our choice)
 
 

@@ -10,7 +10,9 @@ the random walk's proposal shape (the covariance estimate, Roberts & Rosenthal 2
 "Optimal scaling for various Metropolis-Hastings algorithms", Statist. Sci. 16(4)), or,
 when "auto" chose the random walk or MALA on a Gaussian picture the warm-up refuted, the
 metric and step size of the NUTS walker that replaces it
-(:func:`fisherwalk.prepare.evidence.redecide`).
+(:func:`fisherwalk.prepare.evidence.redecide`). A random walk that stays learns its shape
+from more steps of its own compiled loop instead (:func:`repair_metric`): the window
+adaptation would compile two NUTS programs for one covariance matrix.
 """
 
 from __future__ import annotations
@@ -30,7 +32,14 @@ REPAIR_FINAL = 100  # a walker switching family ends its windows with one of ste
 #                    (a family keeping its own has refine()'s settling phase for that)
 
 __all__ = ["learn_metric", "learned_factors", "window_start", "fallback_walker_parts",
-           "learned_words"]
+           "learned_words", "repair_metric", "OWN_DRAWS_PER_DIM", "OWN_DRAWS_MAX_DIM"]
+
+OWN_DRAWS_PER_DIM = 200  # steps per chain per parameter when a log-density family learns the
+#                          shape from its own draws: at the random walk's efficiency of about
+#                          0.3/d per step (Roberts, Gelman & Gilks 1997) 4 chains then hold
+#                          about 240 effective draws, a variance to within about 10%
+OWN_DRAWS_MAX_DIM = 25  # above this d the window adaptation's gradients are the cheaper way
+#                         (our choice, common practice, no published source)
 
 
 def window_start(family: Family, tuning: Tuning, phase1, switch: str) -> tuple[float, float]:
@@ -104,7 +113,48 @@ def fallback_walker_parts(walker: Walker, learned: DrawsWarmup):
     return tuning, model, state
 
 
+def repair_metric(walker: Walker, context, phase1, state, rng_key, step_size: float,
+                  target_acceptance: float, switch: str):
+    """(learned, words): the metric learned from draws for refine().
+
+    A family whose engine cannot take a learned metric (``Family.learns_metric`` False:
+    the random walk) and stays (no ``switch``), at d <= :data:`OWN_DRAWS_MAX_DIM`, learns
+    its shape from its own draws:
+    :data:`OWN_DRAWS_PER_DIM` · d more steps of its phase (its compiled loop, no new
+    program), whose pooled covariance after the first fifth is the shape (Haario, Saksman
+    & Tamminen 2001, "An adaptive Metropolis algorithm", Bernoulli 7(2); the matched
+    proposal, Roberts & Rosenthal 2001). Otherwise :func:`learn_metric`: windows on a
+    gradient family's engine, or BlackJAX's window adaptation for a random walk beyond that
+    d. benchmarks/phases.py measured the window adaptation's new programs as most of the
+    random walk's warm-up on the 8-group model.
+    """
+    family = walker.family
+    dim = int(np.shape(phase1.draws)[-1])
+    if switch or family.learns_metric or dim > OWN_DRAWS_MAX_DIM:
+        learned = learn_metric(walker, family.positions(walker.model.engine, state), rng_key,
+                               step_size=step_size, target_acceptance=target_acceptance,
+                               switch=bool(switch), first_draws=phase1.draws)
+        return learned, None
+    steps = OWN_DRAWS_PER_DIM * dim
+    more = family.phase(context, rng_key, state, steps)
+    kept = np.asarray(more.draws)[:, steps // 5:]
+    pooled = kept.reshape(-1, dim).astype(np.float64)
+    cov = np.atleast_2d(np.cov(pooled, rowvar=False))
+    cov = 0.5 * (cov + cov.T) + 1e-10 * np.trace(cov) / dim * np.eye(dim)
+    positions = family.positions(walker.model.engine, more.state)
+    logdensity = np.asarray(walker.model.evaluate(np.asarray(positions)))
+    learned = DrawsWarmup(np.asarray(positions), logdensity, cov, False, float(more.value),
+                          np.full(walker.chains, float(more.value)), steps,
+                          float(more.acceptance), 0, 0, np.asarray(more.draws),
+                          float(target_acceptance), "own draws")
+    return learned, steps
+
+
 def learned_words(learned: DrawsWarmup, why: str) -> str:
+    if learned.started_from == "own draws":
+        return (f"Learned the proposal shape from draws ({why}): {learned.steps} more steps "
+                "per chain of the sampler's own loop, the pooled covariance of the last "
+                f"four fifths (acceptance {learned.acceptance:.2f}).")
     kind = "diagonal" if learned.diagonal else "dense"
     return (f"Learned the metric from draws ({why}): {learned.how}, "
             f"{learned.steps} steps per chain from the chains' positions and "

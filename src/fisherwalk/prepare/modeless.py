@@ -24,6 +24,7 @@ import numpy as np
 from ..base import pytrees
 from ..base.checks import whole_number
 from ..base.keys import normals, stream
+from ..base.programs import remembered
 from ..errors import FisherwalkWarning, explain, warn_user
 from ..fit.laplace import LaplaceFit
 from ..fit.runaway import Runaway, advice, start_points
@@ -32,14 +33,22 @@ from ..samplers.windows import LearnedMetric as DrawsWarmup
 from ..samplers.windows import learn_on_engine, metric_factors, schedule
 from ..theory.gradient import NUTS_TARGET_ACCEPTANCE
 from ..tuned.tuning import Tuning
-from ..tuned.walker import LaplaceCheck, StartReport, Walker, assemble, flat_logdensity, make_model
+from ..tuned.walker import (
+    LaplaceCheck,
+    Model,
+    StartReport,
+    Walker,
+    assemble,
+    flat_logdensity,
+    make_model,
+)
 from .draws_warmup import WINDOW_STEPS
 from .starts import checked_starts
 
 __all__ = ["modeless_start", "draws_fit"]
 
 
-def draws_fit(warm: DrawsWarmup, position: Any, logdensity_fn: Callable,
+def draws_fit(warm: DrawsWarmup, position: Any, model: Model,
               found: Runaway, seconds: float) -> LaplaceFit:
     """The stand-in for a Laplace fit: the centre of the warm-up's second half and the
     precision of the metric it learned."""
@@ -47,7 +56,10 @@ def draws_fit(warm: DrawsWarmup, position: Any, logdensity_fn: Callable,
     steps = warm.draws.shape[1]
     draws = warm.draws[:, steps // 2:].reshape(-1, warm.draws.shape[-1])
     centre = np.asarray(draws.mean(axis=0), np.asarray(flat.vector).dtype)
-    value, grad = jax.value_and_grad(lambda x: logdensity_fn(flat.unravel(x)))(centre)
+    fn = flat_logdensity(model)  # one compiled value and gradient, not op by op (dozens of
+    #                              small compilations), remembered per model
+    value, grad = jax.device_get(remembered(fn, "value and gradient", centre.shape,
+                                            lambda: jax.jit(jax.value_and_grad(fn)))(centre))
     shape, precision_chol = metric_factors(warm.inverse_mass_matrix)
     fisher = precision_chol @ precision_chol.T
     mode = flat.unravel(jax.numpy.asarray(centre))
@@ -112,8 +124,9 @@ def modeless_start(logdensity_fn: Callable, position: Any, key: jax.Array, chain
     warm = learn_on_engine(entry, flat_logdensity(model), entry.initial(draft),
                            np.asarray(found.start), chains, None, starts.astype(dtype),
                            jax.random.fold_in(key, 12), names, burn=burn,
-                           windows=windows, final=final, started_from="identity")
-    fit = draws_fit(warm, position, logdensity_fn, found, time.perf_counter() - began)
+                           windows=windows, final=final, started_from="identity",
+                           diagonal=True)
+    fit = draws_fit(warm, position, model, found, time.perf_counter() - began)
     shape, precision_chol = metric_factors(warm.inverse_mass_matrix)
     tuning = Tuning(shape.astype(dtype), None, precision_chol.astype(dtype), "warm-up",
                     sampler=entry.name, step_size=float(warm.step_size),

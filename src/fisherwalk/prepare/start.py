@@ -300,7 +300,7 @@ def start(
 
     Evidence: with PSIS k̂ above its threshold the chain starts are resampled from the
     Laplace draws by their Pareto-smoothed weights (:mod:`fisherwalk.prepare.resample`), and
-    "auto" discounts (k̂ > threshold) or drops (k̂ > 1) the random walk and MALA
+    "auto" discounts (k̂ > threshold; squared above 1) the random walk and MALA
     (:mod:`fisherwalk.prepare.evidence`). A posterior symmetric under swapping labels is said
     to be (:mod:`fisherwalk.fit.symmetry`).
 
@@ -384,7 +384,7 @@ def start(
         positions, logdens, note = _spread_over_modes(model.evaluate, fit, positions, logdens)
         notes.append(note)
     if sampler == registry.AUTO:
-        picked = choose_sampler(flat_logdensity(model), positions, len(fit.names))
+        picked = choose_sampler(flat_logdensity(model), positions, dim, model.evaluate)
         weighed = weigh_evidence(picked.seconds_per_answer, check.khat, check.threshold)
         sampler = weighed.sampler
         notes.extend(n for n in (picked.note, weighed.note) if n)

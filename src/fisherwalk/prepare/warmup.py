@@ -23,7 +23,8 @@ N(mode, H⁻¹). The warm-up checks that in three ways and repairs what it can:
 3. When a check fails beyond its Monte Carlo error, the proposal shape (or a gradient
    sampler's metric) is learned from draws: BlackJAX's window adaptation, started from the
    chains' positions and the Laplace metric, with windows that double so that early draws
-   are forgotten (:mod:`fisherwalk.prepare.metric_repair`); the scale and target acceptance
+   are forgotten, or, for the random walk at d <= 25, more steps of its own compiled loop
+   and their covariance (:mod:`fisherwalk.prepare.metric_repair`); the scale and target acceptance
    are recomputed for the new shape (:func:`fisherwalk.optimal_scale` with the spectrum
    of A = Sᵀ P S, P the precision the walker now believes). When a check fails, phase 2
    (the other half) adapts the scale again, and the final scale is the average of the
@@ -59,9 +60,9 @@ from ..tuned.walker import Walker, continuable_state, flat_logdensity
 from .evidence import redecide
 from .metric_repair import (
     fallback_walker_parts,
-    learn_metric,
     learned_factors,
     learned_words,
+    repair_metric,
     window_start,
 )
 
@@ -258,15 +259,18 @@ def refine(
         if tuning0.shape_kind == "identity":
             do_reshape = False
         notes, tuning1, state, window = [], None, phase1.state, 0
+        if do_reshape and reshape is None and fit.fisher_source == "draws":
+            do_reshape = False  # no mode: start() learned the metric from 1000 steps' draws
+            notes.append("The metric was not learned again: start() learned it from the "
+                         "draws of its window adaptation (the posterior has no mode); a "
+                         "shorter window from the same chains would not do better.")
         if do_reshape:  # the metric learned from draws (prepare/metric_repair.py)
             why = "; ".join(reasons) if reasons else "reshape=True was asked"
             switch = redecide(tuning0.sampler, chosen_by_auto(walker), p_value < COVARIANCE_LEVEL,
                               khat, k_limit)
             step0, aim0 = window_start(family, tuning0, phase1, switch)
-            learned = learn_metric(walker, family.positions(walker.model.engine, state),
-                                   jax.random.fold_in(key, 3), step_size=step0,
-                                   target_acceptance=aim0, switch=bool(switch),
-                                   first_draws=phase1.draws)
+            learned, _ = repair_metric(walker, context, phase1, state,
+                                       jax.random.fold_in(key, 3), step0, aim0, switch)
             if switch:  # "auto" chose on a picture the warm-up refuted: NUTS instead
                 return _switched(walker, learned, switch, learned_words(learned, why),
                                  phase1, (half, khat, k_limit, outside, spectrum, bounds,

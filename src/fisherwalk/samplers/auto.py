@@ -43,7 +43,8 @@ def _median_time(fn: Callable, arg, repeats: int = 7) -> float:
     return float(np.median(times))
 
 
-def choose_sampler(flat_logdensity: Callable, positions, dim: int) -> SamplerChoice:
+def choose_sampler(flat_logdensity: Callable, positions, dim: int,
+                   evaluate: Callable | None = None) -> SamplerChoice:
     """Predict each registered family's time to an answer and pick the fastest.
 
     Time per chain-step is one batched evaluation over the chains (a log density, or a
@@ -52,10 +53,13 @@ def choose_sampler(flat_logdensity: Callable, positions, dim: int) -> SamplerCho
     parameters are 400 / (chains · e_s) (the chains pool their draws), so the predicted
     time is that times the cost of one batched evaluation, plus the extra compilation of
     the family's program (``extra_compile_seconds``), which decides the choice at small d.
+    ``evaluate``, the model's own batched log density (already compiled by start()), is
+    timed when given rather than compiling another (benchmarks/phases.py counts them).
     """
     positions = jax.device_put(np.asarray(positions))
     chains = int(positions.shape[0])
-    cost = {"logdensity": _median_time(jax.jit(jax.vmap(flat_logdensity)), positions),
+    batched = jax.jit(jax.vmap(flat_logdensity)) if evaluate is None else evaluate
+    cost = {"logdensity": _median_time(batched, positions),
             "gradient": _median_time(jax.jit(jax.vmap(jax.value_and_grad(flat_logdensity))),
                                      positions)}
     seconds = {}

@@ -27,6 +27,7 @@ from ..results.trace import Trace
 from ..tuned.walker import Walker, continuable_state
 from . import derive, plan
 from .runfacts import run_facts
+from .switch import switch_reason, switched_walker
 
 _FIELDS = ("position", "logdensity", "accepted", "acceptance_rate", "faults", "divergent",
            "gradients", "energy")  # what a chunk may carry (the last three: gradient families)
@@ -231,6 +232,7 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
     first_done = collector.done
     rounds: list[int] = []
     stopped, min_ess, max_rhat, previous = "fixed length", None, None, None
+    reason = ""  # why the walk switches sampler after its first round (workflow/switch.py)
     try:
         while True:
             for keep, out in chunks(state, total, collector.done):
@@ -254,6 +256,11 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
             if min_ess >= ess_limit and max_rhat < rhat_limit:
                 stopped = "targets met"
                 break
+            if len(rounds) == 1 and store is None:  # far below its prediction: switch once
+                reason = switch_reason(walker, min_ess, max_rhat, collector.done, thin)
+                if reason:
+                    stopped = "switching"
+                    break
             if plan.stalled(previous, (collector.done, max_rhat)):
                 stopped = "chains disagree"
                 break
@@ -296,6 +303,14 @@ def _sample(walker, key, state, collector, store, chunks, planned, total, thin, 
         if bar is not None:
             bar.close()
     seconds = time.perf_counter() - began
+    if stopped == "switching":  # workflow/switch.py: the walk goes on with NUTS, from here
+        switched = switched_walker(walker, walker.family.positions(walker.model.engine, state),
+                                   jax.random.fold_in(key, 2**31 - 7), reason)
+        return walk(switched, jax.random.fold_in(key, 2**31 - 11), thin=thin,
+                    ess_limit=ess_limit, rhat_limit=rhat_limit, max_draws=max_draws,
+                    max_seconds=max(max_seconds - seconds, 1e-3), chunk=chunk,
+                    progress=progress, pointwise=functions[0], derived=functions[1],
+                    predict=functions[2])
     collector.truncate()
     if not planned and stopped != "interrupted":
         rounds = [collector.done]
