@@ -50,13 +50,10 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
-import io
 import os
 import re
 import time
 import warnings
-import zipfile
-import zlib
 from pathlib import Path
 from typing import Any
 
@@ -65,7 +62,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base.checks import positive_number, whole_number
-from ..base.files import check_folder, fsync_folder, read_bytes, write_atomic
+from ..base.files import check_folder, fsync_folder, write_atomic
 from ..base.jsonio import encode_array, write_json_atomic
 from ..base.lock import LOCK_FILE, Lock, acquire_lock
 from ..base.meshes import failed_processes
@@ -75,23 +72,20 @@ from .checkpoint_files import (
     FORMAT,
     FORMAT_VERSION,
     RUN_FILE,
+    SEGMENT_NAME,
+    SEGMENT_PATTERN,
     STATE_FILE,
     check_start_whitened,
     damaged,
     decode_state,
-    first_clause,
+    load_segment,
     read_checkpoint_json,
     whitened_state,
 )
 from .checkpoint_identity import differences, fingerprint_of, identity, legacy_fingerprint
 from .segments import (
-    ARRAYS,
-    OPTIONAL,
     changed_field,
-    segment_bytes,
     segment_data,
-    segment_layout,
-    segment_text,
     state_bytes,
     whitened_digests,
 )
@@ -104,8 +98,6 @@ __all__ = ["Store", "DEFAULT_EVERY", "RUN_FILE", "STATE_FILE", "read_checkpoint_
 
 DEFAULT_EVERY = 10.0  # seconds between saves
 MAX_CHAINS = 1_000_000
-_SEGMENT = "segment-{:06d}.npz"
-_SEGMENT_RE = re.compile(r"^segment-(\d{6})\.npz$")
 _TMP_RE = re.compile(r"^\.(run\.json|state\.json|segment-\d{6}\.npz)\.[A-Za-z0-9_]+\.tmp$")
 
 
@@ -284,7 +276,7 @@ class Store:
     def _read_state(self, chains: int, dim: int) -> dict | None:
         file = self.path / STATE_FILE
         if not file.exists():
-            if any(_SEGMENT_RE.match(f) for f in os.listdir(self.path)):
+            if any(SEGMENT_PATTERN.match(f) for f in os.listdir(self.path)):
                 raise damaged(file, "it is missing while segment files exist")
             return None  # the process stopped before its first save
         state = read_checkpoint_json(file, max_bytes=state_bytes(chains, dim, self.draws,
@@ -310,50 +302,6 @@ class Store:
                 state, file, self._dtype, chains, dim)
         return state
 
-    def _load_segment(self, index: int, start: int, digest: str, collector) -> int:
-        file = self.path / _SEGMENT.format(index)
-        chains, draws, dim = collector.flat.shape
-        limit = segment_bytes(segment_layout(collector, start, draws))
-        if not file.exists():
-            raise damaged(file, "the segment file is missing")
-        try:
-            data = read_bytes(file, max_bytes=limit, follow_symlinks=False,
-                              error=CheckpointError, where=f"checkpoint {self.path}")
-        except CheckpointError as err:
-            raise damaged(file, first_clause(err)) from err
-        if hashlib.sha256(data).hexdigest() != digest:
-            raise damaged(file, "its SHA-256 digest is not the one state.json recorded when "
-                                "it was written (the file was changed or replaced)")
-        try:
-            with np.load(io.BytesIO(data), allow_pickle=False) as content:
-                arrays = {name: content[name]
-                          for name in (*ARRAYS, "start", "stop", "fingerprint")}
-                arrays.update({name: content[name] for name in OPTIONAL
-                               if name in content.files})
-                # "" in segments written before the whitened state was digested
-                self._saved_whitened = segment_text(content["whitened"]) \
-                    if "whitened" in content.files else None
-        except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
-            raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
-        if str(arrays["fingerprint"]) != self.fingerprint:
-            raise damaged(file, "the segment was written for another run")
-        first, stop = int(arrays["start"]), int(arrays["stop"])
-        if first != start or not start < stop <= self.draws:
-            raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
-        for name in (*ARRAYS, *OPTIONAL):
-            if name not in arrays:  # a segment written before the field was kept: NaN
-                continue
-            target = getattr(collector, name)
-            value = arrays[name]
-            expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
-            if value.shape != expected or value.dtype != target.dtype:
-                raise damaged(file, f"'{name}' has shape {value.shape} and dtype {value.dtype}, "
-                                     f"expected {expected} and {target.dtype}")
-            target[:, start:stop] = value
-        if "energy" in arrays and np.isfinite(arrays["energy"]).any():
-            collector.has_energy = True  # HMC or NUTS: the Trace carries the energy
-        return stop
-
     def restore(self, collector, state: ChainState) -> ChainState:
         """Fill ``collector`` with the saved draws; return the chains' state to continue
         from (``state``, the walker's own, when nothing was saved yet)."""
@@ -365,7 +313,8 @@ class Store:
         done, digests = saved["done"], saved["digests"]
         stop = 0
         for index, recorded in enumerate(digests):
-            stop = self._load_segment(index, stop, recorded, collector)
+            stop, self._saved_whitened = load_segment(
+                self.path, index, stop, recorded, collector, self.fingerprint, self.draws)
         state_file = self.path / STATE_FILE
         if stop != done:
             raise damaged(state_file, f"it counts {done} draws, the segments hold {stop}")
@@ -400,7 +349,7 @@ class Store:
         """Remove temporary files and segments no state file counts (a process died
         between writing them and the state file)."""
         for name in os.listdir(self.path):
-            match = _SEGMENT_RE.match(name)
+            match = SEGMENT_PATTERN.match(name)
             if _TMP_RE.match(name) or (match and int(match.group(1)) >= self._segments):
                 with contextlib.suppress(OSError):
                     (self.path / name).unlink()
@@ -423,7 +372,7 @@ class Store:
         start, index = self._done, self._segments
         data = segment_data(collector, start, done, self.fingerprint,
                             whitened_digests(state if self._whole_state else None))
-        write_atomic(self.path / _SEGMENT.format(index), lambda handle: handle.write(data),
+        write_atomic(self.path / SEGMENT_NAME.format(index), lambda handle: handle.write(data),
                      error=CheckpointError, where=self._where())
         digests = [*self._digests, hashlib.sha256(data).hexdigest()]
         write_json_atomic(self.path / STATE_FILE, {

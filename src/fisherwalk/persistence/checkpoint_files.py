@@ -1,25 +1,34 @@
-"""Reading a checkpoint's files: the format's names, a JSON file bounded and checked, the
-chains' stored state, and the refusal of a damaged file (one message, naming the file and
-what is wrong)."""
+"""Reading a checkpoint's files: the format's names, a JSON file bounded and checked, a
+segment of draws checked member by member, the chains' stored state, and the refusal of a
+damaged file (one message, naming the file and what is wrong)."""
 
 from __future__ import annotations
 
+import hashlib
+import io
+import re
+import zipfile
+import zlib
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from ..base.files import read_bytes
 from ..base.jsonio import decode_array, read_json
 from ..errors import CheckpointError, explain
-from .segments import changed_field
+from .segments import ARRAYS, OPTIONAL, changed_field, segment_bytes, segment_layout, segment_text
 
-__all__ = ["FORMAT", "FORMAT_VERSION", "RUN_FILE", "STATE_FILE", "damaged", "first_clause",
-           "read_checkpoint_json", "decode_state", "check_start_whitened", "whitened_state"]
+__all__ = ["FORMAT", "FORMAT_VERSION", "RUN_FILE", "STATE_FILE", "SEGMENT_NAME",
+           "SEGMENT_PATTERN", "damaged", "first_clause", "read_checkpoint_json", "decode_state",
+           "check_start_whitened", "whitened_state", "load_segment"]
 
 FORMAT = "fisherwalk-checkpoint"
 FORMAT_VERSION = 2  # 2: lock, segment digests, fingerprint over the whole tuning record
 RUN_FILE = "run.json"
 STATE_FILE = "state.json"
+SEGMENT_NAME = "segment-{:06d}.npz"
+SEGMENT_PATTERN = re.compile(r"^segment-(\d{6})\.npz$")
 
 
 def damaged(file: Path, reason: str) -> CheckpointError:
@@ -102,3 +111,52 @@ def whitened_state(content, state, chains: int, dim: int, dtype: str, state_file
                           max_size=chains * dim, shape=shapes[f], dtype=dtype,
                           finite=True, error=CheckpointError) for f in state._fields]
     return type(state)(*parts)
+
+
+def load_segment(path: Path, index: int, start: int, digest: str, collector,
+                 fingerprint: str, total: int) -> tuple[int, str | None]:
+    """Copy segment ``index`` (draws from ``start``) into ``collector``, every member
+    checked (digest, fingerprint, range, shapes and dtypes); return where it stops and the
+    digests of the whitened state saved with it (None in segments older than them)."""
+    file = path / SEGMENT_NAME.format(index)
+    chains, draws, dim = collector.flat.shape
+    limit = segment_bytes(segment_layout(collector, start, draws))
+    if not file.exists():
+        raise damaged(file, "the segment file is missing")
+    try:
+        data = read_bytes(file, max_bytes=limit, follow_symlinks=False,
+                          error=CheckpointError, where=f"checkpoint {path}")
+    except CheckpointError as err:
+        raise damaged(file, first_clause(err)) from err
+    if hashlib.sha256(data).hexdigest() != digest:
+        raise damaged(file, "its SHA-256 digest is not the one state.json recorded when "
+                            "it was written (the file was changed or replaced)")
+    try:
+        with np.load(io.BytesIO(data), allow_pickle=False) as content:
+            arrays = {name: content[name]
+                      for name in (*ARRAYS, "start", "stop", "fingerprint")}
+            arrays.update({name: content[name] for name in OPTIONAL
+                           if name in content.files})
+            # "" in segments written before the whitened state was digested
+            saved_whitened = segment_text(content["whitened"]) \
+                if "whitened" in content.files else None
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as err:
+        raise damaged(file, f"it cannot be read ({type(err).__name__}: {err})") from err
+    if str(arrays["fingerprint"]) != fingerprint:
+        raise damaged(file, "the segment was written for another run")
+    first, stop = int(arrays["start"]), int(arrays["stop"])
+    if first != start or not start < stop <= total:
+        raise damaged(file, f"it holds draws {first} to {stop}, expected draws from {start}")
+    for name in (*ARRAYS, *OPTIONAL):
+        if name not in arrays:  # a segment written before the field was kept: NaN
+            continue
+        target = getattr(collector, name)
+        value = arrays[name]
+        expected = (chains, stop - start, dim) if name == "flat" else (chains, stop - start)
+        if value.shape != expected or value.dtype != target.dtype:
+            raise damaged(file, f"'{name}' has shape {value.shape} and dtype {value.dtype}, "
+                                 f"expected {expected} and {target.dtype}")
+        target[:, start:stop] = value
+    if "energy" in arrays and np.isfinite(arrays["energy"]).any():
+        collector.has_energy = True  # HMC or NUTS: the Trace carries the energy
+    return stop, saved_whitened
