@@ -112,6 +112,20 @@ def goals(results: dict) -> list[tuple[str, str, str]]:
                     "on every target, d = 2 to 200",
                     "; ".join(f"{k}: {_fmt(v)}" for k, v in values.items()),
                     verdict(values, 1 / 3, below=True)))
+    hard = [t for t in targets if t.get("family") in ("hierarchical", "heavy")
+            and _runs(t, "fisherwalk-auto")]
+    if "fisherwalk-auto" in samplers and "nuts" in samplers and hard:  # issue 22
+        values = {t["target"]: answer_ratio(t, "fisherwalk-auto", "nuts") for t in hard}
+        out.append(("\"auto\"'s time to answer ≤ 1.0× BlackJAX NUTS with window adaptation "
+                    "on every hierarchical and non-Gaussian target (issue 22)",
+                    "; ".join(f"{k}: {_fmt(v)}" for k, v in values.items()),
+                    verdict(values, 1.0, below=True)))
+        known = [v for v in values.values() if v is not None]
+        middle = float(np.median(known)) if known else None
+        out.append(("... and ≤ 0.7× on their median (issue 22)",
+                    f"median {_fmt(middle)} over {len(known)} target(s) with a figure",
+                    "not measured" if middle is None else
+                    ("met" if middle <= 0.7 else "missed")))
     if "fisherwalk-auto" in samplers and any(p in samplers for p in PEERS):
         values = {t["target"]: best_peer_ratio(t, "fisherwalk-auto") for t in targets
                   if _runs(t, "fisherwalk-auto")}
