@@ -266,6 +266,7 @@ def _blackjax_path(sampler, step_size, key, starts, draws):
     else:
         algorithm = blackjax.nuts(LOGDENSITY, **parameters)
         init = algorithm.init
+        step = jax.jit(jax.vmap(algorithm.step))  # compiled once, not once per step
     states = jax.vmap(lambda x: init(x, LOGDENSITY))(jnp.asarray(starts)) \
         if sampler == "hmc" else jax.vmap(init)(jnp.asarray(starts))
     path, infos = [], []
@@ -277,7 +278,7 @@ def _blackjax_path(sampler, step_size, key, starts, draws):
                 lambda k, st, n=n: kernel(k, st, LOGDENSITY, step_size,
                                           parameters["inverse_mass_matrix"], n))(keys, states)
         else:
-            states, info = jax.jit(jax.vmap(algorithm.step))(keys, states)
+            states, info = step(keys, states)
         path.append(np.asarray(states.position))
         infos.append(jax.device_get(info))
     return np.stack(path), jax.tree.map(lambda *a: np.stack(a), *infos)
