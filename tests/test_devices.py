@@ -27,6 +27,7 @@ import textwrap
 from pathlib import Path
 
 import pytest
+from processes import NO_GLOO, example, gloo_available, run_pair
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -170,24 +171,10 @@ print(json.dumps({
     assert "different numbers of rows: [10, 1001]" in out["messages"][1]
 
 
-def _gloo_available() -> bool:
-    try:
-        from jax._src.lib import _jax  # the jaxlib build: does it carry gloo collectives?
-    except ImportError:
-        return False
-    return hasattr(_jax, "make_gloo_tcp_collectives")
-
-
 @pytest.mark.slow
-@pytest.mark.skipif(not _gloo_available(),
-                    reason="this jaxlib has no gloo CPU collectives: no cross-process test")
+@pytest.mark.skipif(not gloo_available(), reason=NO_GLOO)
 def test_two_processes_match_one_process_with_checkpoint_and_resume(tmp_path):
-    sys.path.insert(0, str(ROOT / "examples"))
-    try:
-        import two_processes
-    finally:
-        sys.path.remove(str(ROOT / "examples"))
-    result = two_processes.launch(rows=1001, draws=150, out=tmp_path, timeout=240.0)
+    result = example().launch(rows=1001, draws=150, out=tmp_path, timeout=240.0)
     assert result["devices"] == 2 and result["shape"] == (4, 150, 3)
     assert result["complete"]  # the walk was interrupted at chunk 3; resume() finished it
     assert result["draws"] <= 1e-8
@@ -195,14 +182,6 @@ def test_two_processes_match_one_process_with_checkpoint_and_resume(tmp_path):
 
 
 MISMATCH = """
-import os, sys
-os.environ["XLA_FLAGS"] = "--xla_force_host_platform_device_count=1"
-import jax
-jax.config.update("jax_enable_x64", True)
-jax.config.update("jax_cpu_collectives_implementation", "gloo")
-i = int(sys.argv[1])
-jax.distributed.initialize(coordinator_address="127.0.0.1:" + sys.argv[2], num_processes=2,
-                           process_id=i, initialization_timeout=60)
 import jax.numpy as jnp, numpy as np
 from fisherwalk.base.shards import sharded_logdensity
 from fisherwalk.errors import ModelError
@@ -215,30 +194,9 @@ except ModelError as err:
 
 
 @pytest.mark.slow
-@pytest.mark.skipif(not _gloo_available(),
-                    reason="this jaxlib has no gloo CPU collectives: no cross-process test")
+@pytest.mark.skipif(not gloo_available(), reason=NO_GLOO)
 def test_processes_with_different_data_shapes_are_refused_before_sampling(tmp_path):
-    sys.path.insert(0, str(ROOT / "examples"))
-    try:
-        import two_processes
-    finally:
-        sys.path.remove(str(ROOT / "examples"))
-    script = tmp_path / "mismatch.py"
-    script.write_text(MISMATCH)
-    port = str(two_processes.free_port())
-    env = dict(os.environ)
-    env["PYTHONPATH"] = os.pathsep.join([str(ROOT / "src"), env.get("PYTHONPATH", "")])
-    procs = [subprocess.Popen([sys.executable, str(script), str(i), port], env=env,
-                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-             for i in (0, 1)]
-    outs = []
-    for p in procs:
-        try:
-            outs.append(p.communicate(timeout=120)[0])
-        except subprocess.TimeoutExpired:
-            p.kill()
-            outs.append(p.communicate()[0])
-    for text in outs:
+    for text in run_pair(MISMATCH, tmp_path, timeout=120):
         assert "refused: The processes disagree on the data shapes" in text, text
 
 

@@ -5,36 +5,22 @@ One process takes the folder's lock; the other is refused. Before the fix the re
 process raised while the first waited for it in the sampling's collectives, and both
 hung until killed. Now every process reports whether it opened its checkpoint (one
 all-gather, fisherwalk.base.meshes.failed_processes): the refused one ends with the lock
-refusal, the other ends naming it. Real processes (gloo CPU collectives, as in
-tests/test_devices.py); where this jaxlib lacks gloo, the agreement is simulated below.
+refusal, the other ends naming it. Real processes (gloo CPU collectives, launched by
+tests/processes.py); where this jaxlib lacks gloo, the agreement is simulated below.
 """
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
-from pathlib import Path
-
 import jax
 import jax.numpy as jnp
 import pytest
+from processes import NO_GLOO, gloo_available, run_pair
 
 import fisherwalk
 from fisherwalk.errors import CheckpointError
 from fisherwalk.persistence import checkpoint as checkpoint_module
 
-ROOT = Path(__file__).resolve().parents[1]
-
 TWO = """
-import os, sys
-os.environ["XLA_FLAGS"] = "--xla_force_host_platform_device_count=1"
-import jax
-jax.config.update("jax_enable_x64", True)
-jax.config.update("jax_cpu_collectives_implementation", "gloo")
-i = int(sys.argv[1])
-jax.distributed.initialize(coordinator_address="127.0.0.1:" + sys.argv[2], num_processes=2,
-                           process_id=i, initialization_timeout=60)
 import jax.numpy as jnp
 import fisherwalk
 from fisherwalk.errors import CheckpointError
@@ -54,38 +40,10 @@ except CheckpointError as err:
 """
 
 
-def _gloo_available() -> bool:
-    try:
-        from jax._src.lib import _jax  # the jaxlib build: does it carry gloo collectives?
-    except ImportError:
-        return False
-    return hasattr(_jax, "make_gloo_tcp_collectives")
-
-
-@pytest.mark.skipif(not _gloo_available(),
-                    reason="this jaxlib has no gloo CPU collectives: no cross-process test")
+@pytest.mark.skipif(not gloo_available(), reason=NO_GLOO)
 def test_two_processes_given_one_checkpoint_folder_both_end(tmp_path):
-    sys.path.insert(0, str(ROOT / "examples"))
-    try:
-        import two_processes
-    finally:
-        sys.path.remove(str(ROOT / "examples"))
-    script = tmp_path / "two.py"
-    script.write_text(TWO)
-    port = str(two_processes.free_port())
-    env = dict(os.environ)
-    env["PYTHONPATH"] = os.pathsep.join([str(ROOT / "src"), env.get("PYTHONPATH", "")])
     folder = tmp_path / "run.ckpt"  # the mistake: one folder for both processes
-    procs = [subprocess.Popen([sys.executable, str(script), str(i), port, str(folder)],
-                              env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                              text=True) for i in (0, 1)]
-    outs = []
-    for p in procs:
-        try:
-            outs.append(p.communicate(timeout=240)[0])
-        except subprocess.TimeoutExpired:  # the hang this test is about
-            p.kill()
-            outs.append("hung: " + p.communicate()[0])
+    outs = run_pair(TWO, tmp_path, str(folder), timeout=240)  # a hang: "hung: ..."
     assert "in use by process" in outs[1], outs
     assert "Process(es) 1 of this jax.distributed run could not open" in outs[0], outs
 
