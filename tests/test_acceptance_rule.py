@@ -83,6 +83,7 @@ _POSITION = {"floor": 200.0, "span": 500.0, "log_half": float(np.log(20.0)),
              "log_sigma": float(np.log(10.0))}
 
 
+@pytest.mark.slow
 def test_no_acceptance_warning_on_the_notebook_model():
     # the notebook's own keys and calls: its summary must not warn about the acceptance
     # (realised 0.276 against the warm-up's aim 0.296 is inside the band 0.147 to 0.490)

@@ -14,6 +14,7 @@ def _logdensity(x):
     return -0.5 * jnp.sum(x**2 / jnp.array([1.0, 4.0]))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", registry.names())
 def test_another_walker_is_refused_naming_the_family_parameter(sampler, tmp_path):
     walker = fisherwalk.start(_logdensity, jnp.zeros(2), jax.random.key(0), chains=2,

@@ -41,6 +41,7 @@ def test_segment_size_bound_holds_at_several_sizes(chains, draws, dim, dtype):
         assert bound - len(data) <= (len(layout) + 1) * 1024
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("draws,thin", [(3000, 1), (20000, 2)])
 def test_finished_checkpoint_reopens_with_the_same_draws(draws, thin, tmp_path):
     # the first round's data-loss probe: a finished run whose last segment held more than

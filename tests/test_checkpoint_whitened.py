@@ -51,6 +51,7 @@ def _edit(file, keys):
     file.write_text(json.dumps(content))
 
 
+@pytest.mark.slow
 def test_unedited_gradient_checkpoint_resumes_bit_for_bit(checkpoint, tmp_path):
     path, trace = checkpoint
     resumed = fisherwalk.resume(_copy(path, tmp_path / "c"), _logdensity, progress=False)

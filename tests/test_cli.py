@@ -41,6 +41,7 @@ def test_demo_writes_every_file(demo_run):
         assert digest == entry["sha256"]
 
 
+@pytest.mark.slow
 def test_demo_draws_file_needs_no_pickle(demo_run):
     _, out, record = demo_run
     with np.load(out / "draws.npz", allow_pickle=False) as saved:
@@ -104,6 +105,7 @@ def test_demo_draws_are_reproduced_from_the_record(demo_run):
         np.testing.assert_array_equal(np.asarray(again.trace.flat), saved["draws"])
 
 
+@pytest.mark.slow
 def test_demo_output_shows_tuning_summary_and_truth(tmp_path, capsys):
     code = cli.main(["demo", "--scenario", "poisson", "--out", str(tmp_path), "--chains", "2",
                      "--draws", "100", "--warmup", "200", "--seed", "1"])
@@ -138,6 +140,7 @@ def test_scale_table(capsys):
     assert line.split()[3] == f"{choice.acceptance:.4f}"
 
 
+@pytest.mark.slow
 def test_run_a_good_model_file(tmp_path, capsys):
     code = cli.main(["run", str(MODELS / "good_model.py"), "--out", str(tmp_path),
                      "--chains", "2", "--draws", "200", "--warmup", "200", "--quiet"])

@@ -74,6 +74,7 @@ def test_csv_reader_refuses_numbers_that_are_not_plain_ascii_decimals(tmp_path, 
     assert "ASCII digits" in str(caught.value)
 
 
+@pytest.mark.slow
 def test_twenty_csv_columns_are_read_column_wise(tmp_path):
     # issue 21, item 12: 20 columns took about 17x the file's size in memory (a Python
     # string per cell); column-wise float arrays need the text and 8 bytes per number
@@ -132,6 +133,7 @@ def table_run(tmp_path_factory):
     return code, data, out
 
 
+@pytest.mark.slow
 def test_table_run_stores_pointwise_and_derived(table_run):
     code, data, out = table_run
     assert code == 0
@@ -164,6 +166,7 @@ def test_table_run_stores_pointwise_and_derived(table_run):
     assert rows["rate_at_zero"]["mean"] == pytest.approx(np.exp(a).mean(), rel=1e-12)
 
 
+@pytest.mark.slow
 def test_interrupted_run_resumes_to_the_same_draws(table_run, tmp_path, interrupt_sampling,
                                                   capsys):
     _, data, reference = table_run

@@ -40,6 +40,7 @@ except CheckpointError as err:
 """
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not gloo_available(), reason=NO_GLOO)
 def test_two_processes_given_one_checkpoint_folder_both_end(tmp_path):
     folder = tmp_path / "run.ckpt"  # the mistake: one folder for both processes

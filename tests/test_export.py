@@ -153,6 +153,7 @@ def test_arviz_loo_runs_on_the_pointwise_log_likelihood(poisson_run):
     assert loo.p_loo > 0
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler, title", [("nuts", "NUTS"), ("hmc", "HMC")])
 def test_hamiltonian_samplers_hand_arviz_their_energy(sampler, title):
     # A 5-d standard normal: the whitened target is N(0, I_5) and the kinetic energy at a

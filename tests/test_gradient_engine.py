@@ -109,6 +109,7 @@ def test_chunking_does_not_change_the_draws(engines, sampler):
     assert not np.array_equal(one["position"][0], one["position"][-1])  # the chains moved
 
 
+@pytest.mark.slow
 def test_thinning_keeps_every_thin_th_state(engines):
     # Thinning runs the same steps and keeps the last of each group: 4 kept draws of 5
     # steps are steps 4, 9, 14, 19 of a run that keeps all 20 (same key, same start).
@@ -140,6 +141,7 @@ def test_acceptance_after_warm_up_matches_the_target(runs, sampler):
         rates.mean(), warm.target_acceptance, tolerance)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", SAMPLERS)
 def test_dual_averaging_recovers_from_a_poor_start(engines, sampler):
     # Started at a third of the theory step (acceptance near 1), the warm-up's pooled

@@ -17,6 +17,7 @@ def _logdensity(p):
     return -0.5 * p["x"] @ _PRECISION @ p["x"]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("algorithm", [blackjax.nuts, blackjax.hmc,
                                        blackjax.additive_step_random_walk])
 def test_single_chain_state_runs_in_a_plain_blackjax_loop(algorithm):

@@ -270,6 +270,7 @@ def test_complete_separation_is_a_runaway_mode():
     assert "unbounded" in str(info.value) and "x[0] (+1.00)" in str(info.value)
 
 
+@pytest.mark.slow
 def test_saddle_and_unidentified_parameter_are_not_positive_definite():
     # log density x² - y²: from (0, 1) the search slides down y to the saddle at 0.
     with pytest.raises(FitError, match="not positive definite") as info:

@@ -59,6 +59,7 @@ def test_import_does_not_import_numpyro():
     assert out.stdout.strip() == "False False"
 
 
+@pytest.mark.slow
 def test_problem_has_the_model_sites_in_order():
     problem = _problem()
     assert [s.name for s in problem.space.sites] == ["noise", "slope", "intercept",
@@ -80,6 +81,7 @@ def test_log_density_is_numpyros_with_the_jacobian():
                                                              rel=1e-12)
 
 
+@pytest.mark.slow
 def test_trace_shows_constrained_sites(trace):
     assert list(trace.draws) == ["noise", "slope", "intercept", "flow_at_5h"]
     np.testing.assert_allclose(trace.draws["noise"], np.exp(trace.unconstrained["noise"]))
@@ -168,6 +170,7 @@ def test_declared_transform_gives_numpyros_unconstrained_density(declared, value
     assert float(problem.logdensity_fn(u)) == pytest.approx(float(expected), rel=1e-10)
 
 
+@pytest.mark.slow
 def test_declared_deterministic_and_pointwise_are_shown():
     y = jnp.asarray([1.2, 0.4, 2.2, 0.9])
 
@@ -222,6 +225,7 @@ def test_command_line_runs_a_numpyro_model_of_a_table(tmp_path):
     assert record["sampling"]["pointwise_observations"] == 5
 
 
+@pytest.mark.slow
 def test_a_factor_term_gives_a_log_likelihood_but_no_replicates():
     # numpyro.factor adds a term to the log density: an observed site with nothing to draw
     pytest.importorskip("arviz")

@@ -105,6 +105,7 @@ def test_declared_positive_variance_matches_inverse_gamma(sampler):
     _within_mcse(trace.draws["s2"], _variance_law(y), f"declared positive, {sampler}")
 
 
+@pytest.mark.slow
 def test_forgotten_jacobian_is_caught_by_the_closed_form():
     # the check above can fail: exp() without its log-Jacobian shifts the posterior of s2
     # to Inv-Gamma(a - 1, b) (the density loses a factor s2), which the test must reject
@@ -197,6 +198,7 @@ def test_numpyro_simplex_matches_dirichlet():
     _check_dirichlet(trace.draws["w"], counts, "NumPyro")
 
 
+@pytest.mark.slow
 def test_declared_simplex_matches_dirichlet():
     counts = _wine_counts()
 

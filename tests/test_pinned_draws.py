@@ -81,6 +81,7 @@ PINNED = {
 }
 
 
+@pytest.mark.slow
 def test_draws_match_the_pinned_run(tmp_path):
     assert pipeline(tmp_path) == PINNED
 
@@ -115,6 +116,7 @@ PINNED_GRADIENT = {
 }
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", sorted(PINNED_GRADIENT))
 def test_gradient_draws_match_the_pinned_run(sampler, tmp_path):
     got = gradient_pipeline(sampler, tmp_path, checkpoint=sampler == "nuts")

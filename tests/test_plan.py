@@ -114,6 +114,7 @@ def test_stalled_means_rhat_high_and_not_falling_with_the_draws():
     assert not plan.stalled(None, (2000, 1.5))
 
 
+@pytest.mark.slow
 def test_chains_that_cannot_meet_stop_as_chains_disagree():
     # Two chains started 40 sd apart on a density with two far modes never cross:
     # R-hat stays huge and the planned run stops after its second round.

@@ -33,6 +33,7 @@ def walker():
     return fisherwalk.refine(w, keys[1], progress=False)
 
 
+@pytest.mark.slow
 def test_predictions_are_reproducible_and_do_not_depend_on_chunking(walker):
     key = jax.random.key(21)
     small = fisherwalk.walk(walker, key, 300, chunk=64, progress=False, predict=_predict)

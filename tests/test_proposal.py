@@ -25,6 +25,7 @@ def test_shape_from_cholesky_gives_inverse_fisher():
     assert np.allclose(np.tril(shape, -1), 0.0)  # upper triangular
 
 
+@pytest.mark.slow
 def test_step_matches_blackjax_bit_for_bit():
     # The kernel the engine runs must be BlackJAX's normal random walk with sigma = factor.
     _, factor = _factor(3)

@@ -90,6 +90,7 @@ def _fisherwalk_types(value, seen: set, depth: int = 0) -> set[type]:
     return found
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("sampler", ["rwm", "nuts"])
 def test_every_type_a_user_receives_is_exported(sampler):
     def logdensity(theta):

@@ -22,6 +22,7 @@ from fisherwalk.errors import FitError
 KEY = jax.random.key(0)
 
 
+@pytest.mark.slow
 def test_float32_log_density_with_x64_in_a_gradient_sampler_refine():
     def float32_normal(x):
         return (-0.5 * jnp.sum(x**2)).astype(jnp.float32)
@@ -44,6 +45,7 @@ def test_nan_gradient_band_at_the_mode_is_a_fit_error_saying_nan_gradient_and_wh
     assert "x[0] = 0.0" in str(info.value)  # where: inside the band, |x[0]| < 0.1
 
 
+@pytest.mark.slow
 def test_nan_gradient_during_walk_is_named_a_gradient_fault():
     def kink(x):  # the gradient in x[0] is NaN for x[0] > 1.5, the value stays finite
         return -0.5 * jnp.sum(x**2) + 0.0 * jnp.sqrt(jnp.maximum(1.5 - x[0], 0.0))

@@ -59,6 +59,7 @@ def _table(text: str) -> str:
     return text[text.index("fisherwalk summary"):]
 
 
+@pytest.mark.slow
 def test_show_in_a_new_process_prints_the_runs_table(run_folder):
     folder, printed = run_folder
     shown = _command("show", "out", cwd=folder)
@@ -139,6 +140,7 @@ def test_an_unfinished_checkpoint_is_refused(tmp_path):
         fisherwalk.reopen(tmp_path / "run.ckpt")
 
 
+@pytest.mark.slow
 def test_run_focus_prints_some_rows_and_keeps_every_row_in_the_files(tmp_path, capsys):
     from fisherwalk.cli import command as cli
 

@@ -62,6 +62,7 @@ def test_realised_acceptance_matches_the_prediction_at_the_step_used(runs, sampl
     assert abs(predicted - walker.tuning.choice.acceptance) < 0.05
 
 
+@pytest.mark.slow
 def test_nuts_reaches_its_dual_averaging_target(runs):
     walker, trace = runs["nuts"]
     summary = trace.summary()
@@ -117,6 +118,7 @@ def test_glm_posterior_means_agree_with_the_conjugate_answer(sampler):
     np.testing.assert_allclose(summary.sd, np.sqrt(np.diag(v)), rtol=0.15)
 
 
+@pytest.mark.slow
 def test_a_resumed_nuts_run_is_bit_identical(runs, tmp_path):
     walker, _ = runs["nuts"]
     reference = fisherwalk.walk(walker, jax.random.key(7), draws=300, chunk=50,
@@ -150,6 +152,7 @@ def test_a_gradient_tuning_survives_a_tuning_file(runs, tmp_path):
     assert np.array_equal(saved.tuning.shape, walker.tuning.shape)
 
 
+@pytest.mark.slow
 def test_handoff_parameters_run_in_a_plain_blackjax_loop():
     states, parameters = fisherwalk.handoff(blackjax.nuts, gaussian, jnp.zeros(4),
                                             jax.random.key(30))

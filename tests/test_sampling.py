@@ -26,6 +26,7 @@ def walker():
     return fisherwalk.start(_model(), jnp.ones(3), jax.random.key(0), chains=4)
 
 
+@pytest.mark.slow
 def test_same_key_same_draws_whatever_the_chunking(walker):
     a = fisherwalk.walk(walker, jax.random.key(1), draws=230, progress=False)
     b = fisherwalk.walk(walker, jax.random.key(1), draws=230, progress=False)
@@ -167,6 +168,7 @@ def _ridge(corr=-0.99):
     return lambda x: -0.5 * x @ prec @ x
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("shape, fires", [("diagonal", True), ("fisher", False)])
 def test_correlation_warning_fires_under_a_diagonal_proposal_only(shape, fires):
     # posterior correlation -0.99 between the first two coordinates (issue 14's case);

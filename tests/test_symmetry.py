@@ -14,6 +14,7 @@ import warnings
 import jax
 import jax.numpy as jnp
 import numpy as np
+import pytest
 
 import fisherwalk
 from fisherwalk.fit.symmetry import label_swaps
@@ -41,6 +42,7 @@ def _start(weights):
     return walker, [str(w.message) for w in caught if "Label switching" in str(w.message)]
 
 
+@pytest.mark.slow
 def test_an_exchangeable_mixture_is_said_to_be_symmetric():
     walker, said = _start([0.5, 0.5])
     mode = np.asarray(walker.report.laplace.mode_flat)
@@ -49,6 +51,7 @@ def test_an_exchangeable_mixture_is_said_to_be_symmetric():
     assert any("Label switching" in n for n in walker.report.notes)
 
 
+@pytest.mark.slow
 def test_unequal_weights_break_the_symmetry_and_nothing_is_said():
     _, said = _start([0.3, 0.7])
     assert not said

@@ -72,6 +72,7 @@ def test_pytree_round_trip():
     np.testing.assert_array_equal(trace.flat[:, :, 4], trace.draws["s"])
 
 
+@pytest.mark.slow
 def test_states_run_in_the_users_blackjax_loop():
     # The walker's algorithm is BlackJAX's random walk: vmap(step) over the batched states.
     logdensity, _, _ = _gaussian(3, 10.0, seed=0)

@@ -60,6 +60,7 @@ def test_logistic_regression_end_to_end(logistic_run):
     assert report.khat < report.khat_threshold
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("factor", [4.0, 0.25])
 def test_refine_repairs_a_wrong_scale(logistic_run, factor):
     # A walker whose scale is 4x too large or too small: after refine(), the acceptance
@@ -148,6 +149,7 @@ def _student_t(nu=6.0, d=3):
     return logdensity
 
 
+@pytest.mark.slow
 def test_checks_fire_and_acceptance_reaches_target_when_laplace_is_too_narrow():
     walker = fisherwalk.start(_student_t(), jnp.zeros(3), jax.random.key(0))
     # Without warm-up the chains accept far more often than the Gaussian picture predicts,

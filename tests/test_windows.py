@@ -55,6 +55,7 @@ def _gaussian(cov):
     return logdensity
 
 
+@pytest.mark.slow
 def test_windows_learn_a_correlated_gaussian_from_the_identity_and_compile_nothing_new():
     # N(0, Σ), Σ with scales 1..30 and correlation 0.9: from the identity metric the
     # learned M must whiten Σ. The last window's estimate pools 4 chains x 500 draws; its
