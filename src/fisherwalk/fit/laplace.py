@@ -4,9 +4,10 @@ The posterior is summarised by N(mode, H⁻¹) with H = -∇² log π at the mod
 observed Fisher information of the posterior (Tierney & Kadane 1986, "Accurate
 approximations for posterior moments and marginal densities", JASA 81(393)); the
 Bernstein–von Mises theorem says this picture is right for large n. The mode is found
-by L-BFGS (Liu & Nocedal 1989, Math. Programming 45) with the zoom line search of
-Nocedal & Wright (2006, Numerical Optimization, 2nd ed., Alg. 3.5-3.6), all inside one
-jitted ``lax.while_loop``, then polished by at most two safeguarded Newton steps.
+by L-BFGS (Liu & Nocedal 1989, Math. Programming 45) with a backtracking (Armijo) line
+search (Nocedal & Wright 2006, Numerical Optimization, 2nd ed., Alg. 3.1 and 7.4;
+:mod:`fisherwalk.fit.lbfgs`), all inside one jitted ``lax.while_loop``, then polished
+by at most two safeguarded Newton steps.
 Every failure is checked eagerly afterwards and reported by parameter name
 (:mod:`fisherwalk.fit.checks`); restarts look for other modes (:mod:`fisherwalk.fit.modes`);
 the compiled search itself is :mod:`fisherwalk.fit.search`.
@@ -199,9 +200,9 @@ def laplace(
     gradient component falls; H is recomputed after each accepted step. L-BFGS alone can
     stall short of a tight tolerance on an ill-conditioned posterior.
 
-    ``evaluations`` counts value-and-gradient evaluations: the start, every zoom
-    line-search step (read from optax's line-search state) and every Newton trial;
-    the 1 + (accepted Newton steps) Hessians are not included.
+    ``evaluations`` counts value-and-gradient evaluations: the start, every
+    line-search trial and every Newton trial; the 1 + (accepted Newton steps) Hessians
+    are not included.
 
     Other modes: a restart counts as another mode when it ends at a converged local
     maximum more than 3 posterior standard deviations (in the H metric of either mode)

@@ -136,12 +136,17 @@ def find_no_mode(s: Search, info: np.ndarray | None, compiled: Callable, x0, tol
 
 def advice(found: Runaway) -> str:
     """What to do, non-centring first (Papaspiliopoulos, Roberts & Sköld 2007, "A general
-    framework for the parametrization of hierarchical models", Statistical Science 22(1))."""
+    framework for the parametrization of hierarchical models", Statistical Science 22(1)),
+    and the neck's known bias (Betancourt & Girolami 2015, "Hamiltonian Monte Carlo for
+    hierarchical models", in Current Trends in Bayesian Methodology with Applications)."""
     return (f"write the model in its non-centred form first (for group effects under the "
             f"scale {found.name}: θ_j = μ + τ z_j with z_j ~ N(0, 1), which removes the "
             "funnel when the data per group are weak); or keep the centred form (it mixes "
-            "better when the data per group are strong) and read the divergence count; "
-            "a proper prior that keeps the scale away from zero also helps.")
+            "better when the data per group are strong) and read the divergence count, "
+            f"knowing that even with few or no divergent transitions the draws can "
+            f"under-visit the funnel's neck, so that the low tail of {found.name} (and its "
+            "sd) comes out too light; a proper prior that keeps the scale away from zero "
+            "also helps.")
 
 
 def start_points(found: Runaway, noise: np.ndarray, jitter: float = 0.25) -> np.ndarray:

@@ -1,10 +1,10 @@
 """The mode search: L-BFGS, the Hessian and a Newton polish in one compiled loop.
 
 L-BFGS (Liu & Nocedal 1989, "On the limited memory BFGS method for large scale
-optimization", Math. Programming 45) with optax's zoom line search (Nocedal & Wright 2006,
-Numerical Optimization, 2nd ed., Alg. 3.5-3.6), all inside one jitted ``lax.while_loop``,
-then at most two safeguarded Newton steps (optax's L-BFGS can stall short of a tight
-gradient tolerance on an ill-conditioned posterior; the Hessian is computed anyway), then
+optimization", Math. Programming 45) with a backtracking line search
+(:mod:`fisherwalk.fit.lbfgs`), all inside one jitted ``lax.while_loop``, then at most
+two safeguarded Newton steps (L-BFGS can stall short of a tight gradient tolerance on an
+ill-conditioned posterior; the Hessian is computed anyway), then
 probes along rays that detect a runaway mode. :class:`Search` is what one search returns;
 :mod:`fisherwalk.fit.checks` reads it.
 """
@@ -17,8 +17,9 @@ from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
-import optax
 from jax.scipy.linalg import cho_solve
+
+from .lbfgs import minimise
 
 NEWTON_STEPS = 2  # safeguarded Newton steps after L-BFGS
 
@@ -47,41 +48,17 @@ def make_search(logp: Callable, use_hessian: bool) -> Callable:
     (with ``use_hessian``) the Hessian and the Newton polish, then the runaway probes.
     Pure, one compilation, vmappable over ``x0``."""
 
-    def objective(x):
-        return -logp(x)
-
-    solver = optax.lbfgs()
-    value_and_grad = optax.value_and_grad_from_state(objective)
-
     def information(x):
         h = jax.hessian(logp)(x)
         return -0.5 * (h + h.T)
 
     def search(x0, max_iterations, tol):
-        value0, grad0 = jax.value_and_grad(objective)(x0)
-        state = optax.tree.set(solver.init(x0), value=value0, grad=grad0)
         zero = jnp.zeros((), jnp.int32)
-
-        def keep_going(carry):
-            _, state, it, _, stalled = carry
-            value, grad = optax.tree.get(state, "value"), optax.tree.get(state, "grad")
-            small = jnp.max(jnp.abs(grad)) <= tol * jnp.maximum(1.0, jnp.abs(value))
-            return (it < max_iterations) & ~small & ~stalled & jnp.isfinite(value)
-
-        def iterate(carry):
-            x, state, it, evals, _ = carry
-            stored = optax.tree.get(state, "value")
-            evals = evals + jnp.where(jnp.isfinite(stored), 0, 1)  # recomputed if not stored
-            value, grad = value_and_grad(x, state=state)
-            updates, state = solver.update(grad, state, x, value=value, grad=grad,
-                                           value_fn=objective)
-            evals = evals + optax.tree.get(state, "num_linesearch_steps").astype(jnp.int32)
-            x_new = optax.apply_updates(x, updates)
-            return x_new, state, it + 1, evals, jnp.all(x_new == x)
-
-        x, state, iterations, evals, stalled = jax.lax.while_loop(
-            keep_going, iterate, (x0, state, zero, zero + 1, jnp.asarray(False)))
-        f, g = -optax.tree.get(state, "value"), -optax.tree.get(state, "grad")
+        start_value, start_grad = jax.value_and_grad(logp)(x0)
+        end = minimise(lambda x: -logp(x), x0, -start_value, -start_grad, max_iterations,
+                       tol)
+        x, iterations, evals, stalled = end.x, end.iterations, end.evaluations, end.stalled
+        f, g = -end.value, -end.grad
         fisher, steps = jnp.zeros((x.size, x.size), x.dtype), zero
 
         def polish(carry):
@@ -105,8 +82,8 @@ def make_search(logp: Callable, use_hessian: bool) -> Callable:
                 lambda carry: carry[5], polish, (x, f, g, fisher, steps, jnp.asarray(True),
                                                  evals))
         directions, values, radius = probe(logp, x0, x, fisher if use_hessian else None)
-        return Search(x, f, g, fisher, iterations, steps, evals, stalled, -value0, -grad0,
-                       directions, values, radius)
+        return Search(x, f, g, fisher, iterations, steps, evals, stalled, start_value,
+                      start_grad, directions, values, radius)
 
     return search
 
