@@ -74,3 +74,24 @@ def test_remembered_is_keyed_by_the_live_function_and_bounded():
         programs.remembered(fn, "fill", (k,), build)
     programs.remembered(fn, "t", (1,), build)
     assert len(built) == 2 + programs.MEMO_SIZE + 2
+
+
+def test_batched_pads_small_batches_to_one_compilation_and_cuts_the_padding():
+    # jax.vmap of the same function is the reference; batches of 1, 4, 5 and 8 points
+    # share the 8-point program, and 9 points take the 16-point one
+    def logdensity(x):
+        return -0.5 * jnp.sum(x**2) + jnp.sin(x[0])
+
+    evaluate = programs.batched(logdensity)
+    points = np.random.default_rng(2).normal(size=(9, 3))
+    first = len(_COUNT)
+    outputs = {m: evaluate(points[:m]) for m in (1, 4, 5, 8)}
+    after_small = len(_COUNT)
+    ninth = evaluate(points)
+    for m, out in outputs.items():
+        assert out.shape == (m,)
+        assert np.allclose(out, np.asarray(jax.vmap(logdensity)(jnp.asarray(points[:m]))))
+    assert np.allclose(ninth, np.asarray(jax.vmap(logdensity)(jnp.asarray(points))))
+    assert after_small - first == 1  # one program for the four small batches
+    assert [programs.batch_size(m) for m in (0, 1, 4, 5, 8, 9, 1024, 1025)] == [
+        8, 8, 8, 8, 8, 16, 1024, 1025]

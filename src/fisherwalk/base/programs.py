@@ -25,10 +25,12 @@ from typing import Any, TypeVar
 import jax
 import numpy as np
 
-__all__ = ["remembered", "forget", "structure_key", "MEMO_SIZE"]
+__all__ = ["remembered", "forget", "structure_key", "batched", "batch_size", "MEMO_SIZE"]
 
 T = TypeVar("T")
 MEMO_SIZE = 32  # programs kept; each holds compiled executables (a few MB at most)
+BATCH_FLOOR = 8  # smallest padded batch (twice the default number of chains)
+BATCH_CEILING = 1024  # larger batches are not padded (the padding would cost real work)
 _MEMO: OrderedDict[tuple, tuple[Any, Any]] = OrderedDict()
 
 
@@ -68,3 +70,34 @@ def structure_key(tree: Any) -> tuple:
 def forget() -> None:
     """Drop every remembered program (the next call of each builds and compiles anew)."""
     _MEMO.clear()
+
+
+def batch_size(points: int) -> int:
+    """The padded size of a batch of ``points``: the next power of two, at least
+    :data:`BATCH_FLOOR`; batches above :data:`BATCH_CEILING` keep their size."""
+    points = int(points)
+    if points > BATCH_CEILING:
+        return points
+    return max(BATCH_FLOOR, 1 << max(points - 1, 0).bit_length())
+
+
+def batched(fn: Callable) -> Callable:
+    """``jax.jit(jax.vmap(fn))`` over a leading batch axis padded to :func:`batch_size`.
+
+    The chains' starts (4 points), a start's candidates (5), a centre (1) and a chain
+    check (8) then share one compilation instead of one each (a tenth to a fifth of a
+    second apiece at d = 10 to 50); the padding repeats the first point and is cut from
+    every output. Called on the host with concrete arrays (not inside a trace); returns
+    host (numpy) arrays, cut on the host so that no slicing program is compiled either.
+    """
+    compiled = jax.jit(jax.vmap(fn))
+
+    def call(points):
+        m = int(np.shape(points)[0])
+        size = batch_size(m)
+        host = np.asarray(points)
+        if m > 0 and size > m:
+            host = np.concatenate([host, np.broadcast_to(host[:1], (size - m,) + host.shape[1:])])
+        return jax.tree.map(lambda out: np.asarray(out)[:m], compiled(host))
+
+    return call

@@ -45,7 +45,7 @@ import numpy as np
 from blackjax.adaptation.step_size import DualAveragingAdaptationState
 
 from ..base.meshes import chain_placement
-from ..base.programs import remembered
+from ..base.programs import batched, remembered
 from ..theory.gradient import INTEGRATION_TIME
 from .loop import ChainState  # the one chain state: here z, log density, ∇_z
 from .metric import to_whitened, whitening_factor  # noqa: F401  (re-exported: older callers)
@@ -205,6 +205,14 @@ def _compiled(transition: Callable, logdensity_flat: Callable, chains: int, targ
     return jax.jit(run, static_argnames=("draws", "thin"))
 
 
+def value_and_gradient(logdensity_flat: Callable) -> Callable:
+    """``(m, d) -> (log density (m,), gradient (m, d))``: one batched program per log
+    density (remembered, the batch padded by :func:`fisherwalk.base.programs.batched`),
+    shared by the gradient engines, "auto"'s timing and the start without a mode."""
+    return remembered(logdensity_flat, "gradient evaluate", (),
+                      lambda: batched(jax.value_and_grad(logdensity_flat)))
+
+
 def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Callable, mode,
                          whitening, chains: int, *, target_acceptance: float,
                          max_num_doublings: int = 10, gamma: float = DUAL_AVERAGING_GAMMA,
@@ -268,8 +276,7 @@ def make_gradient_engine(sampler: str, transition: Callable, logdensity_flat: Ca
                        whitening_device, draws=int(draws), thin=int(thin))
         return placement.gather(out)
 
-    evaluate = remembered(logdensity_flat, "gradient evaluate", (), lambda: jax.jit(
-        jax.vmap(jax.value_and_grad(logdensity_flat))))
+    evaluate = value_and_gradient(logdensity_flat)
     return GradientEngine(sampler, int(chains), mode, whitening, float(target_acceptance),
                           int(max_num_doublings), logdensity_flat, run, evaluate, step,
                           placement)

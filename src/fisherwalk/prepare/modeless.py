@@ -24,7 +24,7 @@ import numpy as np
 from ..base import pytrees
 from ..base.checks import whole_number
 from ..base.keys import normals, stream
-from ..base.programs import remembered
+from ..engine.gradient import value_and_gradient
 from ..errors import FisherwalkWarning, explain, warn_user
 from ..fit.laplace import LaplaceFit
 from ..fit.runaway import Runaway, advice, start_points
@@ -56,10 +56,9 @@ def draws_fit(warm: DrawsWarmup, position: Any, model: Model,
     steps = warm.draws.shape[1]
     draws = warm.draws[:, steps // 2:].reshape(-1, warm.draws.shape[-1])
     centre = np.asarray(draws.mean(axis=0), np.asarray(flat.vector).dtype)
-    fn = flat_logdensity(model)  # one compiled value and gradient, not op by op (dozens of
-    #                              small compilations), remembered per model
-    value, grad = jax.device_get(remembered(fn, "value and gradient", centre.shape,
-                                            lambda: jax.jit(jax.value_and_grad(fn)))(centre))
+    # the batched value and gradient the NUTS engine shares: no program of its own
+    value, grad = (np.asarray(a)[0] for a in
+                   value_and_gradient(flat_logdensity(model))(centre[None]))
     shape, precision_chol = metric_factors(warm.inverse_mass_matrix)
     fisher = precision_chol @ precision_chol.T
     mode = flat.unravel(jax.numpy.asarray(centre))

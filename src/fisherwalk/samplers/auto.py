@@ -16,6 +16,8 @@ from typing import NamedTuple
 import jax
 import numpy as np
 
+from ..base.programs import batch_size, batched
+from ..engine.gradient import value_and_gradient
 from . import registry
 
 __all__ = ["SamplerChoice", "choose_sampler", "ANSWER_ESS"]
@@ -58,10 +60,12 @@ def choose_sampler(flat_logdensity: Callable, positions, dim: int,
     """
     positions = jax.device_put(np.asarray(positions))
     chains = int(positions.shape[0])
-    batched = jax.jit(jax.vmap(flat_logdensity)) if evaluate is None else evaluate
-    cost = {"logdensity": _median_time(batched, positions),
-            "gradient": _median_time(jax.jit(jax.vmap(jax.value_and_grad(flat_logdensity))),
-                                     positions)}
+    evaluate = batched(flat_logdensity) if evaluate is None else evaluate
+    # the engines' own batched value and gradient, padded to batch_size(chains) points
+    # like the model's evaluate: the times are scaled back to the chains
+    scale = chains / batch_size(chains)
+    cost = {"logdensity": scale * _median_time(evaluate, positions),
+            "gradient": scale * _median_time(value_and_gradient(flat_logdensity), positions)}
     seconds = {}
     for name in registry.names():
         entry = registry.family(name)

@@ -29,7 +29,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base import pytrees
-from ..base.programs import remembered, structure_key
+from ..base.programs import batched, remembered, structure_key
 from ..engine.metric import spectrum_of
 from ..errors import InputError, SamplingError, explain
 from ..fit.laplace import LaplaceFit
@@ -155,8 +155,7 @@ def _new_model(logdensity_fn: Callable, mode: Any, chains: int) -> Model:
     def flat(vector):
         return logdensity_fn(unravel(vector))
 
-    evaluate = jax.jit(jax.vmap(flat))
-    return Model(logdensity_fn, unravel, evaluate, None)
+    return Model(logdensity_fn, unravel, batched(flat), None)
 
 
 def flat_logdensity(model: Model) -> Callable:
