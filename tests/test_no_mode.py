@@ -96,6 +96,22 @@ def test_the_search_names_the_runaway_scale_not_a_group_effect():
     assert todo.strip().startswith("write the model in its non-centred form first")
 
 
+def test_a_run_off_is_diagnosed_before_the_hessian_is_built(monkeypatch):
+    # the search's second program (Hessian, Newton polish) is traced only for a search
+    # that did not run off: a model with no mode never pays for it
+    built = []
+    hessian = jax.hessian
+    monkeypatch.setattr(jax, "hessian", lambda fn, *a, **k: built.append(fn) or hessian(
+        fn, *a, **k))
+    p0 = {"mu": jnp.zeros(()), "log_tau": jnp.zeros(()), "theta": jnp.zeros(8)}
+    with pytest.raises(NoModeError):
+        fisherwalk.laplace(lambda p: centred(p), p0)  # a new function: nothing remembered
+    assert built == []
+    fit = fisherwalk.laplace(lambda p: noncentred(p),
+                             {"mu": jnp.zeros(()), "log_tau": jnp.zeros(()), "z": jnp.zeros(8)})
+    assert built and np.isfinite(np.asarray(fit.fisher)).all()
+
+
 def test_an_ordinary_model_and_an_improper_one_are_not_called_modeless():
     # converged: no path traced, no NoModeError
     fit = fisherwalk.laplace(lambda x: -0.5 * jnp.sum(x**2), jnp.ones(3))

@@ -307,12 +307,25 @@ def runaway(s: Search, info: np.ndarray) -> tuple[np.ndarray, str, bool] | None:
     f = float(s.logdensity)
     slack = 1e3 * np.finfo(np.float64).eps * max(1.0, abs(f))
     r = float(s.probe_radius)
-    for u, (f1, f2, f3) in zip(s.probe_directions, s.probe_values, strict=True):
-        rising = f1 > f + slack and f2 >= f1 - slack and f3 >= f2 - slack
-        if rising and abs(u @ info @ u) * r**2 < 1.0:
+    for u, values in zip(s.probe_directions, s.probe_values, strict=True):
+        if _rises(f, values, slack) and abs(u @ info @ u) * r**2 < 1.0:
+            f1, f2, f3 = values
             levels_off = bool(np.isfinite(f3) and f3 - f2 <= f2 - f1 + slack)
             return u, f"{f:.6g} at the end, {f1:.6g}, {f2:.6g}, {f3:.6g} further on", levels_off
     return None
+
+
+def rises_along_a_probe(s: Search) -> bool:
+    """The log density rises beyond rounding at r, 10 r and 100 r along some probed
+    direction: a candidate for :func:`runaway` (which also needs the curvature there)."""
+    f = float(s.logdensity)
+    slack = 1e3 * np.finfo(np.float64).eps * max(1.0, abs(f))
+    return any(_rises(f, values, slack) for values in s.probe_values)
+
+
+def _rises(f: float, values, slack: float) -> bool:
+    f1, f2, f3 = values
+    return bool(f1 > f + slack and f2 >= f1 - slack and f3 >= f2 - slack)
 
 
 def _newton_decrement(gradient: np.ndarray, info: np.ndarray) -> float:

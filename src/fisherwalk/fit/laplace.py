@@ -37,7 +37,7 @@ from .checks import (
 )
 from .modes import SCOUT_SPREAD, check_box, collect_modes, restart_points, scout_points
 from .runaway import advice, find_no_mode
-from .search import compile_ahead, make_search, timed
+from .search import compile_ahead, make_search, timed, whole
 
 __all__ = ["LaplaceFit", "laplace", "check_fisher", "fisher_from_cholesky"]
 
@@ -98,11 +98,14 @@ def check_fisher(matrix: Any, names: tuple[str, ...], *, where: str = "fisher") 
     return jnp.asarray(np.linalg.cholesky(validated_matrix(matrix, names, where)))
 
 
-def _check_mode_exists(main, compiled, x0, args, user_fisher, names) -> None:
+def _check_mode_exists(main, compiled, x0, args, user_fisher, names,
+                       settled: bool = True) -> None:
     """Raise NoModeError when the search ran off along one parameter while the log
-    density kept rising (:func:`fisherwalk.fit.runaway.find_no_mode`)."""
+    density kept rising (:func:`fisherwalk.fit.runaway.find_no_mode`). ``settled``: the
+    search's second program (the Hessian) has run; before it, the gradient alone says
+    whether the search converged."""
     info = None
-    if user_fisher is None and np.isfinite(main.fisher).all():
+    if settled and user_fisher is None and np.isfinite(main.fisher).all():
         info = np.asarray(main.fisher, np.float64)
     found = find_no_mode(main, info, compiled, x0, args[1], names)
     if found is not None:
@@ -239,27 +242,43 @@ def laplace(
     use_hessian = fisher is None
     args = (jnp.asarray(max_iterations, jnp.int32), jnp.asarray(tol, dtype))
 
-    def build():
-        jitted = jax.jit(make_search(logp, use_hessian))
-        return jitted, compile_ahead(jitted, x0, *args)[0]
+    key_static = (jax.tree_util.tree_structure(position), x0.shape, str(dtype), use_hessian)
+    descend, settle = make_search(logp, use_hessian)
+
+    def compiled_program(what: str, build: Callable):
+        try:  # once per model (programs.remembered): a second fit compiles nothing
+            return programs.remembered(logdensity_fn, what, key_static, build)
+        except (TypeError, NotImplementedError) as err:
+            raise ModelError(explain(
+                f"JAX could not differentiate the log density: {err}",
+                "logdensity_fn: its gradient" + (", or the Hessian" if use_hessian else ""),
+                "write it with differentiable jax.numpy operations; if only the second "
+                "derivative fails (e.g. a custom_vjp), pass fisher=... (a matrix or a "
+                "function of the mode) so that no Hessian is needed.")) from err
 
     began = time.perf_counter()
-    try:  # once per model (programs.remembered): a second fit of it compiles nothing
-        search, compiled = programs.remembered(logdensity_fn, "laplace search", (
-            jax.tree_util.tree_structure(position), x0.shape, str(dtype), use_hessian), build)
-        compile_s = time.perf_counter() - began
-    except (TypeError, NotImplementedError) as err:
-        raise ModelError(explain(
-            f"JAX could not differentiate the log density: {err}",
-            "logdensity_fn: its gradient" + (", or the Hessian" if use_hessian else ""),
-            "write it with differentiable jax.numpy operations; if only the second "
-            "derivative fails (e.g. a custom_vjp), pass fisher=... (a matrix or a function "
-            "of the mode) so that no Hessian is needed.")) from err
+    first_program = compiled_program("laplace descent", lambda: compile_ahead(
+        jax.jit(descend), x0, *args)[0])
+    compile_s = time.perf_counter() - began
     began = time.perf_counter()
-    main = jax.tree_util.tree_map(np.asarray, jax.block_until_ready(compiled(x0, *args)))
+    first = jax.tree_util.tree_map(np.asarray, jax.block_until_ready(first_program(x0, *args)))
     run_s = time.perf_counter() - began
-    check_start(main, logdensity_fn, position, names)
-    _check_mode_exists(main, compiled, x0, args, fisher, names)
+    check_start(first, logdensity_fn, position, names)
+    # a run-off is diagnosed from L-BFGS's path alone, before the Hessian is compiled
+    _check_mode_exists(first, first_program, x0, args, fisher, names, settled=False)
+    began = time.perf_counter()
+    second_program = compiled_program("laplace settle", lambda: compile_ahead(
+        jax.jit(settle), x0, first)[0])
+    compile_s += time.perf_counter() - began
+    began = time.perf_counter()
+    main = jax.tree_util.tree_map(np.asarray, jax.block_until_ready(
+        second_program(x0, first)))
+    run_s += time.perf_counter() - began
+    _check_mode_exists(main, first_program, x0, args, fisher, names)
+
+    def compiled(point, *args):
+        return second_program(point, first_program(point, *args))
+
     check_end(main)
     info = information(main, fisher, unravel, names)
     check_search(main, info, np.asarray(x0), names, tol, max_iterations, use_hessian,
@@ -271,7 +290,8 @@ def laplace(
     batches = []
     if restarts:
         starts = restart_points(key, main.x, info, restarts, spread, bounds, dtype)
-        batch, c_s, r_s = timed(jax.jit(jax.vmap(search, in_axes=(0, None, None))),
+        batch, c_s, r_s = timed(jax.jit(jax.vmap(whole(descend, settle),
+                                                 in_axes=(0, None, None))),
                                  starts, *args)
         seconds.update(restarts_compile=c_s, restarts_run=r_s)
         batches.append(jax.tree_util.tree_map(np.asarray, batch))

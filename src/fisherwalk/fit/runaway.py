@@ -26,7 +26,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..base.checks import definiteness_problem
-from .checks import converged, runaway
+from .checks import converged, rises_along_a_probe, runaway
 from .search import Search
 
 __all__ = ["Runaway", "find_no_mode", "search_path", "start_points", "RISE", "DRIFT",
@@ -71,8 +71,10 @@ def _settled(s: Search, info: np.ndarray | None, tol: float) -> bool:
     runaway check explains (improper, separation): not ours to diagnose."""
     if not (np.isfinite(s.x).all() and np.isfinite(s.logdensity)):
         return False
-    if info is None:  # a user's Fisher information: the gradient test alone
-        return bool(np.max(np.abs(s.gradient)) <= tol * max(1.0, abs(float(s.logdensity))))
+    if info is None:  # no Hessian (yet, or a user's Fisher information): the gradient
+        #               test, and a rise along the probes is left to the runaway check
+        return (rises_along_a_probe(s) or bool(
+            np.max(np.abs(s.gradient)) <= tol * max(1.0, abs(float(s.logdensity)))))
     if not np.isfinite(info).all():
         return False
     if converged(s, info, tol) and not definiteness_problem(info, ("",) * len(s.x)):

@@ -1,12 +1,12 @@
-"""The mode search: L-BFGS, the Hessian and a Newton polish in one compiled loop.
+"""The mode search: L-BFGS, then the Hessian and a Newton polish, in two compiled programs.
 
 L-BFGS (Liu & Nocedal 1989, "On the limited memory BFGS method for large scale
 optimization", Math. Programming 45) with a backtracking line search
-(:mod:`fisherwalk.fit.lbfgs`), all inside one jitted ``lax.while_loop``, then at most
-two safeguarded Newton steps (L-BFGS can stall short of a tight gradient tolerance on an
-ill-conditioned posterior; the Hessian is computed anyway), then
-probes along rays that detect a runaway mode. :class:`Search` is what one search returns;
-:mod:`fisherwalk.fit.checks` reads it.
+(:mod:`fisherwalk.fit.lbfgs`), all inside one jitted ``lax.while_loop`` (the first
+program); then, in the second, at most two safeguarded Newton steps (L-BFGS can stall
+short of a tight gradient tolerance on an ill-conditioned posterior; the Hessian is
+computed anyway) and probes along rays that detect a runaway mode. :class:`Search` is
+what a search returns; :mod:`fisherwalk.fit.checks` reads it.
 """
 
 from __future__ import annotations
@@ -43,23 +43,37 @@ class Search(NamedTuple):
 
 
 
-def make_search(logp: Callable, use_hessian: bool) -> Callable:
-    """``search(x0, max_iterations, tol) -> Search``: L-BFGS in one while loop, then
-    (with ``use_hessian``) the Hessian and the Newton polish, then the runaway probes.
-    Pure, one compilation, vmappable over ``x0``."""
+def make_search(logp: Callable, use_hessian: bool) -> tuple[Callable, Callable]:
+    """``(descend, settle)``, the search's two programs, pure and vmappable over ``x0``.
+
+    ``descend(x0, max_iterations, tol) -> Search``: L-BFGS in one while loop (no Hessian:
+    ``fisher`` zeros, no Newton step; probes along the way travelled only).
+    ``settle(x0, descended) -> Search``: (with ``use_hessian``) the Hessian and the
+    Newton polish, then the runaway probes.
+    Two programs so that a search that runs off (a posterior with no mode,
+    :mod:`fisherwalk.fit.runaway`) is diagnosed from the first alone, before the
+    Hessian's program (a third to two fifths of the compile time) is compiled;
+    :func:`whole` chains them into one function for a batch of restarts.
+    """
 
     def information(x):
         h = jax.hessian(logp)(x)
         return -0.5 * (h + h.T)
 
-    def search(x0, max_iterations, tol):
+    def descend(x0, max_iterations, tol):
         zero = jnp.zeros((), jnp.int32)
         start_value, start_grad = jax.value_and_grad(logp)(x0)
         end = minimise(lambda x: -logp(x), x0, -start_value, -start_grad, max_iterations,
                        tol)
-        x, iterations, evals, stalled = end.x, end.iterations, end.evaluations, end.stalled
-        f, g = -end.value, -end.grad
-        fisher, steps = jnp.zeros((x.size, x.size), x.dtype), zero
+        d = x0.size
+        directions, values, radius = probe(logp, x0, end.x, None)  # the way travelled
+        return Search(end.x, -end.value, -end.grad, jnp.zeros((d, d), x0.dtype),
+                      end.iterations, zero, end.evaluations, end.stalled, start_value,
+                      start_grad, directions, values, radius)
+
+    def settle(x0, found):
+        x, f, g, fisher, steps, evals = (found.x, found.logdensity, found.gradient,
+                                         found.fisher, found.newton_steps, found.evaluations)
 
         def polish(carry):
             x, f, g, _, k, _, evals = carry
@@ -82,8 +96,19 @@ def make_search(logp: Callable, use_hessian: bool) -> Callable:
                 lambda carry: carry[5], polish, (x, f, g, fisher, steps, jnp.asarray(True),
                                                  evals))
         directions, values, radius = probe(logp, x0, x, fisher if use_hessian else None)
-        return Search(x, f, g, fisher, iterations, steps, evals, stalled, start_value,
-                      start_grad, directions, values, radius)
+        return found._replace(x=x, logdensity=f, gradient=g, fisher=fisher,
+                              newton_steps=steps, evaluations=evals,
+                              probe_directions=directions, probe_values=values,
+                              probe_radius=radius)
+
+    return descend, settle
+
+
+def whole(descend: Callable, settle: Callable) -> Callable:
+    """``search(x0, max_iterations, tol) -> Search``: the two programs as one function."""
+
+    def search(x0, max_iterations, tol):
+        return settle(x0, descend(x0, max_iterations, tol))
 
     return search
 
