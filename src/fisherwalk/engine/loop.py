@@ -218,6 +218,9 @@ def make_engine(logdensity_flat: Callable, chains: int, devices=None, *,
             else:
                 out = by_parts(stream, first, state, factor, ctrl, thin, dim, dtype,
                                max(budget // per_step, 1))
+            if outs:  # at most two calls in flight: on a busy machine the host would
+                #       otherwise run ahead, each queued call holding its noise (budget)
+                jax.block_until_ready(outs[-1].state)
             outs.append(out)
             state = out.state
             ctrl = ctrl._replace(log_multiplier=out.log_multiplier,
