@@ -42,7 +42,7 @@ import fisherwalk  # noqa: E402
 # (module, attribute, phase label): the functions whose calls make the phases
 WRAPPED = (
     ("fisherwalk.prepare.start", "laplace", "start/laplace fit"),
-    ("fisherwalk.prepare.start", "_laplace_sample", "start/laplace draws + k̂"),
+    ("fisherwalk.prepare.start", "laplace_sample", "start/laplace draws + k̂"),
     ("fisherwalk.prepare.start", "probe_symmetry", "start/symmetry probe"),
     ("fisherwalk.prepare.start", "choose_sampler", "start/auto timing"),
     ("fisherwalk.prepare.start", "modeless_start", "start/no mode: window adaptation"),

@@ -305,7 +305,7 @@ def runaway(s: Search, info: np.ndarray) -> tuple[np.ndarray, str, bool] | None:
     levels off (a supremum that is not attained, as under separation, Albert & Anderson
     1984) or not (unbounded)."""
     f = float(s.logdensity)
-    slack = 1e3 * np.finfo(np.float64).eps * max(1.0, abs(f))
+    slack = _slack(f)
     r = float(s.probe_radius)
     for u, values in zip(s.probe_directions, s.probe_values, strict=True):
         if _rises(f, values, slack) and abs(u @ info @ u) * r**2 < 1.0:
@@ -319,8 +319,12 @@ def rises_along_a_probe(s: Search) -> bool:
     """The log density rises beyond rounding at r, 10 r and 100 r along some probed
     direction: a candidate for :func:`runaway` (which also needs the curvature there)."""
     f = float(s.logdensity)
-    slack = 1e3 * np.finfo(np.float64).eps * max(1.0, abs(f))
-    return any(_rises(f, values, slack) for values in s.probe_values)
+    return any(_rises(f, values, _slack(f)) for values in s.probe_values)
+
+
+def _slack(f: float) -> float:
+    """Rounding at a log density of f, for the probes' comparisons."""
+    return 1e3 * np.finfo(np.float64).eps * max(1.0, abs(f))
 
 
 def _rises(f: float, values, slack: float) -> bool:
